@@ -1,0 +1,234 @@
+"""The ``countscale`` command line: thin sub-commands over the library.
+
+Examples
+--------
+Area of a footprint given as a HEALPix map, a MOC, or a run file's ``[footprint]``::
+
+    $ countscale area demo_data/survey.toml
+    $ countscale area mask.fits --threshold 3 --json
+    $ countscale area footprint_moc.fits --plot footprint.png
+
+Radius, volume and age of the observable universe::
+
+    $ countscale horizon --cosmology Planck18
+
+Exit codes: 0 ok; 1 the computation failed; 2 a usage or input error (one line on stderr
+naming the file, key or column, the rule and the value; a traceback only with ``--debug``).
+With ``--json`` a command prints one JSON object on stdout and nothing else there.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import math
+import sys
+from pathlib import Path
+
+from countscale.errors import InputError, InputTypeError
+
+EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):
+        self.print_usage(sys.stderr)
+        print(f"countscale: error: {message}", file=sys.stderr)
+        raise SystemExit(EXIT_USAGE)
+
+
+def build_parser():
+    parser = _Parser(
+        prog="countscale",
+        description="From a partial galaxy or star survey to statements about the whole.",
+    )
+    parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+
+    area = sub.add_parser(
+        "area",
+        help="area of a footprint (HEALPix map, MOC, or a run file's [footprint])",
+        description="Area of a footprint given as a HEALPix FITS map, a MOC FITS file, or a "
+        "TOML run file with a [footprint] section.",
+    )
+    area.add_argument("footprint", metavar="FOOTPRINT", help="map .fits, MOC .fits or run .toml")
+    area.add_argument("--json", action="store_true", help="print one JSON object")
+    area.add_argument("--plot", metavar="PNG", help="also draw the footprint into this PNG")
+    area.add_argument(
+        "--threshold",
+        type=float,
+        help="for a HEALPix map of hit counts or weights: pixels >= this value are in",
+    )
+    ordering = area.add_mutually_exclusive_group()
+    ordering.add_argument("--nest", dest="nest", action="store_const", const=True,
+                          help="the map is NEST-ordered (overrides its header)")
+    ordering.add_argument("--ring", dest="nest", action="store_const", const=False,
+                          help="the map is RING-ordered (overrides its header)")
+    area.set_defaults(handler=_cmd_area)
+
+    horizon = sub.add_parser(
+        "horizon",
+        help="radius, volume and age of the observable universe",
+        description="Comoving particle horizon (radius of the observable universe), its "
+        "volume and the age of the universe, for a cosmology.",
+    )
+    horizon.add_argument("--cosmology", default="Planck18",
+                         help="astropy realization name (default Planck18)")
+    horizon.add_argument("--json", action="store_true", help="print one JSON object")
+    horizon.set_defaults(handler=_cmd_horizon)
+    return parser
+
+
+def main(argv=None):
+    """Run the command line; returns the exit code."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # argparse: --help (0) or usage errors (2)
+        return int(exc.code or 0)
+    try:
+        return args.handler(args)
+    except (InputError, InputTypeError, FileNotFoundError, IsADirectoryError,
+            PermissionError) as exc:
+        if args.debug:
+            raise
+        print(f"countscale: error: {_one_line(exc)}", file=sys.stderr)
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        print("countscale: interrupted", file=sys.stderr)
+        return EXIT_FAILED
+    except Exception as exc:
+        if args.debug:
+            raise
+        print(f"countscale: computation failed: {type(exc).__name__}: {_one_line(exc)}",
+              file=sys.stderr)
+        return EXIT_FAILED
+
+
+def _one_line(exc):
+    text = str(exc).strip()
+    if isinstance(exc, OSError) and exc.filename:
+        text = f"{exc.filename}: {exc.strerror or text}"
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
+# ----------------------------------------------------------------------------------------
+# area
+# ----------------------------------------------------------------------------------------
+def load_footprint(spec, threshold=None, nest=None):
+    """Footprint and a description from a path: HEALPix map, MOC, or run file."""
+    from countscale.footprint import Footprint
+
+    path = Path(spec)
+    if not path.exists():
+        raise InputError(f"{path}: file not found")
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder; FOOTPRINT must be a .fits or .toml file")
+    suffix = "".join(path.suffixes).lower()
+    if suffix.endswith(".toml"):
+        from countscale.runfile import load_runfile
+
+        runfile = load_runfile(path).require("footprint", needed_by="countscale area")
+        section = runfile.footprint
+        positions = _catalog_positions(runfile) if "catalog" in runfile.present else None
+        footprint = Footprint.from_runfile_section(section, catalog_positions=positions)
+        kind = (f"run file [footprint]: {len(section.include)} include, "
+                f"{len(section.exclude)} exclude")
+        return footprint, kind
+    if suffix.endswith((".fits", ".fit", ".fits.gz", ".fit.gz")):
+        if _is_moc(path):
+            return Footprint.read_moc(path), "MOC"
+        footprint = Footprint.read_healpix_map(path, threshold=threshold, nest=nest)
+        return footprint, f"HEALPix map (nside {2 ** footprint.max_order})"
+    raise InputError(
+        f"{path}: FOOTPRINT must be a HEALPix or MOC .fits file or a .toml run file; "
+        f"got {suffix or 'no extension'}"
+    )
+
+
+def _is_moc(path):
+    from astropy.io import fits
+
+    try:
+        with fits.open(path) as hdul:
+            for hdu in hdul[1:]:
+                if str(hdu.header.get("ORDERING", "")).upper() == "NUNIQ":
+                    return True
+                if hasattr(hdu, "columns") and "UNIQ" in [c.upper() for c in hdu.columns.names]:
+                    return True
+    except OSError:
+        return False  # let the map reader give its one-line message
+    return False
+
+
+def _catalog_positions(runfile):
+    def positions():
+        import numpy as np
+
+        from countscale.catalog import CatalogSource, iter_valid_chunks
+
+        source = CatalogSource.from_config(runfile.catalog, runfile.base_dir)
+        ra, dec = [], []
+        for valid, _, _ in iter_valid_chunks(source, runfile.engine.chunk_rows):
+            ra.append(valid.ra)
+            dec.append(valid.dec)
+        return np.concatenate(ra), np.concatenate(dec)
+
+    return positions
+
+
+def _cmd_area(args):
+    footprint, kind = load_footprint(args.footprint, args.threshold, args.nest)
+    if args.plot:
+        from countscale import plots
+
+        plots.footprint_figure(footprint, args.plot, title=Path(args.footprint).name)
+    summary = footprint.summary()
+    if args.json:
+        print(json.dumps(summary))
+        return EXIT_OK
+    cell_arcsec = math.degrees(math.sqrt(4 * math.pi / (12 * 4**footprint.max_order))) * 3600
+    rows = [
+        ("footprint", f"{args.footprint}  ({kind})"),
+        ("area", f"{summary['area_deg2']:.6f} ± {summary['area_uncertainty_deg2']:.2g} deg²"),
+        ("", f"{summary['area_sr']:.6g} sr; sky fraction {summary['sky_fraction']:.4g}"),
+        ("finest order", f"{footprint.max_order} (nside {2 ** footprint.max_order}, "
+                         f"cells {cell_arcsec:.3g}″)"),
+        ("cells", f"{summary['n_cells']} (multi-order)"),
+    ]
+    if args.plot:
+        rows.append(("figure", args.plot))
+    _print_table(rows)
+    return EXIT_OK
+
+
+# ----------------------------------------------------------------------------------------
+# horizon
+# ----------------------------------------------------------------------------------------
+def _cmd_horizon(args):
+    from countscale.cosmology import get_cosmology, horizon
+
+    result = horizon(get_cosmology(args.cosmology))
+    if args.json:
+        print(json.dumps(dataclasses.asdict(result)))
+        return EXIT_OK
+    _print_table([
+        ("cosmology", result.cosmology),
+        ("radius", f"{result.radius_mpc:.5g} Mpc = {result.radius_gly:.4g} billion light years "
+                   "(comoving particle horizon)"),
+        ("volume", f"{result.volume_mpc3:.4g} Mpc³ (comoving)"),
+        ("age", f"{result.age_gyr:.4g} Gyr"),
+    ])
+    return EXIT_OK
+
+
+def _print_table(rows):
+    width = max(len(key) for key, _ in rows)
+    for key, value in rows:
+        print(f"{key:<{width}}  {value}")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
