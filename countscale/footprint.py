@@ -162,18 +162,30 @@ def _from_disjoint(starts, ends, weight, sigma, order):
     """Step function from disjoint intervals (any order), weight 0 in the gaps."""
     if len(starts) == 0:
         return _EMPTY_EDGES, _EMPTY_W, None
-    idx = np.argsort(starts, kind="stable")
-    starts, ends = starts[idx], ends[idx]
+    weight = np.asarray(weight, dtype=np.float32)
+    sigma = None if sigma is None else np.asarray(sigma, dtype=np.float32)
+    if np.any(starts[1:] < starts[:-1]):
+        idx = np.argsort(starts, kind="stable")
+        starts, ends, weight = starts[idx], ends[idx], weight[idx]
+        sigma = None if sigma is None else sigma[idx]
     n = len(starts)
     edges = np.empty(2 * n, dtype=np.int64)
     edges[0::2], edges[1::2] = starts, ends
     w = np.zeros(2 * n - 1, dtype=np.float32)
-    w[0::2] = np.asarray(weight, dtype=np.float32)[idx]
+    w[0::2] = weight
     s = None
     if sigma is not None:
         s = np.zeros(2 * n - 1, dtype=np.float32)
-        s[0::2] = np.asarray(sigma, dtype=np.float32)[idx]
+        s[0::2] = sigma
     return _canonical(edges, w, s)
+
+
+def _merge_sorted(first, second):
+    """Positions that interleave two sorted key arrays into one sorted array (a merge)."""
+    at_second = np.searchsorted(first, second, side="right") + np.arange(len(second))
+    at_first = np.ones(len(first) + len(second), dtype=bool)
+    at_first[at_second] = False
+    return np.flatnonzero(at_first), at_second
 
 
 _merge_intervals = geo.merge_intervals
@@ -221,12 +233,16 @@ def _segment_index(edges, cells):
 def _lookup(edges, weight, sigma, cells):
     """Weight and sigma of the segments holding `cells` (0 outside)."""
     idx = _segment_index(edges, cells)
-    valid = (idx >= 0) & (idx < len(weight))
-    safe = np.where(valid, idx, 0)
-    w = np.where(valid, weight[safe] if len(weight) else 0.0, 0.0)
-    if sigma is None:
-        return w, np.zeros_like(w)
-    return w, np.where(valid, sigma[safe], 0.0)
+    return _take(weight, idx), (None if sigma is None else _take(sigma, idx))
+
+
+def _take(values, idx):
+    """values[idx], with 0 where idx is outside the array (before or after every segment)."""
+    if len(values) == 0:
+        return np.zeros(len(idx), dtype=np.float32)
+    out = values[np.clip(idx, 0, len(values) - 1)]
+    out[(idx < 0) | (idx >= len(values))] = 0
+    return out
 
 
 def _remeasure(edges, weight, sigma, shared, order, exact):
@@ -235,7 +251,12 @@ def _remeasure(edges, weight, sigma, shared, order, exact):
     count = lengths[shared]
     cells = np.repeat(edges[:-1][shared], count) + _ranks(count)
     frac, frac_sigma = geo.point_test_fraction(exact, cells, order)
-    sig = np.zeros(len(weight)) if sigma is None else sigma
+    sig = np.zeros(len(weight), dtype=np.float32) if sigma is None else sigma.copy()
+    if np.all(count == 1):
+        # The usual case (boundaries of shapes are single cells): change weights in place.
+        weight = weight.copy()
+        weight[shared], sig[shared] = frac, frac_sigma
+        return edges, weight, sig
     keep = ~shared & (weight > 0)
     starts = np.concatenate([edges[:-1][keep], cells])
     ends = np.concatenate([edges[1:][keep], cells + 1])
@@ -377,13 +398,19 @@ class Footprint:
                 np.zeros(len(cells), dtype=bool)
             )
             cells, frac, sigma = cells[~inside], frac[~inside], sigma[~inside]
-        starts = np.concatenate([full_s, cells])
-        ends = np.concatenate([full_e, cells + 1])
-        weight = np.concatenate([np.ones(len(full_s), dtype=np.float32), frac])
+        # Both lists are sorted: interleave them by a merge rather than a sort.
+        at_full, at_cell = _merge_sorted(full_s, cells)
+        n = len(full_s) + len(cells)
+        starts = np.empty(n, dtype=np.int64)
+        ends = np.empty(n, dtype=np.int64)
+        weight = np.ones(n, dtype=np.float32)
+        starts[at_full], ends[at_full] = full_s, full_e
+        starts[at_cell], ends[at_cell], weight[at_cell] = cells, cells + 1, frac
         sig = None
         if np.any(sigma):
-            sig = np.concatenate([np.zeros(len(full_s), dtype=np.float32), sigma])
-        del full_s, full_e, cells, frac, sigma, raster
+            sig = np.zeros(n, dtype=np.float32)
+            sig[at_cell] = sigma
+        del full_s, full_e, cells, frac, sigma, raster, at_full, at_cell
         parts = _from_disjoint(starts, ends, weight, sig, max_order)
         return cls._make(max_order, parts, _Exact("leaf", shape))
 
@@ -759,28 +786,44 @@ class Footprint:
             return Footprint.empty(order)
         edges = _sorted_union(ea, eb)
         starts = edges[:-1]
-        a, sig_a = _lookup(ea, wa, sa, starts)
-        b, sig_b = _lookup(eb, wb, sb, starts)
-        a = a.astype(float)
-        b = b.astype(float)
+        # Sorted queries: plain searchsorted is fast here.
+        ia = np.searchsorted(ea, starts, side="right") - 1
+        ib = np.searchsorted(eb, starts, side="right") - 1
+        a, b = _take(wa, ia), _take(wb, ib)
         if op == "|":
             weight = a + b - a * b
-            var = (1 - b) ** 2 * sig_a**2 + (1 - a) ** 2 * sig_b**2
         elif op == "&":
             weight = a * b
-            var = b**2 * sig_a**2 + a**2 * sig_b**2
         else:
             weight = a * (1 - b)
-            var = (1 - b) ** 2 * sig_a**2 + a**2 * sig_b**2
-        sigma = np.sqrt(var) if (sa is not None or sb is not None) else None
+        sigma = None
+        if sa is not None or sb is not None:
+            # First-order propagation of each operand's boundary uncertainty.
+            sig_a = _take(sa, ia) if sa is not None else np.zeros_like(a)
+            sig_b = _take(sb, ib) if sb is not None else np.zeros_like(b)
+            if op == "|":
+                var = ((1 - b) * sig_a) ** 2 + ((1 - a) * sig_b) ** 2
+            elif op == "&":
+                var = (b * sig_a) ** 2 + (a * sig_b) ** 2
+            else:
+                var = ((1 - b) * sig_a) ** 2 + (a * sig_b) ** 2
+            sigma = np.sqrt(var)
         exact = _Exact(op, self._point_test(), other._point_test())
-        weight = np.clip(weight, 0, 1)
-        shared = (a > 0) & (a < 1) & (b > 0) & (b < 1)
-        if np.any(shared) and self._exact is not None and other._exact is not None:
-            # Both boundaries pass through these cells: treating the two fractions as
-            # independent would be wrong (A - B and B share an edge exactly). Measure the
-            # combination with the exact point tests of both shapes instead.
-            edges, weight, sigma = _remeasure(edges, weight, sigma, shared, order, exact)
+        np.clip(weight, 0, 1, out=weight)
+        if self._exact is not None and other._exact is not None:
+            # Where both boundaries pass through a cell, treating the two fractions as
+            # independent would be wrong (A - B and B share an edge exactly): measure the
+            # combination with the exact point tests of both shapes instead. A boundary cell
+            # is partly covered, or was measured before (sigma > 0) even if it came out 0 or 1.
+            on_a = (a > 0) & (a < 1)
+            on_b = (b > 0) & (b < 1)
+            if sa is not None:
+                on_a |= _take(sa, ia) > 0
+            if sb is not None:
+                on_b |= _take(sb, ib) > 0
+            shared = on_a & on_b
+            if np.any(shared):
+                edges, weight, sigma = _remeasure(edges, weight, sigma, shared, order, exact)
         return Footprint._make(order, _canonical(edges, weight, sigma), exact)
 
     def _point_test(self):
