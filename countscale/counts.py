@@ -1,0 +1,2445 @@
+"""Number counts: count models, a forward-modelled Poisson fit, integral and differential counts.
+
+The number counts n(m) are the surface density of sources per deg^2 per magnitude as a function
+of (true, AB) magnitude. A survey does not see n(m) directly: it detects a fraction of the
+sources (completeness), over a finite area, and measures their magnitudes with an error that
+grows towards the limit. This module fits n(m) through a *forward model* of the observed binned
+counts, so completeness, effective area and photometric scatter (Eddington bias) are folded in
+rather than divided out.
+
+Contents
+--------
+Count models (base :class:`CountModel`; public ``density``, ``log10_density``, ``local_slope``,
+``integral``, ``cumulative``, ``with_params``)
+    :class:`PowerLaw` (``log10_norm``, ``slope``),
+    :class:`BrokenPowerLaw` (``log10_norm``, ``slope_bright``, ``slope_faint``, ``m_break``;
+    sharp break), :class:`DoublePowerLaw` (the same parameters, smooth transition of width
+    ``transition_mag``). ``log10_norm`` is log10 n at ``reference_mag`` (per deg^2 per mag).
+Forward model
+    :class:`ForwardModel`: expected observed counts per bin for a count model, a magnitude-
+    dependent effective area and a magnitude-dependent Gaussian scatter.
+Fitting
+    :class:`CountsFit` (scikit-learn style: ``fit`` sets ``params_``, ``cov_``, ``loglike_``,
+    ``deviance_``, ``p_value_``, ``aic_``, ``bic_``, ...; ``profile_interval``), :func:`fit_counts`,
+    :func:`compare_models` / :class:`ModelComparison` (AIC/BIC).
+Results
+    :class:`IntegralCounts` / :func:`integral_counts` (N(<m) per deg^2 and over the footprint),
+    :class:`DifferentialCounts` / :func:`differential_counts` (raw and corrected binned counts
+    with Poisson and Poisson + clustering intervals, for tables and plots).
+Helpers
+    :func:`poisson_interval` (Garwood), :func:`jackknife_covariance`,
+    :func:`combine_covariances` (Poisson floor + clustering excess).
+Warnings and errors
+    :class:`CountsWarning`, :class:`CountsFitError`; :class:`NotFittedError` (shared with
+    :mod:`countscale.completeness`).
+
+Conventions
+-----------
+Magnitudes are AB; fainter is larger m. ``slope`` is d log10 n / dm (0.6 for uniformly
+distributed sources in static Euclidean space). Densities are per deg^2 per mag, integrated
+densities N(<m) per deg^2, effective areas in deg^2. Completeness and scatter are functions of
+the *true* magnitude (as measured by injecting sources of known magnitude).
+
+What this module does not do: it does not bin catalogues (the tally does) and it does not
+compute analytic cosmic variance (the variance module does). Clustering enters only through
+the jackknife over footprint regions, which works on per-region binned counts.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import itertools
+import math
+import numbers
+import warnings
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+from scipy import optimize, special, stats
+
+from countscale.completeness import NotFittedError
+from countscale.errors import InputError, InputTypeError
+from countscale.estimate import Estimate
+
+__all__ = [
+    "MIN_SOURCES",
+    "BrokenPowerLaw",
+    "CountModel",
+    "CountsFit",
+    "CountsFitError",
+    "CountsWarning",
+    "DifferentialCounts",
+    "DoublePowerLaw",
+    "ForwardModel",
+    "IntegralCounts",
+    "ModelComparison",
+    "NotFittedError",
+    "PowerLaw",
+    "combine_covariances",
+    "compare_models",
+    "differential_counts",
+    "fit_counts",
+    "integral_counts",
+    "jackknife_covariance",
+    "poisson_interval",
+]
+
+#: Fewest sources in a fit before it warns (DESIGN.md section 5: "fewer than 20 sources in a
+#: fit" is doubtful; common figure, no source).
+MIN_SOURCES = 20
+
+#: Completeness below which a bin used in a fit triggers a warning (DESIGN.md section 5).
+LOW_COMPLETENESS = 0.5
+
+#: ln 10, for converting d log10 n / dm into an exponential rate.
+_LN10 = math.log(10.0)
+
+#: Gauss-Legendre nodes and weights for the generic numerical integral (8 nodes per panel of at
+#: most 0.1 mag integrate exp(a m) with a <= 3 ln 10 per mag to ~1e-15 relative; Gauss-Legendre
+#: with n nodes is exact for polynomials of degree 2n - 1).
+_GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(8)
+_GL_PANEL_MAG = 0.1
+
+#: The bright tail of a smooth double power law is integrated analytically beyond this many
+#: transition widths brighter than the break, where the model is a pure power law to relative
+#: 10^-40 (log10(1 + 10^-40) ~ 4e-41; closed form).
+_TAIL_TRANSITIONS = 40.0
+
+#: Unit strings used in Estimates.
+_DENSITY_UNIT = "deg^-2 mag^-1"
+_CUMULATIVE_UNIT = "deg^-2"
+
+#: Budget labels (DESIGN.md section 4): the clustering part of the jackknife variance is the
+#: sample ("cosmic") variance of the counts between regions.
+_POISSON = "poisson"
+_CLUSTERING = "cosmic_variance"
+
+
+class CountsWarning(UserWarning):
+    """A count fit or result is computable but doubtful (few sources, low completeness, ...)."""
+
+
+class CountsFitError(RuntimeError):
+    """The count fit did not converge, or its curvature or intervals are not usable."""
+
+
+# ============================================================================ input helpers
+def _as_generator(rng):
+    if rng is None or isinstance(rng, np.random.Generator):
+        return np.random.default_rng(rng)
+    if isinstance(rng, numbers.Integral) and not isinstance(rng, bool):
+        if rng < 0:
+            raise InputError(f"`rng` seed must be >= 0; got {rng}")
+        return np.random.default_rng(int(rng))
+    raise InputTypeError(
+        f"`rng` must be an int seed or a numpy Generator; got {type(rng).__name__}"
+    )
+
+
+def _check_real(value, name, low=None, high=None, low_open=True, high_open=True):
+    """A finite float inside an optional interval, or raise naming ``name``."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise InputTypeError(f"`{name}` must be a real number; got {type(value).__name__}")
+    value = float(value)
+    if not math.isfinite(value):
+        raise InputError(f"`{name}` must be finite; got {value}")
+    below = low is not None and (value <= low if low_open else value < low)
+    above = high is not None and (value >= high if high_open else value > high)
+    if below or above:
+        left = "(" if low_open else "["
+        right = ")" if (high_open or high is None) else "]"
+        lo_text = "-inf" if low is None else f"{low:g}"
+        hi_text = "inf" if high is None else f"{high:g}"
+        raise InputError(f"`{name}` must be in {left}{lo_text}, {hi_text}{right}; got {value}")
+    return value
+
+
+def _check_count(value, name, low):
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral) or value < low:
+        raise InputError(f"`{name}` must be an integer >= {low}; got {value!r}")
+    return int(value)
+
+
+def _as_magnitudes(m, name="m"):
+    """Return (float ndarray copy, was_scalar)."""
+    if isinstance(m, (str, bytes)):
+        raise InputTypeError(f"`{name}` must be numeric magnitudes; got {type(m).__name__}")
+    try:
+        array = np.array(m, dtype=float, copy=True)
+    except (TypeError, ValueError) as error:
+        raise InputTypeError(
+            f"`{name}` must be numeric magnitudes; got {type(m).__name__}"
+        ) from error
+    return array, array.ndim == 0
+
+
+def _as_counts(counts, name, shape=None):
+    """Integer-valued, finite, non-negative counts as an int64 copy, or raise naming ``name``."""
+    if isinstance(counts, (str, bytes)):
+        raise InputTypeError(f"`{name}` must be numeric counts; got {type(counts).__name__}")
+    try:
+        array = np.array(counts, dtype=float, copy=True)
+    except (TypeError, ValueError) as error:
+        raise InputTypeError(
+            f"`{name}` must be numeric counts; got {type(counts).__name__}"
+        ) from error
+    if shape is not None and array.shape != shape:
+        raise InputError(f"`{name}` must have shape {shape}; got {array.shape}")
+    bad = ~np.isfinite(array) | (array < 0) | (array != np.round(array))
+    if bad.any():
+        position = tuple(int(i) for i in np.argwhere(bad)[0])
+        where = position[0] if len(position) == 1 else position
+        raise InputError(
+            f"`{name}` must be whole numbers >= 0; got {array[position]} at index {where}"
+        )
+    return array.astype(np.int64)
+
+
+def _scalar_out(values, scalar):
+    return float(values) if scalar else values
+
+
+def _power_law_integral(log10_n_start, slope, width):
+    """Integral of 10**(log10_n_start + slope x) over x in [0, width] (closed form).
+
+    ``exprel(z) = (e^z - 1) / z`` keeps the flat-slope limit exact.
+    """
+    return 10.0**log10_n_start * width * special.exprel(slope * _LN10 * width)
+
+
+# ============================================================================ count models
+@dataclass(frozen=True)
+class CountModel:
+    """Base class of number-count models n(m) (per deg^2 per mag).
+
+    Subclasses are frozen dataclasses whose fields are the parameters named in
+    :attr:`param_names` followed by fixed settings (``reference_mag``, ``m_bright``, ...). They
+    implement the private hooks
+
+    ``_log10_density(m)``
+        log10 n on a float ndarray (required);
+    ``_integral(lo, hi)``
+        integral of n over [lo, hi] for 1-D arrays with lo <= hi (default: Gauss-Legendre);
+    ``_cumulative_unbounded(m)``
+        N(<m) integrated from -infinity, raising :class:`~countscale.errors.InputError` when it
+        diverges (required unless every use sets ``m_bright``);
+    ``_initial_params(m, log10_n, m_lo, m_hi)``
+        a starting parameter dict from rough binned densities (used by :class:`CountsFit`);
+    ``_check_params()``
+        model-specific validation (called after the generic checks).
+
+    Attributes
+    ----------
+    name : str
+        Model name used in JSON output and run files (``"power_law"``, ...).
+    param_names : tuple of str
+        Fitted parameters, in the order of :attr:`params` and of a fit's covariance.
+    """
+
+    name: ClassVar[str] = ""
+    param_names: ClassVar[tuple[str, ...]] = ()
+    #: Parameters that are magnitudes; a fit keeps them inside the fit range.
+    _location_params: ClassVar[tuple[str, ...]] = ()
+    #: Parameter units for Estimates.
+    _param_units: ClassVar[Mapping[str, str]] = {}
+
+    def __post_init__(self):
+        for field in dataclasses.fields(self):
+            value = getattr(self, field.name)
+            if field.name == "m_bright":
+                if value is not None:
+                    object.__setattr__(self, field.name, _check_real(value, "m_bright"))
+                continue
+            object.__setattr__(self, field.name, _check_real(value, field.name))
+        self._check_params()
+
+    def _check_params(self):
+        """Model-specific checks; the default has none."""
+
+    # -------------------------------------------------------------- parameters
+    @property
+    def params(self):
+        """Parameter values in :attr:`param_names` order, as a float ndarray."""
+        return np.array([getattr(self, name) for name in self.param_names], dtype=float)
+
+    def params_dict(self):
+        """``{name: value}`` in :attr:`param_names` order."""
+        return {name: float(getattr(self, name)) for name in self.param_names}
+
+    def with_params(self, values):
+        """A copy with new parameter values (fixed settings unchanged).
+
+        Parameters
+        ----------
+        values : mapping of str to float, or sequence of float
+            New values by name (a subset is allowed), or all values in :attr:`param_names`
+            order.
+
+        Returns
+        -------
+        CountModel
+        """
+        if isinstance(values, Mapping):
+            unknown = set(values) - set(self.param_names)
+            if unknown:
+                raise InputError(
+                    f"`values` names unknown parameters {sorted(unknown)}; "
+                    f"{type(self).__name__} has {list(self.param_names)}"
+                )
+            changes = {name: float(v) for name, v in values.items()}
+        else:
+            sequence = np.asarray(values, dtype=float).reshape(-1)
+            if sequence.size != len(self.param_names):
+                raise InputError(
+                    f"`values` must hold {len(self.param_names)} numbers "
+                    f"({', '.join(self.param_names)}); got {sequence.size}"
+                )
+            changes = dict(zip(self.param_names, map(float, sequence), strict=True))
+        return dataclasses.replace(self, **changes)
+
+    # -------------------------------------------------------------- public evaluation
+    def log10_density(self, m):
+        """log10 of the differential counts at magnitudes ``m``.
+
+        Parameters
+        ----------
+        m : float or array_like of float
+            Magnitudes (AB). Not modified.
+
+        Returns
+        -------
+        float or ndarray
+            log10 n(m) with n in deg^-2 mag^-1; same shape as ``m``.
+        """
+        array, scalar = _as_magnitudes(m)
+        return _scalar_out(self._log10_density(array), scalar)
+
+    def density(self, m):
+        """Differential counts n(m) in deg^-2 mag^-1 (same shape as ``m``)."""
+        array, scalar = _as_magnitudes(m)
+        return _scalar_out(10.0 ** self._log10_density(array), scalar)
+
+    def local_slope(self, m):
+        """d log10 n / dm at ``m`` (central difference with a 1e-4 mag step)."""
+        array, scalar = _as_magnitudes(m)
+        step = 1e-4
+        slope = (self._log10_density(array + step) - self._log10_density(array - step)) / (
+            2.0 * step
+        )
+        return _scalar_out(slope, scalar)
+
+    def integral(self, m_lo, m_hi):
+        """Integral of n(m) over [m_lo, m_hi]: sources per deg^2 in a magnitude range.
+
+        Parameters
+        ----------
+        m_lo, m_hi : float or array_like of float
+            Range ends (AB), broadcast together; ``m_lo <= m_hi``.
+
+        Returns
+        -------
+        float or ndarray
+            Sources per deg^2.
+        """
+        lo, lo_scalar = _as_magnitudes(m_lo, "m_lo")
+        hi, hi_scalar = _as_magnitudes(m_hi, "m_hi")
+        lo, hi = np.broadcast_arrays(lo, hi)
+        if not (np.all(np.isfinite(lo)) and np.all(np.isfinite(hi))):
+            raise InputError("`m_lo` and `m_hi` must be finite magnitudes")
+        if np.any(hi < lo):
+            position = int(np.flatnonzero((hi < lo).reshape(-1))[0])
+            raise InputError(
+                f"`m_hi` must be >= `m_lo`; got m_lo = {lo.reshape(-1)[position]}, "
+                f"m_hi = {hi.reshape(-1)[position]}"
+            )
+        values = self._integral(lo.reshape(-1), hi.reshape(-1)).reshape(lo.shape)
+        return _scalar_out(values, lo_scalar and hi_scalar)
+
+    def cumulative(self, m):
+        """Integral counts N(<m): sources per deg^2 brighter than ``m``.
+
+        With ``m_bright`` set, the integral starts there (N = 0 for m <= m_bright); otherwise it
+        starts at -infinity, which converges only when the bright-end slope is > 0.
+
+        Parameters
+        ----------
+        m : float or array_like of float
+            Faint limits (AB).
+
+        Returns
+        -------
+        float or ndarray
+            N(<m) in deg^-2; same shape as ``m``.
+
+        Raises
+        ------
+        InputError
+            When ``m_bright`` is not set and the bright-end slope is <= 0 (N diverges).
+        """
+        array, scalar = _as_magnitudes(m)
+        if not np.all(np.isfinite(array)):
+            raise InputError("`m` must be finite magnitudes")
+        flat = array.reshape(-1)
+        if self.m_bright is None:
+            values = self._cumulative_unbounded(flat)
+        else:
+            start = np.full(flat.shape, self.m_bright)
+            values = self._integral(start, np.maximum(flat, self.m_bright))
+        return _scalar_out(values.reshape(array.shape), scalar)
+
+    # -------------------------------------------------------------- hooks
+    def _log10_density(self, m):
+        raise NotImplementedError
+
+    def _integral(self, lo, hi):
+        """Composite 8-point Gauss-Legendre on panels of at most 0.1 mag."""
+        out = np.empty(lo.size)
+        for i, (a, b) in enumerate(zip(lo, hi, strict=True)):
+            if b == a:
+                out[i] = 0.0
+                continue
+            n_panels = max(1, math.ceil((b - a) / _GL_PANEL_MAG))
+            edges = np.linspace(a, b, n_panels + 1)
+            half = 0.5 * np.diff(edges)
+            mid = 0.5 * (edges[1:] + edges[:-1])
+            nodes = mid[:, None] + half[:, None] * _GL_NODES[None, :]
+            values = 10.0 ** self._log10_density(nodes)
+            out[i] = float(np.sum(half[:, None] * _GL_WEIGHTS[None, :] * values))
+        return out
+
+    def _cumulative_unbounded(self, m):
+        raise NotImplementedError
+
+    def _initial_params(self, m, log10_n, m_lo, m_hi):
+        raise NotImplementedError
+
+    def _diverges(self, slope_name, slope):
+        raise InputError(
+            f"N(<m) diverges at the bright end: `{slope_name}` must be > 0 when `m_bright` is not "
+            f"set; got {slope}"
+        )
+
+    def __str__(self):
+        values = ", ".join(f"{k}={v:.6g}" for k, v in self.params_dict().items())
+        return f"{type(self).__name__}({values}; reference_mag={self.reference_mag:g})"
+
+
+def _line_fit(m, y):
+    """Least-squares intercept and slope of y against m (numpy.polyfit, degree 1)."""
+    if m.size < 2 or np.ptp(m) == 0.0:
+        return (float(np.mean(y)) if y.size else 0.0), 0.5
+    slope, intercept = np.polyfit(m, y, 1)
+    return float(intercept), float(slope)
+
+
+@dataclass(frozen=True)
+class PowerLaw(CountModel):
+    """Power-law counts ``n(m) = 10^(log10_norm + slope (m - reference_mag))``.
+
+    Parameters
+    ----------
+    log10_norm : float
+        log10 of n at ``reference_mag`` (n in deg^-2 mag^-1).
+    slope : float
+        d log10 n / dm.
+    reference_mag : float
+        Magnitude where the normalisation is quoted; pick it near the middle of the data so
+        ``log10_norm`` and ``slope`` are nearly uncorrelated.
+    m_bright : float, optional
+        Bright cutoff for :meth:`cumulative`; by default N(<m) integrates from -infinity,
+        which needs ``slope > 0``.
+
+    Notes
+    -----
+    N(<m) = n(m) / (slope ln 10) for slope > 0 (integrate the exponential). Uniform sources in
+    static Euclidean space have slope 0.6 (N(>S) ~ S^-3/2; textbook, REFERENCES.md section 6).
+
+    Examples
+    --------
+    >>> law = PowerLaw(log10_norm=3.0, slope=0.5, reference_mag=22.0)
+    >>> round(law.density(22.0), 6)
+    1000.0
+    >>> round(law.cumulative(22.0), 3)  # 1000 / (0.5 ln 10)
+    868.589
+    """
+
+    log10_norm: float = 0.0
+    slope: float = 0.5
+    reference_mag: float = 20.0
+    m_bright: float | None = None
+
+    name: ClassVar[str] = "power_law"
+    param_names: ClassVar[tuple[str, ...]] = ("log10_norm", "slope")
+    _param_units: ClassVar[Mapping[str, str]] = {"log10_norm": "dex", "slope": "dex mag^-1"}
+
+    def _log10_density(self, m):
+        return self.log10_norm + self.slope * (m - self.reference_mag)
+
+    def _integral(self, lo, hi):
+        return _power_law_integral(self._log10_density(lo), self.slope, hi - lo)
+
+    def _cumulative_unbounded(self, m):
+        if not self.slope > 0.0:
+            self._diverges("slope", self.slope)
+        return 10.0 ** self._log10_density(m) / (self.slope * _LN10)
+
+    def _initial_params(self, m, log10_n, m_lo, m_hi):
+        intercept, slope = _line_fit(m - self.reference_mag, log10_n)
+        return {"log10_norm": intercept, "slope": slope}
+
+
+class _TwoSlopeModel(CountModel):
+    """Shared parts of the broken and double power laws (two slopes and a break)."""
+
+    _location_params: ClassVar[tuple[str, ...]] = ("m_break",)
+    _param_units: ClassVar[Mapping[str, str]] = {
+        "log10_norm": "dex",
+        "slope_bright": "dex mag^-1",
+        "slope_faint": "dex mag^-1",
+        "m_break": "mag",
+    }
+
+    def _shape(self, m):
+        """log10 n(m) - log10 n(m_break)."""
+        raise NotImplementedError
+
+    def _log10_density(self, m):
+        return self.log10_norm + self._shape(m) - self._shape(np.asarray(self.reference_mag))
+
+    def _initial_params(self, m, log10_n, m_lo, m_hi):
+        m_break = 0.5 * (m_lo + m_hi)
+        bright = m <= m_break
+        _, slope_bright = _line_fit(m[bright], log10_n[bright])
+        _, slope_faint = _line_fit(m[~bright], log10_n[~bright])
+        trial = self.with_params(
+            {"log10_norm": 0.0, "slope_bright": slope_bright, "slope_faint": slope_faint,
+             "m_break": m_break}
+        )
+        offset = float(np.mean(log10_n - trial._log10_density(m))) if m.size else 0.0
+        return {
+            "log10_norm": offset,
+            "slope_bright": slope_bright,
+            "slope_faint": slope_faint,
+            "m_break": m_break,
+        }
+
+
+@dataclass(frozen=True)
+class BrokenPowerLaw(_TwoSlopeModel):
+    """Two power laws joined continuously at a sharp break.
+
+    ``log10 n(m) = log10_norm + h(m) - h(reference_mag)`` with
+    ``h(m) = slope_bright (m - m_break)`` for m < m_break and ``slope_faint (m - m_break)``
+    otherwise.
+
+    Parameters
+    ----------
+    log10_norm : float
+        log10 of n at ``reference_mag`` (n in deg^-2 mag^-1), on whichever side of the break
+        the reference magnitude lies.
+    slope_bright, slope_faint : float
+        d log10 n / dm brighter and fainter than the break.
+    m_break : float
+        Break magnitude (AB).
+    reference_mag : float
+        Magnitude where the normalisation is quoted.
+    m_bright : float, optional
+        Bright cutoff for :meth:`cumulative` (otherwise ``slope_bright > 0`` is needed).
+    """
+
+    log10_norm: float = 0.0
+    slope_bright: float = 0.6
+    slope_faint: float = 0.3
+    m_break: float = 22.0
+    reference_mag: float = 20.0
+    m_bright: float | None = None
+
+    name: ClassVar[str] = "broken_power_law"
+    param_names: ClassVar[tuple[str, ...]] = (
+        "log10_norm",
+        "slope_bright",
+        "slope_faint",
+        "m_break",
+    )
+
+    def _shape(self, m):
+        delta = m - self.m_break
+        return np.where(delta < 0.0, self.slope_bright * delta, self.slope_faint * delta)
+
+    def _integral(self, lo, hi):
+        # Closed form on each side of the break (power-law integrals).
+        bright_hi = np.minimum(hi, self.m_break)
+        faint_lo = np.maximum(lo, self.m_break)
+        bright_width = np.maximum(bright_hi - lo, 0.0)
+        faint_width = np.maximum(hi - faint_lo, 0.0)
+        bright = _power_law_integral(self._log10_density(lo), self.slope_bright, bright_width)
+        faint = _power_law_integral(self._log10_density(faint_lo), self.slope_faint, faint_width)
+        return bright + faint
+
+    def _cumulative_unbounded(self, m):
+        if not self.slope_bright > 0.0:
+            self._diverges("slope_bright", self.slope_bright)
+        m_bright_side = np.minimum(m, self.m_break)
+        tail = 10.0 ** self._log10_density(m_bright_side) / (self.slope_bright * _LN10)
+        return tail + self._integral(m_bright_side, m)
+
+
+@dataclass(frozen=True)
+class DoublePowerLaw(_TwoSlopeModel):
+    """Two power laws joined by a smooth transition of width ``transition_mag``.
+
+    ``log10 n(m) = log10_norm + h(m) - h(reference_mag)`` with, for x = m - m_break,
+    ``h(m) = slope_bright x + (slope_faint - slope_bright) t log10(1 + 10^(x / t))``.
+
+    Parameters
+    ----------
+    log10_norm : float
+        log10 of n at ``reference_mag`` (n in deg^-2 mag^-1).
+    slope_bright, slope_faint : float
+        Asymptotic d log10 n / dm far brighter and far fainter than the break.
+    m_break : float
+        Centre of the transition (AB); there the local slope is the mean of the two slopes.
+    transition_mag : float
+        Transition width t in mag (fixed, not fitted); > 0. As t -> 0 the model tends to
+        :class:`BrokenPowerLaw` (log10 n differs by at most (slope difference) t log10 2).
+    reference_mag : float
+        Magnitude where the normalisation is quoted.
+    m_bright : float, optional
+        Bright cutoff for :meth:`cumulative` (otherwise ``slope_bright > 0`` is needed).
+
+    Notes
+    -----
+    The "softplus" join works for a flattening (slope_faint < slope_bright) and a steepening
+    alike. With ``t = 1 / (slope_bright - slope_faint)`` it equals the familiar form
+    ``n = n_b / [10^(-a x) + 10^(-b x)]`` (a = slope_bright > b = slope_faint): expand
+    ``-log10(10^(-a x) + 10^(-b x)) = a x - log10(1 + 10^((a - b) x))``. That form can only
+    flatten and ties the transition width to the slopes, which is why it is not the default.
+    """
+
+    log10_norm: float = 0.0
+    slope_bright: float = 0.6
+    slope_faint: float = 0.3
+    m_break: float = 22.0
+    transition_mag: float = 0.5
+    reference_mag: float = 20.0
+    m_bright: float | None = None
+
+    name: ClassVar[str] = "double_power_law"
+    param_names: ClassVar[tuple[str, ...]] = (
+        "log10_norm",
+        "slope_bright",
+        "slope_faint",
+        "m_break",
+    )
+
+    def _check_params(self):
+        if self.transition_mag <= 0.0:
+            raise InputError(f"`transition_mag` must be > 0; got {self.transition_mag}")
+
+    def _shape(self, m):
+        x = m - self.m_break
+        t = self.transition_mag
+        # log10(1 + 10^u) = logaddexp(0, u ln10) / ln10, stable for any u.
+        softplus = np.logaddexp(0.0, x / t * _LN10) / _LN10
+        return self.slope_bright * x + (self.slope_faint - self.slope_bright) * t * softplus
+
+    def _cumulative_unbounded(self, m):
+        if not self.slope_bright > 0.0:
+            self._diverges("slope_bright", self.slope_bright)
+        # Far brighter than the break the model is a pure power law (to 1e-40 in log10 n):
+        # integrate that tail in closed form and the rest numerically.
+        start = np.minimum(m, self.m_break - _TAIL_TRANSITIONS * self.transition_mag)
+        tail = 10.0 ** self._log10_density(start) / (self.slope_bright * _LN10)
+        return tail + self._integral(start, m)
+
+
+_MODELS_BY_NAME = {cls.name: cls for cls in (PowerLaw, BrokenPowerLaw, DoublePowerLaw)}
+
+
+# ============================================================================ Poisson helpers
+def poisson_interval(n_observed, level=0.68):
+    """Exact (Garwood) central confidence interval for a Poisson mean.
+
+    Parameters
+    ----------
+    n_observed : int or array_like of int
+        Observed counts, >= 0.
+    level : float
+        Confidence level in (0, 1); 0.68 by default.
+
+    Returns
+    -------
+    tuple of ndarray (or floats for scalar input)
+        ``(lo, hi)`` bounds on the Poisson mean.
+
+    Notes
+    -----
+    Garwood 1936, Biometrika 28, 437; as tabulated for astronomy by Gehrels 1986, ApJ 303, 336
+    (from memory): ``lo = chi2.ppf(a/2, 2n) / 2`` (0 for n = 0) and
+    ``hi = chi2.ppf(1 - a/2, 2n + 2) / 2`` with a = 1 - level. Equivalently, the Poisson
+    probability of >= n at ``lo`` and of <= n at ``hi`` are both a/2.
+    """
+    level = _check_real(level, "level", 0.0, 1.0)
+    scalar = np.ndim(n_observed) == 0
+    counts = _as_counts(n_observed, "n_observed").astype(float)
+    tail = 0.5 * (1.0 - level)
+    with np.errstate(invalid="ignore"):
+        lo = np.where(counts > 0, 0.5 * stats.chi2.ppf(tail, 2.0 * counts), 0.0)
+    hi = 0.5 * stats.chi2.ppf(1.0 - tail, 2.0 * counts + 2.0)
+    if scalar:
+        return float(lo), float(hi)
+    return lo, hi
+
+
+def _poisson_loglike(mu, counts):
+    """Full Poisson log-likelihood sum(N ln mu - mu - ln N!)."""
+    with np.errstate(divide="ignore"):
+        terms = special.xlogy(counts, mu) - mu - special.gammaln(counts + 1.0)
+    return float(np.sum(terms))
+
+
+def _deviance(mu, counts):
+    """Poisson deviance 2 sum[N ln(N / mu) - (N - mu)] (McCullagh & Nelder 1989, sec. 2.3)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        terms = special.xlogy(counts, counts) - special.xlogy(counts, mu) - (counts - mu)
+    return float(2.0 * np.sum(terms))
+
+
+def jackknife_covariance(delete_one_values):
+    """Delete-one jackknife covariance of a statistic.
+
+    Parameters
+    ----------
+    delete_one_values : array_like of float, shape (K,) or (K, p)
+        The statistic (scalar or p-vector) recomputed with each of K regions left out; K >= 2.
+
+    Returns
+    -------
+    ndarray of float, shape (p, p) (or a float for 1-D input)
+        ``(K - 1) / K * sum_k (x_k - mean)(x_k - mean)^T``.
+
+    Notes
+    -----
+    Quenouille 1956, Biometrika 43, 353; Tukey 1958 (the variance estimator); Efron & Stein
+    1981, Ann. Statist. 9, 586 (from memory). For the mean of K values it equals the familiar
+    s^2 / K.
+    """
+    values = np.array(delete_one_values, dtype=float, copy=True)
+    scalar = values.ndim == 1
+    if scalar:
+        values = values[:, None]
+    if values.ndim != 2 or values.shape[0] < 2:
+        raise InputError(
+            f"`delete_one_values` must have shape (K,) or (K, p) with K >= 2; got {values.shape}"
+        )
+    if not np.all(np.isfinite(values)):
+        raise InputError("`delete_one_values` must be finite")
+    k = values.shape[0]
+    centred = values - values.mean(axis=0)
+    covariance = (k - 1.0) / k * centred.T @ centred
+    return float(covariance[0, 0]) if scalar else covariance
+
+
+def combine_covariances(cov_poisson, cov_jackknife):
+    """Poisson covariance plus the (positive part of the) clustering excess.
+
+    Parameters
+    ----------
+    cov_poisson : array_like, shape (p, p)
+        Covariance from the Poisson likelihood (inverse Hessian).
+    cov_jackknife : array_like, shape (p, p)
+        Jackknife covariance over footprint regions (Poisson and clustering together).
+
+    Returns
+    -------
+    ndarray, shape (p, p)
+        ``C_P + PSD(C_J - C_P)``, where PSD keeps the non-negative eigen-directions.
+
+    Notes
+    -----
+    The jackknife estimates the total variance (Poisson and clustering), but with K regions it
+    is itself uncertain (relative scatter of a variance ~ sqrt(2 / (K - 1))) and can fall below
+    the Poisson variance, which is a floor: clustering can only add variance to counts
+    (Poisson plus a positive sample-variance term; e.g. Trenti & Stiavelli 2008, ApJ 676,
+    767, REFERENCES.md section 7). So the clustering excess ``C_J - C_P`` is kept only along the
+    directions where it is positive. In one dimension this is ``max(var_P, var_J)``.
+    """
+    c_p = np.array(cov_poisson, dtype=float, copy=True)
+    c_j = np.array(cov_jackknife, dtype=float, copy=True)
+    if c_p.ndim != 2 or c_p.shape[0] != c_p.shape[1] or c_j.shape != c_p.shape:
+        raise InputError(
+            f"`cov_poisson` and `cov_jackknife` must be square and of one shape; got "
+            f"{c_p.shape} and {c_j.shape}"
+        )
+    excess = 0.5 * ((c_j - c_p) + (c_j - c_p).T)
+    eigenvalues, vectors = np.linalg.eigh(excess)
+    positive = (vectors * np.clip(eigenvalues, 0.0, None)) @ vectors.T
+    return c_p + positive
+
+
+# ============================================================================ forward model
+#: Largest extension (mag) of the true-magnitude grid beyond the outer bin edges.
+_MAX_EXTENSION_MAG = 6.0
+#: Probe step (mag) when searching for the extension.
+_EXTENSION_PROBE_MAG = 0.02
+#: Effective area below this fraction of its maximum in the bins counts as "no detections".
+#: Beyond it the detected in-scatter is < 1e-9 of a bin's content for count slopes below
+#: ~1 mag^-1 over the 6 mag cap (10^(6 slope) * 1e-12 < 1e-6; judgement call, no source).
+_NEGLIGIBLE_AREA_FRACTION = 1e-12
+
+
+def _gaussian_cell_integral(x):
+    """G(x) = x Phi(x) + phi(x), an antiderivative of the standard normal CDF."""
+    return x * special.ndtr(x) + np.exp(-0.5 * x * x) / math.sqrt(2.0 * math.pi)
+
+
+def _as_magnitude_function(value, name, grid_probe):
+    """A callable m -> float ndarray from a callable or a constant; None stays None."""
+    if value is None:
+        return None
+    if callable(value):
+        function = value
+    elif isinstance(value, numbers.Real) and not isinstance(value, bool):
+        constant = float(value)
+        if not math.isfinite(constant):
+            raise InputError(f"`{name}` must be finite; got {constant}")
+
+        def function(m, constant=constant):
+            return np.full(np.shape(m), constant)
+    else:
+        raise InputTypeError(
+            f"`{name}` must be a number or a callable of true magnitude; got "
+            f"{type(value).__name__}"
+        )
+    _evaluate(function, grid_probe, name)
+    return function
+
+
+def _evaluate(function, m, name):
+    """Evaluate ``function`` at ``m``; check a finite, non-negative array of m's shape."""
+    try:
+        values = np.asarray(function(np.array(m, dtype=float, copy=True)), dtype=float)
+    except (TypeError, ValueError) as error:
+        raise InputTypeError(
+            f"`{name}` must map an array of magnitudes to numbers; calling it failed: {error}"
+        ) from error
+    if values.shape != np.shape(m):
+        values = np.broadcast_to(values, np.shape(m)).astype(float)
+    bad = ~np.isfinite(values) | (values < 0.0)
+    if bad.any():
+        position = int(np.flatnonzero(bad.reshape(-1))[0])
+        raise InputError(
+            f"`{name}` must be finite and >= 0; got {values.reshape(-1)[position]} at "
+            f"{np.asarray(m).reshape(-1)[position]:.4f} mag"
+        )
+    return values
+
+
+class ForwardModel:
+    """Expected observed counts per magnitude bin for a count model.
+
+    Parameters
+    ----------
+    bin_edges_mag : array_like of float, shape (n_bins + 1,)
+        Edges of the observed-magnitude bins (AB); strictly increasing.
+    effective_area_deg2 : float or callable
+        A_eff(m_true) in deg^2: a constant (a complete survey of that area), or a vectorised
+        callable of true magnitude such as ``lambda m: area * completeness(m)`` or
+        ``lambda m: completeness.effective_area_deg2(m, coverage, depth)``.
+    scatter_mag : float or callable, optional
+        Gaussian photometric scatter sigma(m_true) in mag (a constant or a vectorised callable);
+        None or 0 for none.
+    grid_step_mag : float
+        Largest cell of the true-magnitude integration grid, in mag; 0.01 by default.
+    area_deg2 : float, optional
+        Geometric footprint area in deg^2, the reference for completeness ``A_eff / area`` and
+        for raw densities. Default: the largest effective area on the grid (right when the
+        completeness plateau is 1).
+    scatter_reach : float
+        How many sigma beyond the outer bin edges the true-magnitude grid reaches; 5 by default.
+    true_mag_limits : tuple of float, optional
+        Explicit (bright, faint) limits of the true-magnitude grid, overriding the automatic
+        extension.
+
+    Attributes
+    ----------
+    bin_edges_mag : ndarray, shape (n_bins + 1,)
+    n_bins : int
+    grid_mag, grid_width_mag : ndarray, shape (n_grid,)
+        Centres and widths of the true-magnitude cells.
+    effective_area_grid_deg2, scatter_grid_mag : ndarray, shape (n_grid,)
+        A_eff and sigma at the cell centres.
+    kernel : ndarray, shape (n_bins, n_grid)
+        ``K[i, j]``: integral over cell j of P(m_obs in bin i | m_true), in mag.
+    area_deg2 : float
+
+    Notes
+    -----
+    The expected observed count in bin i is
+
+    ``mu_i = int dm n(m; theta) A_eff(m) int_{bin i} N(m_obs; m, sigma(m)) dm_obs``,
+
+    the intrinsic counts times the effective area, convolved with the scatter and integrated
+    over the bin (the Eddington 1913, MNRAS 73, 359 problem, forward-modelled). It is evaluated
+    as ``mu = (K * A_eff) @ n`` on cells of at most ``grid_step_mag``, taking n and A_eff at
+    the cell centre and integrating the Gaussian bin probability over each cell exactly:
+    ``int_a^b [Phi((e - m)/s)] dm = s [G((e - a)/s) - G((e - b)/s)]`` with
+    ``G(x) = x Phi(x) + phi(x)``. Without scatter K is the overlap of cell and bin. Cells tile
+    each bin exactly, so the only approximation is the midpoint rule for n A_eff (relative
+    error ~ (step slope ln10)^2 / 24 ~ 1e-5 at the defaults).
+
+    Sources scatter into the bins from outside them, so the true-magnitude grid extends beyond
+    the outer bin edges: on each side up to where a source is more than ``scatter_reach`` sigma
+    from the nearest edge, or (on the faint side) where A_eff has fallen below 1e-12 of its
+    largest value in the bins, whichever is nearer, and never more than 6 mag (a
+    :class:`CountsWarning` says so if that cap binds). The count model is extrapolated over the
+    extension. Detection is taken to depend on the true magnitude only (as an injection-
+    recovery completeness measures it), independently of the measurement error.
+    """
+
+    def __init__(
+        self,
+        bin_edges_mag,
+        effective_area_deg2,
+        scatter_mag=None,
+        grid_step_mag=0.01,
+        area_deg2=None,
+        scatter_reach=5.0,
+        true_mag_limits=None,
+    ):
+        edges = self._edges_iv(bin_edges_mag)
+        step = _check_real(grid_step_mag, "grid_step_mag", 0.0, 0.5, high_open=False)
+        reach = _check_real(scatter_reach, "scatter_reach", 0.0, 20.0, high_open=False)
+        probe = np.linspace(edges[0], edges[-1], 257)
+        area_fn = _as_magnitude_function(effective_area_deg2, "effective_area_deg2", probe)
+        if area_fn is None:
+            raise InputTypeError("`effective_area_deg2` must be a number or a callable; got None")
+        scatter_fn = _as_magnitude_function(scatter_mag, "scatter_mag", probe)
+        self._area_fn = area_fn
+        self._scatter_fn = scatter_fn
+
+        # Cells inside the bins: each bin split evenly into cells of at most `step`.
+        inner = [
+            np.linspace(lo, hi, max(1, math.ceil((hi - lo) / step - 1e-9)) + 1)[:-1]
+            for lo, hi in itertools.pairwise(edges)
+        ]
+        inner_lo = np.concatenate(inner)
+        inner_hi = np.r_[inner_lo[1:], edges[-1]]
+        inner_mid = 0.5 * (inner_lo + inner_hi)
+        inner_area = _evaluate(area_fn, inner_mid, "effective_area_deg2")
+        if not np.any(inner_area > 0.0):
+            raise InputError(
+                "`effective_area_deg2` must be > 0 somewhere in the bins; got 0 over "
+                f"[{edges[0]:g}, {edges[-1]:g}] mag"
+            )
+        if true_mag_limits is not None:
+            bright, faint = self._limits_iv(true_mag_limits, edges)
+        elif scatter_fn is None:
+            bright, faint = edges[0], edges[-1]
+        else:
+            bright, faint = self._extension(edges, reach, float(inner_area.max()))
+        n_bright = math.ceil((edges[0] - bright) / step - 1e-9)
+        n_faint = math.ceil((faint - edges[-1]) / step - 1e-9)
+        bright_lo = np.linspace(bright, edges[0], n_bright + 1)[:-1] if n_bright else []
+        faint_lo = np.linspace(edges[-1], faint, n_faint + 1)[:-1] if n_faint else []
+        cell_lo = np.concatenate([np.asarray(bright_lo, float), inner_lo, faint_lo])
+        cell_hi = np.r_[cell_lo[1:], faint if n_faint else edges[-1]]
+        mid = 0.5 * (cell_lo + cell_hi)
+        area_grid = _evaluate(area_fn, mid, "effective_area_deg2")
+        if scatter_fn is None:
+            sigma = np.zeros(mid.size)
+        else:
+            sigma = _evaluate(scatter_fn, mid, "scatter_mag")
+
+        if area_deg2 is None:
+            reference_area = float(area_grid.max())
+        else:
+            reference_area = _check_real(area_deg2, "area_deg2", 0.0)
+            largest = float(area_grid.max())
+            if largest > reference_area * (1.0 + 1e-9):
+                raise InputError(
+                    f"`effective_area_deg2` must not exceed `area_deg2` ({reference_area:g} "
+                    f"deg^2); got {largest:g} deg^2 (completeness above 1)"
+                )
+
+        self.bin_edges_mag = _read_only(edges)
+        self.n_bins = int(edges.size - 1)
+        self.grid_mag = _read_only(mid)
+        self.grid_width_mag = _read_only(cell_hi - cell_lo)
+        self.effective_area_grid_deg2 = _read_only(area_grid)
+        self.scatter_grid_mag = _read_only(sigma)
+        self.area_deg2 = reference_area
+        self.grid_step_mag = step
+        self.scatter_reach = reach
+        self.kernel = _read_only(self._kernel(edges, cell_lo, cell_hi, sigma))
+        self._response = _read_only(self.kernel * area_grid[None, :])
+        self._bin_of_cell = np.searchsorted(edges, mid, side="right") - 1
+
+    # -------------------------------------------------------------- construction helpers
+    @staticmethod
+    def _edges_iv(bin_edges_mag):
+        edges, _ = _as_magnitudes(bin_edges_mag, "bin_edges_mag")
+        if edges.ndim != 1 or edges.size < 2:
+            raise InputError(
+                f"`bin_edges_mag` must be a 1-D array of at least 2 edges; got shape {edges.shape}"
+            )
+        if not np.all(np.isfinite(edges)):
+            raise InputError("`bin_edges_mag` must be finite magnitudes")
+        steps = np.diff(edges)
+        if np.any(steps <= 0.0):
+            position = int(np.flatnonzero(steps <= 0.0)[0])
+            raise InputError(
+                f"`bin_edges_mag` must be strictly increasing; got {edges[position]:g} then "
+                f"{edges[position + 1]:g} at index {position}"
+            )
+        return edges
+
+    @staticmethod
+    def _limits_iv(limits, edges):
+        try:
+            bright, faint = limits
+        except (TypeError, ValueError) as error:
+            raise InputTypeError(
+                f"`true_mag_limits` must be a pair (bright, faint); got {limits!r}"
+            ) from error
+        bright = _check_real(bright, "true_mag_limits[0]")
+        faint = _check_real(faint, "true_mag_limits[1]")
+        if bright > edges[0] or faint < edges[-1]:
+            raise InputError(
+                f"`true_mag_limits` must contain the bins [{edges[0]:g}, {edges[-1]:g}]; "
+                f"got ({bright:g}, {faint:g})"
+            )
+        return bright, faint
+
+    def _extension(self, edges, reach, largest_area):
+        """(bright, faint) true-magnitude limits of the grid (see the class Notes)."""
+        offsets = np.arange(1, round(_MAX_EXTENSION_MAG / _EXTENSION_PROBE_MAG) + 1)
+        offsets = offsets * _EXTENSION_PROBE_MAG
+        limits = []
+        for edge, direction in ((edges[0], -1.0), (edges[-1], 1.0)):
+            m = edge + direction * offsets
+            sigma = _evaluate(self._scatter_fn, m, "scatter_mag")
+            reaches = reach * sigma >= offsets
+            if direction > 0:
+                area = _evaluate(self._area_fn, m, "effective_area_deg2")
+                reaches &= area > _NEGLIGIBLE_AREA_FRACTION * largest_area
+            if reaches[-1]:
+                side = "faint" if direction > 0 else "bright"
+                warnings.warn(
+                    f"sources {_MAX_EXTENSION_MAG:g} mag beyond the {side} bin edge {edge:g} can "
+                    f"still scatter into the bins (sigma = {sigma[-1]:.3g} mag there); the "
+                    "true-magnitude grid is cut there (give `true_mag_limits` to choose)",
+                    CountsWarning,
+                    stacklevel=3,
+                )
+                extension = _MAX_EXTENSION_MAG
+            elif reaches.any():
+                extension = float(offsets[np.flatnonzero(reaches)[-1]]) + _EXTENSION_PROBE_MAG
+            else:
+                extension = reach * float(sigma[0]) if sigma[0] > 0 else 0.0
+                extension = min(max(extension, 0.0), _EXTENSION_PROBE_MAG)
+            limits.append(edge + direction * extension)
+        return limits[0], limits[1]
+
+    @staticmethod
+    def _kernel(edges, cell_lo, cell_hi, sigma):
+        n_bins = edges.size - 1
+        kernel = np.empty((n_bins, cell_lo.size))
+        sharp = sigma <= 1e-9
+        # Exact cell/bin overlap where there is no scatter.
+        overlap = np.clip(
+            np.minimum(cell_hi[None, :], edges[1:, None])
+            - np.maximum(cell_lo[None, :], edges[:-1, None]),
+            0.0,
+            None,
+        )
+        kernel[:, sharp] = overlap[:, sharp]
+        soft = ~sharp
+        if soft.any():
+            s = sigma[soft]
+            a = cell_lo[soft]
+            b = cell_hi[soft]
+            # W[k, j] = integral over cell j of Phi((e_k - m) / s_j) dm for every edge e_k.
+            w = s[None, :] * (
+                _gaussian_cell_integral((edges[:, None] - a[None, :]) / s[None, :])
+                - _gaussian_cell_integral((edges[:, None] - b[None, :]) / s[None, :])
+            )
+            kernel[:, soft] = np.clip(w[1:] - w[:-1], 0.0, None)
+        return kernel
+
+    # -------------------------------------------------------------- evaluation
+    def _response_for(self, area_grid):
+        return self.kernel * area_grid[None, :]
+
+    def expected_counts(self, model):
+        """Expected observed counts per bin, mu_i.
+
+        Parameters
+        ----------
+        model : CountModel
+            Intrinsic counts.
+
+        Returns
+        -------
+        ndarray of float, shape (n_bins,)
+        """
+        if not isinstance(model, CountModel):
+            raise InputTypeError(f"`model` must be a CountModel; got {type(model).__name__}")
+        return self._response @ (10.0 ** model._log10_density(self.grid_mag))
+
+    def intrinsic_counts_per_deg2(self, model):
+        """Integral of the intrinsic n(m) over each bin (true magnitudes), per deg^2."""
+        if not isinstance(model, CountModel):
+            raise InputTypeError(f"`model` must be a CountModel; got {type(model).__name__}")
+        return model.integral(self.bin_edges_mag[:-1], self.bin_edges_mag[1:])
+
+    def bin_effective_area_deg2(self):
+        """Mean A_eff over each bin (true magnitudes, no scatter), deg^2; shape (n_bins,)."""
+        inside = (self._bin_of_cell >= 0) & (self._bin_of_cell < self.n_bins)
+        weighted = np.bincount(
+            self._bin_of_cell[inside],
+            weights=(self.effective_area_grid_deg2 * self.grid_width_mag)[inside],
+            minlength=self.n_bins,
+        )
+        return weighted / np.diff(self.bin_edges_mag)
+
+    def bin_completeness(self):
+        """Mean completeness ``A_eff / area_deg2`` over each bin; shape (n_bins,)."""
+        return self.bin_effective_area_deg2() / self.area_deg2
+
+    def region_area_grids(self, region_effective_area_deg2):
+        """Per-region A_eff on the grid, shape (K, n_grid), checked to add up to A_eff.
+
+        Parameters
+        ----------
+        region_effective_area_deg2 : sequence of float or of callables, length K
+            Numbers are region areas (deg^2): region k then has the share a_k / sum(a) of
+            A_eff at every magnitude (uniform depth). Callables are each region's own A_eff(m);
+            they must add up to the forward model's A_eff.
+        """
+        if isinstance(region_effective_area_deg2, (str, bytes)) or not isinstance(
+            region_effective_area_deg2, (Sequence, np.ndarray)
+        ):
+            raise InputTypeError(
+                "`region_effective_area_deg2` must be a sequence of areas or callables; got "
+                f"{type(region_effective_area_deg2).__name__}"
+            )
+        items = list(region_effective_area_deg2)
+        if all(callable(item) for item in items):
+            grids = np.array(
+                [
+                    _evaluate(item, self.grid_mag, f"region_effective_area_deg2[{k}]")
+                    for k, item in enumerate(items)
+                ]
+            )
+            total = grids.sum(axis=0)
+            scale = max(float(self.effective_area_grid_deg2.max()), 1e-300)
+            mismatch = float(np.max(np.abs(total - self.effective_area_grid_deg2))) / scale
+            if mismatch > 1e-6:
+                raise InputError(
+                    "`region_effective_area_deg2` must add up to `effective_area_deg2`; they "
+                    f"differ by up to {mismatch:.3g} of the largest effective area"
+                )
+            return grids
+        areas = np.array(
+            [_check_real(item, f"region_effective_area_deg2[{k}]", 0.0)
+             for k, item in enumerate(items)]
+        )
+        shares = areas / areas.sum()
+        return shares[:, None] * self.effective_area_grid_deg2[None, :]
+
+    def __repr__(self):
+        scatter = "none" if not np.any(self.scatter_grid_mag > 0) else (
+            f"{self.scatter_grid_mag.min():.3g}-{self.scatter_grid_mag.max():.3g} mag"
+        )
+        return (
+            f"ForwardModel({self.n_bins} bins {self.bin_edges_mag[0]:g}-"
+            f"{self.bin_edges_mag[-1]:g} mag, true grid {self.grid_mag[0]:.3f}-"
+            f"{self.grid_mag[-1]:.3f} mag in {self.grid_mag.size} cells, scatter {scatter}, "
+            f"area {self.area_deg2:.6g} deg^2)"
+        )
+
+
+def _read_only(array, dtype=float):
+    array = np.array(array, dtype=dtype, copy=True)
+    array.flags.writeable = False
+    return array
+
+
+# ============================================================================ fitting
+def _numerical_hessian(function, theta, steps):
+    """Central-difference Hessian of a scalar function."""
+    n = theta.size
+    hessian = np.empty((n, n))
+    f0 = function(theta)
+    for i in range(n):
+        e_i = np.zeros(n)
+        e_i[i] = steps[i]
+        hessian[i, i] = (function(theta + e_i) - 2.0 * f0 + function(theta - e_i)) / steps[i] ** 2
+        for j in range(i):
+            e_j = np.zeros(n)
+            e_j[j] = steps[j]
+            value = (
+                function(theta + e_i + e_j)
+                - function(theta + e_i - e_j)
+                - function(theta - e_i + e_j)
+                + function(theta - e_i - e_j)
+            ) / (4.0 * steps[i] * steps[j])
+            hessian[i, j] = hessian[j, i] = value
+    return hessian
+
+
+def _numerical_gradient(function, theta, steps):
+    gradient = np.empty(theta.size)
+    for i in range(theta.size):
+        e_i = np.zeros(theta.size)
+        e_i[i] = steps[i]
+        gradient[i] = (function(theta + e_i) - function(theta - e_i)) / (2.0 * steps[i])
+    return gradient
+
+
+class _Likelihood:
+    """Poisson likelihood of binned counts under ``response @ n(grid; theta)``.
+
+    The normalisation enters mu linearly, so for fixed shape parameters its maximum-likelihood
+    value is closed-form (sum mu = sum N); the optimiser works on the shape parameters only.
+    Location parameters (m_break) are mapped into the fit range with a logistic.
+    """
+
+    def __init__(self, template, grid_mag, response, counts, location_range):
+        self.template = template
+        self.grid_mag = grid_mag
+        self.response = response
+        self.counts = counts.astype(float)
+        self.total = float(self.counts.sum())
+        self.names = template.param_names
+        self.location_range = location_range
+
+    # full parameter vector -> log-likelihood
+    def loglike(self, theta):
+        model = self.template.with_params(theta)
+        # Trial parameters far from the optimum may overflow; they get -inf, not a warning.
+        with np.errstate(over="ignore", invalid="ignore"):
+            mu = self.response @ (10.0 ** model._log10_density(self.grid_mag))
+        if np.any((mu <= 0.0) & (self.counts > 0)) or not np.all(np.isfinite(mu)):
+            return -np.inf
+        return _poisson_loglike(mu, self.counts)
+
+    def expected(self, theta):
+        model = self.template.with_params(theta)
+        return self.response @ (10.0 ** model._log10_density(self.grid_mag))
+
+    def _internal_to_value(self, name, u):
+        if name in self.template._location_params:
+            lo, hi = self.location_range
+            return lo + (hi - lo) * special.expit(u)
+        return u
+
+    def _value_to_internal(self, name, value):
+        if name in self.template._location_params:
+            lo, hi = self.location_range
+            fraction = min(max((value - lo) / (hi - lo), 1e-6), 1.0 - 1e-6)
+            return math.log(fraction / (1.0 - fraction))
+        return value
+
+    def _profiled(self, values):
+        """Best log10_norm and log-likelihood for the given shape values (norm free)."""
+        trial = dict(values)
+        trial["log10_norm"] = 0.0
+        model = self.template.with_params(trial)
+        log10_n = model._log10_density(self.grid_mag)
+        shift = float(np.max(log10_n))
+        with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+            shape = self.response @ (10.0 ** (log10_n - shift))
+            total_shape = float(shape.sum())
+        if not (total_shape > 0.0 and math.isfinite(total_shape)):
+            return math.nan, -np.inf
+        mu = shape * (self.total / total_shape)
+        if np.any((mu <= 0.0) & (self.counts > 0)):
+            return math.nan, -np.inf
+        log10_norm = math.log10(self.total / total_shape) - shift
+        return log10_norm, _poisson_loglike(mu, self.counts)
+
+    def maximise(self, start, fixed=None):
+        """Maximise over the parameters not in ``fixed``; returns (theta, loglike).
+
+        Parameters
+        ----------
+        start : dict
+            Starting values for every parameter.
+        fixed : dict, optional
+            Parameters held at given values.
+        """
+        fixed = dict(fixed or {})
+        free = [n for n in self.names if n != "log10_norm" and n not in fixed]
+        norm_fixed = "log10_norm" in fixed
+
+        def assemble(u):
+            values = dict(fixed)
+            for name, x in zip(free, u, strict=True):
+                values[name] = self._internal_to_value(name, x)
+            return values
+
+        def objective(u):
+            values = assemble(u)
+            if norm_fixed:
+                theta = [values[n] for n in self.names]
+                value = self.loglike(np.array(theta))
+            else:
+                _, value = self._profiled(values)
+            return -value if math.isfinite(value) else 1e300
+
+        u0 = np.array([self._value_to_internal(n, start[n]) for n in free], dtype=float)
+        if free:
+            u = u0
+            for _ in range(3):
+                # Nelder-Mead (no gradients needed; the sharp break makes mu only piecewise
+                # smooth in m_break). Restarted from its own answer, which un-sticks a
+                # collapsed simplex.
+                simplex_steps = np.array(
+                    [0.5 if n in self.template._location_params else 0.05 for n in free]
+                )
+                simplex = np.vstack([u] + [u + np.diag(simplex_steps)[i] for i in range(u.size)])
+                result = optimize.minimize(
+                    objective,
+                    u,
+                    method="Nelder-Mead",
+                    options={
+                        "initial_simplex": simplex,
+                        "xatol": 1e-8,
+                        "fatol": 1e-10,
+                        "maxiter": 20000,
+                        "maxfev": 40000,
+                    },
+                )
+                converged = np.allclose(result.x, u, atol=1e-7, rtol=0.0)
+                u = result.x
+                if converged:
+                    break
+            if not result.success:
+                raise CountsFitError(f"the count fit did not converge: {result.message}")
+        else:
+            u = u0
+        values = assemble(u)
+        if not norm_fixed:
+            values["log10_norm"], _ = self._profiled(values)
+        theta = np.array([values[n] for n in self.names], dtype=float)
+        return theta, self.loglike(theta)
+
+
+def _model_template(model, fit_lo, fit_hi):
+    if isinstance(model, CountModel):
+        return model
+    if isinstance(model, str):
+        if model not in _MODELS_BY_NAME:
+            raise InputError(
+                f"`model` must be one of {', '.join(map(repr, _MODELS_BY_NAME))} or a "
+                f"CountModel; got {model!r}"
+            )
+        # A reference magnitude near the middle of the data decorrelates norm and slope.
+        reference = 0.5 * round(fit_lo + fit_hi)
+        cls = _MODELS_BY_NAME[model]
+        defaults = {"reference_mag": reference}
+        if "m_break" in cls.param_names:
+            defaults["m_break"] = 0.5 * (fit_lo + fit_hi)
+        return cls(**defaults)
+    raise InputTypeError(
+        f"`model` must be a model name or a CountModel; got {type(model).__name__}"
+    )
+
+
+class CountsFit:
+    """Fit a count model to binned counts through a forward model (scikit-learn style).
+
+    Parameters
+    ----------
+    model : CountModel or {"power_law", "broken_power_law", "double_power_law"}
+        A model instance as template (its fixed settings ``reference_mag``, ``m_bright``,
+        ``transition_mag`` are kept; its parameter values are not used) or a name (then
+        ``reference_mag`` is the middle of the fit range rounded to 0.5 mag).
+    forward : ForwardModel
+        Bins, effective area and scatter.
+    fit_range_mag : tuple of float, optional
+        (bright, faint) observed magnitudes; the bins lying wholly inside are fitted. Default:
+        all bins.
+    n_bootstrap : int
+        Parametric-bootstrap draws for the goodness-of-fit p-value; 0 skips it
+        (``p_value_`` is then None).
+
+    Attributes
+    ----------
+    model_ : CountModel
+        The fitted model.
+    params_ : dict of str to float
+        Maximum-likelihood parameters.
+    cov_ : ndarray, shape (n_params, n_params)
+        Reported covariance (``param_names`` order): ``cov_poisson_`` alone, or combined with
+        the jackknife by :func:`combine_covariances` when regions are given.
+    cov_poisson_ : ndarray
+        Inverse Hessian of -ln L (central differences).
+    cov_jackknife_ : ndarray or None
+        Delete-one jackknife covariance over regions.
+    jackknife_params_ : ndarray, shape (K, n_params), or None
+        Parameters refitted with each region left out.
+    estimates_ : dict of str to Estimate
+        One normal Estimate per parameter from ``cov_`` with its Poisson/clustering budget.
+    loglike_ : float
+        Poisson log-likelihood (including -ln N!) at the fit.
+    deviance_ : float
+        Poisson deviance; ``dof_`` = fitted bins - parameters.
+    p_value_ : float or None
+        Parametric-bootstrap p-value of the deviance.
+    aic_, bic_ : float
+        ``2 k - 2 ln L`` and ``k ln(n_bins) - 2 ln L``.
+    n_sources_, n_bins_, n_regions_ : int
+        Sources and bins in the fit; regions in the jackknife (0 without).
+    expected_counts_ : ndarray, shape (n_bins,)
+        Expected observed counts in every bin of the forward model at the fit.
+    used_bins_ : ndarray of bool, shape (n_bins,)
+        Bins inside the fit range.
+
+    Notes
+    -----
+    Maximises ``ln L = sum_i [N_i ln mu_i - mu_i - ln N_i!]`` over the fitted bins (Cash 1979,
+    ApJ 228, 939, for binned Poisson data), with mu from :class:`ForwardModel`. The normalisation
+    is profiled in closed form (sum mu = sum N at the optimum) and the shape parameters found by
+    Nelder-Mead; broken models start from the best of a scan over m_break, which is kept inside
+    the fit range. The Poisson covariance is the inverse of the central-difference Hessian of
+    -ln L in the natural parameters (steps refined to a tenth of the first-pass sigma).
+
+    Clustering makes counts in cells over-dispersed, so with ``region_counts`` (K footprint
+    regions) every parameter is refitted with each region left out; the delete-one jackknife
+    covariance captures Poisson and clustering variance together. The reported covariance is
+    ``C_P + PSD(C_J - C_P)`` (:func:`combine_covariances`): the jackknife where it exceeds the
+    Poisson floor, never less than the floor, which protects against a noisy jackknife from few
+    regions. Each Estimate's budget gives the Poisson share ``var_P / var`` and the clustering
+    share (``"cosmic_variance"``) of its variance; for any smooth function of one parameter,
+    the shares of the variance of log10 are the same ratios (delta method). With regions, the
+    Estimates' intervals use Student-t quantiles with the Welch-Satterthwaite degrees of
+    freedom of the jackknife-based variance (K - 1 when clustering dominates): a variance from
+    K regions is itself uncertain, and normal quantiles would under-cover (about 66 % instead
+    of 68 % for K = 16).
+
+    Goodness of fit: the deviance ``D = 2 sum[N ln(N / mu) - (N - mu)]`` and its
+    parametric-bootstrap p-value ``(1 + #{D* >= D}) / (1 + B)`` from B Poisson redraws of the
+    fitted mu, each refitted (Davison & Hinkley 1997, Bootstrap Methods, sec. 4.2; from memory).
+    Under clustering the deviance exceeds its Poisson expectation; a small p-value with regions
+    signals the over-dispersion that the jackknife accounts for. Model comparison: AIC (Akaike
+    1974, IEEE TAC 19, 716) and BIC (Schwarz 1978, Ann. Statist. 6, 461) with n = fitted bins.
+    """
+
+    def __init__(self, model="power_law", forward=None, fit_range_mag=None, n_bootstrap=200):
+        self.model = model
+        self.forward = forward
+        self.fit_range_mag = fit_range_mag
+        self.n_bootstrap = n_bootstrap
+
+    # -------------------------------------------------------------- validation
+    def _fit_iv(self, observed_counts, region_counts, region_effective_area_deg2):
+        forward = self.forward
+        if not isinstance(forward, ForwardModel):
+            raise InputTypeError(
+                f"`forward` must be a ForwardModel; got {type(forward).__name__}"
+            )
+        n_bootstrap = _check_count(self.n_bootstrap, "n_bootstrap", 0)
+        edges = forward.bin_edges_mag
+        if self.fit_range_mag is None:
+            used = np.ones(forward.n_bins, dtype=bool)
+        else:
+            try:
+                lo, hi = self.fit_range_mag
+            except (TypeError, ValueError) as error:
+                raise InputTypeError(
+                    f"`fit_range_mag` must be a pair (bright, faint); got {self.fit_range_mag!r}"
+                ) from error
+            lo = _check_real(lo, "fit_range_mag[0]")
+            hi = _check_real(hi, "fit_range_mag[1]")
+            if lo >= hi:
+                raise InputError(f"`fit_range_mag` must have bright < faint; got ({lo}, {hi})")
+            slack = 1e-9 * max(1.0, abs(edges[0]), abs(edges[-1]))
+            if lo < edges[0] - slack or hi > edges[-1] + slack:
+                raise InputError(
+                    f"`fit_range_mag` must lie within the binned magnitudes [{edges[0]:g}, "
+                    f"{edges[-1]:g}]; got ({lo:g}, {hi:g})"
+                )
+            used = (edges[:-1] >= lo - slack) & (edges[1:] <= hi + slack)
+            if not used.any():
+                raise InputError(
+                    f"`fit_range_mag` ({lo:g}, {hi:g}) contains no whole bin of `bin_edges_mag`"
+                )
+        counts = _as_counts(observed_counts, "observed_counts", (forward.n_bins,))
+        regions = None
+        region_grids = None
+        if region_counts is not None:
+            regions = _as_counts(region_counts, "region_counts")
+            if regions.ndim != 2 or regions.shape[1] != forward.n_bins:
+                raise InputError(
+                    f"`region_counts` must have shape (K, {forward.n_bins}); got {regions.shape}"
+                )
+            if regions.shape[0] < 3:
+                raise InputError(
+                    f"`region_counts` must have at least 3 regions for a jackknife; got "
+                    f"{regions.shape[0]}"
+                )
+            if not np.array_equal(regions.sum(axis=0), counts):
+                raise InputError(
+                    "`region_counts` must add up to `observed_counts` in every bin; they differ "
+                    f"in {int(np.count_nonzero(regions.sum(axis=0) != counts))} bins"
+                )
+            if region_effective_area_deg2 is None:
+                raise InputError(
+                    "`region_effective_area_deg2` is needed with `region_counts` (the areas or "
+                    "effective-area callables of the K regions)"
+                )
+            region_grids = forward.region_area_grids(region_effective_area_deg2)
+            if region_grids.shape[0] != regions.shape[0]:
+                raise InputError(
+                    f"`region_effective_area_deg2` must have one entry per region "
+                    f"({regions.shape[0]}); got {region_grids.shape[0]}"
+                )
+        elif region_effective_area_deg2 is not None:
+            raise InputError("`region_effective_area_deg2` was given without `region_counts`")
+        return counts, used, n_bootstrap, regions, region_grids
+
+    # -------------------------------------------------------------- fit
+    def fit(self, observed_counts, rng=None, region_counts=None, region_effective_area_deg2=None):
+        """Fit the model.
+
+        Parameters
+        ----------
+        observed_counts : array_like of int, shape (n_bins,)
+            Sources per observed-magnitude bin of ``forward``. Not modified.
+        rng : int or numpy.random.Generator, optional
+            For the parametric bootstrap.
+        region_counts : array_like of int, shape (K, n_bins), optional
+            The same counts split over K >= 3 footprint regions (adding up to
+            ``observed_counts``), for the jackknife.
+        region_effective_area_deg2 : sequence, length K, optional
+            Region areas in deg^2 (uniform depth) or per-region A_eff callables; see
+            :meth:`ForwardModel.region_area_grids`. Required with ``region_counts``.
+
+        Returns
+        -------
+        CountsFit
+            ``self``, fitted.
+
+        Raises
+        ------
+        InputError
+            Bad bins, counts or ranges; too few sources or bins for the model's parameters;
+            sources in a bin with zero effective area.
+        CountsFitError
+            When the likelihood does not converge or its curvature is not positive definite.
+
+        Warns
+        -----
+        CountsWarning
+            Fewer than :data:`MIN_SOURCES` sources; bins with completeness < 0.5 in the fit.
+        """
+        counts, used, n_bootstrap, regions, region_grids = self._fit_iv(
+            observed_counts, region_counts, region_effective_area_deg2
+        )
+        generator = _as_generator(rng)
+        forward = self.forward
+        edges = forward.bin_edges_mag
+        fit_lo = float(edges[:-1][used][0])
+        fit_hi = float(edges[1:][used][-1])
+        template = _model_template(self.model, fit_lo, fit_hi)
+        n_params = len(template.param_names)
+        used_counts = counts[used]
+        n_sources = int(used_counts.sum())
+        n_bins = int(used.sum())
+        if n_sources <= n_params:
+            raise InputError(
+                f"`observed_counts` has {n_sources} sources in the fit range [{fit_lo:g}, "
+                f"{fit_hi:g}] mag; too few to fit the {n_params} parameters of {template.name}"
+            )
+        if n_bins <= n_params:
+            raise InputError(
+                f"the fit range [{fit_lo:g}, {fit_hi:g}] mag holds {n_bins} bins; "
+                f"{template.name} needs more than {n_params}"
+            )
+        bin_area = forward.bin_effective_area_deg2()
+        response = forward._response[used]
+        dead = (response.sum(axis=1) <= 0.0) & (used_counts > 0)
+        if dead.any():
+            i = int(np.flatnonzero(used)[np.flatnonzero(dead)[0]])
+            raise InputError(
+                f"`observed_counts` has {counts[i]} sources in bin [{edges[i]:g}, "
+                f"{edges[i + 1]:g}] mag where the expected count is 0 (zero effective area)"
+            )
+        if n_sources < MIN_SOURCES:
+            warnings.warn(
+                f"only {n_sources} sources in the fit range [{fit_lo:g}, {fit_hi:g}] mag "
+                f"(fewer than {MIN_SOURCES}); the fit and its errors are unreliable",
+                CountsWarning,
+                stacklevel=2,
+            )
+        completeness = forward.bin_completeness()
+        low = used & (completeness < LOW_COMPLETENESS)
+        if low.any():
+            i = int(np.flatnonzero(low)[0])
+            warnings.warn(
+                f"{int(low.sum())} fitted bins have mean completeness below "
+                f"{LOW_COMPLETENESS:g} (from [{edges[i]:g}, {edges[i + 1]:g}] mag, "
+                f"{completeness[i]:.3g}); the fit leans on the completeness model there",
+                CountsWarning,
+                stacklevel=2,
+            )
+
+        likelihood = _Likelihood(template, forward.grid_mag, response, used_counts,
+                                 (fit_lo, fit_hi))
+        theta, loglike = self._maximise_from_data(
+            likelihood, template, used, counts, bin_area, fit_lo, fit_hi
+        )
+        cov_poisson = self._poisson_covariance(likelihood, theta, template)
+
+        cov_jackknife = None
+        jackknife_params = None
+        if regions is not None:
+            jackknife_params = self._jackknife(
+                template, regions[:, used], region_grids, used, theta, (fit_lo, fit_hi)
+            )
+            cov_jackknife = jackknife_covariance(jackknife_params)
+            cov = combine_covariances(cov_poisson, cov_jackknife)
+        else:
+            cov = cov_poisson
+
+        model = template.with_params(theta)
+        expected_all = forward.expected_counts(model)
+        mu = expected_all[used]
+        deviance = _deviance(mu, used_counts.astype(float))
+        p_value = None
+        if n_bootstrap:
+            p_value = self._bootstrap_p_value(likelihood, theta, mu, deviance, n_bootstrap,
+                                              generator)
+
+        self.model_ = model
+        self.params_ = model.params_dict()
+        self.cov_ = cov
+        self.cov_poisson_ = cov_poisson
+        self.cov_jackknife_ = cov_jackknife
+        self.jackknife_params_ = jackknife_params
+        self.loglike_ = float(loglike)
+        self.deviance_ = deviance
+        self.dof_ = n_bins - n_params
+        self.p_value_ = p_value
+        self.aic_ = 2.0 * n_params - 2.0 * loglike
+        self.bic_ = n_params * math.log(n_bins) - 2.0 * loglike
+        self.n_sources_ = n_sources
+        self.n_bins_ = n_bins
+        self.n_regions_ = 0 if regions is None else int(regions.shape[0])
+        self.expected_counts_ = _read_only(expected_all)
+        self.used_bins_ = _read_only(used, dtype=bool)
+        self.fit_range_ = (fit_lo, fit_hi)
+        self.observed_counts_ = _read_only(counts, dtype=np.int64)
+        self.region_counts_ = None if regions is None else _read_only(regions, dtype=np.int64)
+        self.region_area_grids_ = None if region_grids is None else _read_only(region_grids)
+        self.estimates_ = self._estimates(model, cov_poisson, cov, cov_jackknife)
+        self._likelihood = likelihood
+        self._profiles = {}
+        return self
+
+    def _maximise_from_data(self, likelihood, template, used, counts, bin_area, fit_lo, fit_hi):
+        """Start from rough binned densities (and, for a break, a scan), then maximise."""
+        widths = np.diff(self.forward.bin_edges_mag)
+        centres = 0.5 * (self.forward.bin_edges_mag[1:] + self.forward.bin_edges_mag[:-1])
+        good = used & (counts > 0) & (bin_area > 0)
+        m = centres[good]
+        log10_n = np.log10(counts[good] / (bin_area[good] * widths[good]))
+        start = template._initial_params(m, log10_n, fit_lo, fit_hi)
+        if template._location_params:
+            best = None
+            # Scan the break over the inner 80 % of the range (11 positions): the likelihood in
+            # m_break can have several local maxima.
+            for m_break in np.linspace(fit_lo, fit_hi, 13)[1:-1]:
+                trial = dict(start)
+                trial["m_break"] = float(m_break)
+                bright = m <= m_break
+                if bright.sum() >= 2:
+                    trial["slope_bright"] = _line_fit(m[bright], log10_n[bright])[1]
+                if (~bright).sum() >= 2:
+                    trial["slope_faint"] = _line_fit(m[~bright], log10_n[~bright])[1]
+                theta, value = likelihood.maximise(trial, fixed={"m_break": float(m_break)})
+                if best is None or value > best[1]:
+                    best = (theta, value)
+            start = dict(zip(template.param_names, best[0], strict=True))
+        theta, loglike = likelihood.maximise(start)
+        if not math.isfinite(loglike):
+            raise CountsFitError("the count fit found no parameters with a finite likelihood")
+        return theta, loglike
+
+    def _poisson_covariance(self, likelihood, theta, template):
+        names = template.param_names
+        minimum_steps = np.array(
+            [3.0 * self.forward.grid_step_mag if n in template._location_params else 1e-7
+             for n in names]
+        )
+
+        def negative(t):
+            return -likelihood.loglike(t)
+
+        steps = np.maximum(np.array([1e-3] * len(names)), minimum_steps)
+        for _ in range(2):
+            hessian = _numerical_hessian(negative, theta, steps)
+            try:
+                np.linalg.cholesky(hessian)
+            except np.linalg.LinAlgError as error:
+                raise CountsFitError(
+                    f"{template.name} fit: the likelihood's curvature is not positive definite "
+                    f"at the optimum {dict(zip(names, np.round(theta, 4), strict=True))}; the "
+                    "data do not constrain every parameter (narrow the model or widen the range)"
+                ) from error
+            cov = np.linalg.inv(hessian)
+            cov = 0.5 * (cov + cov.T)
+            # Refine: a tenth of each sigma keeps the differences local but well above noise.
+            steps = np.maximum(0.1 * np.sqrt(np.diag(cov)), minimum_steps)
+        return cov
+
+    def _jackknife(self, template, regions, region_grids, used, theta, location_range):
+        kernel = self.forward.kernel[used]
+        total_grid = self.forward.effective_area_grid_deg2
+        total_counts = regions.sum(axis=0)
+        start = dict(zip(template.param_names, theta, strict=True))
+        values = []
+        for k in range(regions.shape[0]):
+            counts_k = total_counts - regions[k]
+            if counts_k.sum() <= len(template.param_names):
+                raise InputError(
+                    f"leaving out region {k} leaves {int(counts_k.sum())} sources; too few for "
+                    "a jackknife refit (use fewer, larger regions)"
+                )
+            response_k = kernel * (total_grid - region_grids[k])[None, :]
+            likelihood_k = _Likelihood(template, self.forward.grid_mag, response_k, counts_k,
+                                       location_range)
+            theta_k, value = likelihood_k.maximise(start)
+            if not math.isfinite(value):
+                raise CountsFitError(f"the jackknife refit without region {k} failed")
+            values.append(theta_k)
+        return np.array(values)
+
+    def _bootstrap_p_value(self, likelihood, theta, mu, deviance, n_bootstrap, generator):
+        start = dict(zip(likelihood.names, theta, strict=True))
+        exceed = 0
+        for _ in range(n_bootstrap):
+            draw = generator.poisson(mu)
+            if draw.sum() == 0:
+                exceed += 1
+                continue
+            redraw = _Likelihood(likelihood.template, likelihood.grid_mag, likelihood.response,
+                                 draw, likelihood.location_range)
+            theta_b, _ = redraw.maximise(start)
+            deviance_b = _deviance(redraw.expected(theta_b), draw.astype(float))
+            exceed += deviance_b >= deviance
+        return (1.0 + exceed) / (1.0 + n_bootstrap)
+
+    def _estimates(self, model, cov_poisson, cov, cov_jackknife):
+        estimates = {}
+        for i, name in enumerate(model.param_names):
+            var_total = float(cov[i, i])
+            var_poisson = float(cov_poisson[i, i])
+            var_jackknife = None if cov_jackknife is None else float(cov_jackknife[i, i])
+            budget = _budget(var_poisson, var_total, self.n_regions_ > 0)
+            dof = _satterthwaite_dof(var_total, var_jackknife, self.n_regions_)
+            estimates[name] = _student_estimate(
+                getattr(model, name), math.sqrt(max(var_total, 0.0)), dof,
+                model._param_units.get(name, ""), budget,
+            )
+        return estimates
+
+    # -------------------------------------------------------------- results
+    #: Attributes that exist only after fit(); reading one earlier raises NotFittedError.
+    _FITTED_ATTRIBUTES = frozenset(
+        {
+            "model_", "params_", "cov_", "cov_poisson_", "cov_jackknife_", "jackknife_params_",
+            "loglike_", "deviance_", "dof_", "p_value_", "aic_", "bic_", "n_sources_", "n_bins_",
+            "n_regions_", "expected_counts_", "used_bins_", "fit_range_", "observed_counts_",
+            "region_counts_", "region_area_grids_", "estimates_",
+        }
+    )
+
+    def __getattr__(self, name):
+        # Only called when normal lookup fails, i.e. for fitted attributes before fit().
+        if name in CountsFit._FITTED_ATTRIBUTES:
+            raise NotFittedError(
+                f"this CountsFit is not fitted yet; call fit() before reading `{name}`"
+            )
+        raise AttributeError(f"'CountsFit' object has no attribute {name!r}")
+
+    def _fitted(self, name):
+        try:
+            return self.__dict__[name]
+        except KeyError:
+            raise NotFittedError(
+                f"this CountsFit is not fitted yet; call fit() before reading `{name}`"
+            ) from None
+
+    def estimate(self, name):
+        """The Estimate of a fitted parameter by name (``slope``, ``log10_norm``, ...)."""
+        estimates = self._fitted("estimates_")
+        if name not in estimates:
+            raise InputError(
+                f"`name` must be one of {list(estimates)}; got {name!r}"
+            )
+        return estimates[name]
+
+    def profile_interval(self, name, level=0.68):
+        """Profile-likelihood interval of one parameter (Poisson likelihood only).
+
+        Parameters
+        ----------
+        name : str
+            Parameter name, e.g. ``"slope"``, ``"slope_faint"``.
+        level : float
+            Confidence level in (0, 1); 0.68 by default.
+
+        Returns
+        -------
+        tuple of float
+            ``(lo, hi)`` where ``2 [ln L_max - ln L_profile(x)] = chi2_1^-1(level)``.
+
+        Notes
+        -----
+        Wilks 1938, Ann. Math. Statist. 9, 60: twice the log-likelihood ratio is asymptotically
+        chi-squared with one degree of freedom. The other parameters are re-maximised at each
+        trial value (the normalisation in closed form). The interval reflects Poisson noise
+        only; with regions, widen it by ``sqrt(cov_[i, i] / cov_poisson_[i, i])`` to include
+        clustering.
+        """
+        model = self._fitted("model_")
+        if name not in model.param_names:
+            raise InputError(f"`name` must be one of {list(model.param_names)}; got {name!r}")
+        level = _check_real(level, "level", 0.0, 1.0)
+        key = (name, level)
+        if key in self._profiles:
+            return self._profiles[key]
+        likelihood = self._likelihood
+        index = model.param_names.index(name)
+        best = model.params
+        target = float(stats.chi2.ppf(level, 1))
+        start = dict(zip(model.param_names, best, strict=True))
+        sigma = math.sqrt(self.cov_poisson_[index, index])
+
+        def deficit(x):
+            _, value = likelihood.maximise(start, fixed={name: float(x)})
+            return 2.0 * (self.loglike_ - value) - target
+
+        ends = []
+        for direction in (-1.0, 1.0):
+            step = 1.5 * math.sqrt(target) * sigma
+            x = best[index] + direction * step
+            for _ in range(30):
+                if deficit(x) > 0.0:
+                    break
+                step *= 2.0
+                x = best[index] + direction * step
+            else:
+                raise CountsFitError(
+                    f"the profile likelihood of `{name}` does not fall by {target:.3g} on the "
+                    f"{'bright' if direction < 0 else 'faint'} side; the interval is open"
+                )
+            ends.append(optimize.brentq(deficit, *sorted((best[index], x)), xtol=1e-6 * sigma))
+        interval = (float(min(ends)), float(max(ends)))
+        self._profiles[key] = interval
+        return interval
+
+    def integral_counts(self, m_limit, area_deg2=None, n_draws=4000, rng=None):
+        """N(<m_limit) per deg^2 and over the footprint; see :func:`integral_counts`."""
+        return integral_counts(self, m_limit, area_deg2=area_deg2, n_draws=n_draws, rng=rng)
+
+    def differential_counts(self, level=0.68):
+        """Raw and corrected binned counts of the fitted data; see :func:`differential_counts`."""
+        self._fitted("model_")
+        return _differential_counts(
+            self.observed_counts_, self.forward, self, self.region_counts_,
+            self.region_area_grids_, level,
+        )
+
+    def to_json(self):
+        """Fit summary with DESIGN.md section 4 names and Estimate JSON values."""
+        model = self._fitted("model_")
+        out = {
+            "model": model.name,
+            "reference_mag": float(model.reference_mag),
+            "fit_range": [float(self.fit_range_[0]), float(self.fit_range_[1])],
+            "n_sources": int(self.n_sources_),
+            "n_bins": int(self.n_bins_),
+            "n_regions": int(self.n_regions_),
+        }
+        for name in model.param_names:
+            out[name] = self.estimates_[name].to_json()
+        out.update(
+            {
+                "loglike": float(self.loglike_),
+                "deviance": float(self.deviance_),
+                "dof": int(self.dof_),
+                "p_value": None if self.p_value_ is None else float(self.p_value_),
+                "aic": float(self.aic_),
+                "bic": float(self.bic_),
+            }
+        )
+        return out
+
+    def summary(self):
+        """A few readable lines: the parameters and the goodness of fit."""
+        model = self._fitted("model_")
+        lines = [
+            f"{model.name} fit to {self.n_sources_} sources in {self.n_bins_} bins "
+            f"[{self.fit_range_[0]:g}, {self.fit_range_[1]:g}] mag"
+            + (f", jackknife over {self.n_regions_} regions" if self.n_regions_ else "")
+        ]
+        for name in model.param_names:
+            lines.append(f"  {name:13s} {self.estimates_[name].format()}")
+        p_text = "not computed" if self.p_value_ is None else f"{self.p_value_:.3g}"
+        lines.append(
+            f"  deviance {self.deviance_:.4g} on {self.dof_} dof (bootstrap p = {p_text}); "
+            f"AIC {self.aic_:.6g}, BIC {self.bic_:.6g}"
+        )
+        return "\n".join(lines)
+
+    def __repr__(self):
+        state = "fitted" if "model_" in self.__dict__ else "not fitted"
+        name = self.model if isinstance(self.model, str) else type(self.model).__name__
+        return f"CountsFit(model={name!r}, fit_range_mag={self.fit_range_mag!r}) [{state}]"
+
+
+def _satterthwaite_dof(var_total, var_jackknife, n_regions):
+    """Effective degrees of freedom of a variance that leans on a K-region jackknife.
+
+    Notes
+    -----
+    The jackknife variance v_J from K regions has K - 1 degrees of freedom (Tukey 1958: the
+    pseudo-values are treated as K independent values; from memory), so var(v_J) ~
+    2 v_J^2 / (K - 1), while the Poisson floor is known. For the reported variance v the
+    Welch-Satterthwaite approximation (Satterthwaite 1946, Biometrics Bull. 2, 110) gives
+    ``nu = 2 v^2 / var(v) = (K - 1) (v / v_J)^2``: K - 1 when the jackknife dominates, more
+    when the Poisson floor does. Infinite without a jackknife.
+    """
+    if var_jackknife is None or n_regions < 2 or not var_jackknife > 0.0:
+        return math.inf
+    return (n_regions - 1.0) * (var_total / var_jackknife) ** 2
+
+
+def _student_estimate(value, sigma, dof, unit, budget):
+    """A symmetric Estimate with Student-t quantiles (normal for infinite ``dof``)."""
+    if not math.isfinite(dof):
+        return Estimate.from_normal(value, sigma, unit, budget=budget)
+    q68 = float(stats.t.ppf(0.84, dof))
+    q95 = float(stats.t.ppf(0.975, dof))
+    return Estimate(
+        median=value,
+        interval_68=(value - q68 * sigma, value + q68 * sigma),
+        interval_95=(value - q95 * sigma, value + q95 * sigma),
+        unit=unit,
+        budget=budget,
+    )
+
+
+def _budget(var_poisson, var_total, with_regions):
+    if not with_regions or not var_total > 0.0:
+        return {_POISSON: 1.0}
+    poisson = min(max(var_poisson / var_total, 0.0), 1.0)
+    return {_POISSON: poisson, _CLUSTERING: 1.0 - poisson}
+
+
+def fit_counts(observed_counts, forward, model="power_law", fit_range_mag=None, n_bootstrap=200,
+               rng=None, region_counts=None, region_effective_area_deg2=None):
+    """Shorthand for ``CountsFit(model, forward, fit_range_mag, n_bootstrap).fit(...)``.
+
+    Examples
+    --------
+    >>> truth = PowerLaw(log10_norm=3.0, slope=0.5, reference_mag=22.0)
+    >>> forward = ForwardModel(np.arange(20.0, 24.01, 0.5), effective_area_deg2=1.0)
+    >>> counts = np.random.default_rng(3).poisson(forward.expected_counts(truth))
+    >>> fit = fit_counts(counts, forward, PowerLaw(reference_mag=22.0), n_bootstrap=0)
+    >>> bool(abs(fit.params_["slope"] - 0.5) < 3 * math.sqrt(fit.cov_[1, 1]))
+    True
+    """
+    return CountsFit(model, forward, fit_range_mag=fit_range_mag, n_bootstrap=n_bootstrap).fit(
+        observed_counts, rng=rng, region_counts=region_counts,
+        region_effective_area_deg2=region_effective_area_deg2,
+    )
+
+
+# ============================================================================ integral counts
+@dataclass(frozen=True, eq=False)
+class IntegralCounts:
+    """Integral counts N(<m_limit) with intervals.
+
+    Parameters
+    ----------
+    m_limit : float
+        Faint limit (AB).
+    per_deg2 : Estimate
+        N(<m_limit) per deg^2 (the population's mean surface density).
+    total : Estimate
+        Expected number over the footprint, ``per_deg2 * area_deg2`` (unit "").
+    area_deg2 : float
+        Footprint area used for ``total``.
+    model : str
+        Name of the count model.
+    """
+
+    m_limit: float
+    per_deg2: Estimate
+    total: Estimate
+    area_deg2: float
+    model: str
+
+    def to_json(self):
+        """``{"m_limit", "area_deg2", "model", "per_deg2": Estimate, "total": Estimate}``."""
+        return {
+            "m_limit": float(self.m_limit),
+            "area_deg2": float(self.area_deg2),
+            "model": self.model,
+            "per_deg2": self.per_deg2.to_json(),
+            "total": self.total.to_json(),
+        }
+
+    def __str__(self):
+        return (
+            f"N(<{self.m_limit:g}) = {self.per_deg2.format()} ; over {self.area_deg2:.6g} deg^2: "
+            f"{self.total.format()}"
+        )
+
+
+def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None):
+    """Integral counts N(<m_limit) per deg^2 and over the footprint, with intervals.
+
+    Parameters
+    ----------
+    fit : CountsFit
+        A fitted count fit.
+    m_limit : float
+        Faint limit (AB).
+    area_deg2 : float, optional
+        Footprint area for the total; default ``fit.forward.area_deg2``.
+    n_draws : int
+        Parameter draws; >= 100.
+    rng : int or numpy.random.Generator, optional
+        For the draws.
+
+    Returns
+    -------
+    IntegralCounts
+
+    Warns
+    -----
+    CountsWarning
+        When ``m_limit`` is fainter than the fit range (extrapolation).
+
+    Raises
+    ------
+    CountsFitError
+        When some parameter draws make N(<m) diverge (a bright slope <= 0 within the errors and
+        no ``m_bright`` on the model).
+
+    Notes
+    -----
+    Parameters are drawn from a multivariate normal with the fit's reported covariance
+    ``cov_`` (Poisson, or Poisson + clustering), and N(<m_limit) evaluated for each draw; the
+    Estimate keeps the draws. With a jackknife the draws are multivariate Student t (normal
+    draws divided by sqrt(chi2_nu / nu)) with the Welch-Satterthwaite degrees of freedom nu of
+    the variance of log10 N (see ``_satterthwaite_dof``), so the intervals allow for the
+    uncertainty of a variance estimated from K regions. The "truth" this estimates is the mean
+    density of the population (what extrapolation to other areas needs), not the realised
+    number in this footprint. The budget splits the variance of log10 N by the delta method:
+    ``g^T C_P g / g^T C g`` is the Poisson share, the rest is clustering
+    (``"cosmic_variance"``).
+    """
+    if not isinstance(fit, CountsFit):
+        raise InputTypeError(f"`fit` must be a CountsFit; got {type(fit).__name__}")
+    model = fit._fitted("model_")
+    m_limit = _check_real(m_limit, "m_limit")
+    if area_deg2 is None:
+        area = fit.forward.area_deg2
+    else:
+        area = _check_real(area_deg2, "area_deg2", 0.0)
+    n_draws = _check_count(n_draws, "n_draws", 100)
+    generator = _as_generator(rng)
+    if m_limit > fit.fit_range_[1]:
+        warnings.warn(
+            f"`m_limit` {m_limit:g} is {m_limit - fit.fit_range_[1]:.3g} mag fainter than the fit "
+            f"range [{fit.fit_range_[0]:g}, {fit.fit_range_[1]:g}]; N(<m) is extrapolated",
+            CountsWarning,
+            stacklevel=2,
+        )
+    point = float(model.cumulative(m_limit))
+    theta = model.params
+
+    def log10_n(t):
+        return math.log10(float(model.with_params(t).cumulative(m_limit)))
+
+    steps = np.maximum(1e-3 * np.sqrt(np.diag(fit.cov_)), 1e-9)
+    gradient = _numerical_gradient(log10_n, theta, steps)
+    var_total = float(gradient @ fit.cov_ @ gradient)
+    var_poisson = float(gradient @ fit.cov_poisson_ @ gradient)
+    var_jackknife = (
+        None if fit.cov_jackknife_ is None else float(gradient @ fit.cov_jackknife_ @ gradient)
+    )
+    budget = _budget(var_poisson, var_total, fit.n_regions_ > 0)
+    dof = _satterthwaite_dof(var_total, var_jackknife, fit.n_regions_)
+    offsets = generator.multivariate_normal(
+        np.zeros(theta.size), fit.cov_, size=n_draws, method="eigh"
+    )
+    if math.isfinite(dof):
+        # Multivariate Student t: a normal draw over sqrt(chi2_nu / nu).
+        offsets *= np.sqrt(dof / generator.chisquare(dof, size=n_draws))[:, None]
+    draws_theta = theta + offsets
+    values = np.empty(n_draws)
+    n_bad = 0
+    for i, t in enumerate(draws_theta):
+        try:
+            values[i] = float(model.with_params(t).cumulative(m_limit))
+        except InputError:
+            values[i] = np.nan
+        if not (np.isfinite(values[i]) and values[i] > 0.0):
+            n_bad += 1
+    if n_bad:
+        raise CountsFitError(
+            f"N(<{m_limit:g}) diverges or vanishes for {n_bad} of {n_draws} parameter draws (a "
+            "bright-end slope <= 0 lies within the errors); set `m_bright` on the model"
+        )
+
+    per_deg2 = Estimate.from_draws(values, _CUMULATIVE_UNIT, budget=budget)
+    if not math.isfinite(point):
+        raise CountsFitError(f"N(<{m_limit:g}) is not finite at the fitted parameters")
+    return IntegralCounts(
+        m_limit=m_limit,
+        per_deg2=per_deg2,
+        total=per_deg2.scale(area, ""),
+        area_deg2=area,
+        model=model.name,
+    )
+
+
+# ============================================================================ differential counts
+@dataclass(frozen=True, eq=False)
+class DifferentialCounts:
+    """Binned differential counts for tables and plots (read by the plotting module).
+
+    All densities are per deg^2 per mag; arrays have shape (n_bins,) unless stated.
+
+    Parameters
+    ----------
+    mag_lo, mag_hi : ndarray
+        Bin edges (observed magnitudes, AB).
+    n_observed : ndarray of int
+        Sources per bin.
+    raw_density : ndarray
+        ``N / (area_deg2 * width)``: no correction at all.
+    raw_interval_68 : ndarray, shape (n_bins, 2)
+        Garwood 68 % Poisson interval of ``raw_density``.
+    corrected_density : ndarray
+        ``N / (A_corr * width)`` with A_corr the correction area (see ``correction``).
+    corrected_interval_68 : ndarray, shape (n_bins, 2)
+        Poisson-only 68 % interval of ``corrected_density``.
+    corrected_interval_68_full : ndarray, shape (n_bins, 2), or None
+        Poisson + clustering interval (jackknife over regions); None without regions.
+    completeness : ndarray
+        Mean completeness over each bin (true magnitudes).
+    correction : str
+        ``"forward_model"``: A_corr = mu_i / int_bin n(m; fit) dm, the fitted ratio of expected
+        observed to intrinsic counts (includes scatter in and out of the bin; model-dependent);
+        ``"effective_area"``: A_corr = mean A_eff over the bin (no fit, no scatter correction).
+    model_density : ndarray or None
+        Bin-averaged fitted model density, ``int_bin n dm / width``.
+    used_in_fit : ndarray of bool or None
+        Bins inside the fit range.
+    area_deg2 : float
+        Footprint area used for ``raw_density``.
+    """
+
+    mag_lo: np.ndarray
+    mag_hi: np.ndarray
+    n_observed: np.ndarray
+    raw_density: np.ndarray
+    raw_interval_68: np.ndarray
+    corrected_density: np.ndarray
+    corrected_interval_68: np.ndarray
+    corrected_interval_68_full: np.ndarray | None
+    completeness: np.ndarray
+    correction: str
+    model_density: np.ndarray | None
+    used_in_fit: np.ndarray | None
+    area_deg2: float
+    unit: str = _DENSITY_UNIT
+
+    @property
+    def mag_centre(self):
+        """Bin centres (mag)."""
+        return 0.5 * (self.mag_lo + self.mag_hi)
+
+    def to_json(self):
+        """Plain lists (NaN for undefined corrected values become None)."""
+
+        def listed(array):
+            if array is None:
+                return None
+            return [None if not np.isfinite(v) else float(v) for v in np.asarray(array).ravel()]
+
+        def pairs(array):
+            if array is None:
+                return None
+            return [[None if not np.isfinite(v) else float(v) for v in row] for row in array]
+
+        return {
+            "unit": self.unit,
+            "area_deg2": float(self.area_deg2),
+            "correction": self.correction,
+            "mag_lo": listed(self.mag_lo),
+            "mag_hi": listed(self.mag_hi),
+            "n_observed": [int(v) for v in self.n_observed],
+            "raw_density": listed(self.raw_density),
+            "raw_interval_68": pairs(self.raw_interval_68),
+            "corrected_density": listed(self.corrected_density),
+            "corrected_interval_68": pairs(self.corrected_interval_68),
+            "corrected_interval_68_full": pairs(self.corrected_interval_68_full),
+            "completeness": listed(self.completeness),
+            "model_density": listed(self.model_density),
+            "used_in_fit": (
+                None if self.used_in_fit is None else [bool(v) for v in self.used_in_fit]
+            ),
+        }
+
+
+def differential_counts(observed_counts, forward, fit=None, region_counts=None,
+                        region_effective_area_deg2=None, level=0.68):
+    """Raw and corrected differential counts per deg^2 per mag, with intervals.
+
+    Parameters
+    ----------
+    observed_counts : array_like of int, shape (n_bins,)
+        Sources per bin of ``forward``.
+    forward : ForwardModel
+        Bins, effective area and scatter.
+    fit : CountsFit, optional
+        A fit on these bins; the correction then uses the forward model at the fit
+        (``correction == "forward_model"``), otherwise mean A_eff per bin.
+    region_counts : array_like of int, shape (K, n_bins), optional
+        Per-region counts for Poisson + clustering intervals (jackknife).
+    region_effective_area_deg2 : sequence, length K, optional
+        As for :meth:`CountsFit.fit`.
+    level : float
+        Interval level; 0.68 by default (the result's fields are named for 68 %).
+
+    Returns
+    -------
+    DifferentialCounts
+
+    Notes
+    -----
+    Poisson intervals are Garwood's (:func:`poisson_interval`) scaled by the bin's conversion
+    factor. The full interval adds, in quadrature to each Poisson half-width, the excess of the
+    delete-one jackknife variance of the corrected density over its Poisson variance
+    ``d^2 / N`` (when positive): the same Poisson-floor rule as :func:`combine_covariances`.
+    Bins with zero correction area give NaN corrected values.
+    """
+    if not isinstance(forward, ForwardModel):
+        raise InputTypeError(f"`forward` must be a ForwardModel; got {type(forward).__name__}")
+    counts = _as_counts(observed_counts, "observed_counts", (forward.n_bins,))
+    if fit is not None:
+        if not isinstance(fit, CountsFit):
+            raise InputTypeError(f"`fit` must be a CountsFit; got {type(fit).__name__}")
+        fit._fitted("model_")
+        if fit.forward is not forward:
+            raise InputError("`fit` must have been fitted with this `forward` model")
+    grids = None
+    regions = None
+    if region_counts is not None:
+        regions = _as_counts(region_counts, "region_counts")
+        if regions.ndim != 2 or regions.shape[1] != forward.n_bins or regions.shape[0] < 3:
+            raise InputError(
+                f"`region_counts` must have shape (K >= 3, {forward.n_bins}); got {regions.shape}"
+            )
+        if not np.array_equal(regions.sum(axis=0), counts):
+            raise InputError("`region_counts` must add up to `observed_counts` in every bin")
+        if region_effective_area_deg2 is None:
+            raise InputError("`region_effective_area_deg2` is needed with `region_counts`")
+        grids = forward.region_area_grids(region_effective_area_deg2)
+        if grids.shape[0] != regions.shape[0]:
+            raise InputError(
+                f"`region_effective_area_deg2` must have one entry per region "
+                f"({regions.shape[0]}); got {grids.shape[0]}"
+            )
+    return _differential_counts(counts, forward, fit, regions, grids, level)
+
+
+def _correction_areas(forward, fit, area_grid):
+    """Correction area per bin (deg^2) for a given A_eff grid."""
+    if fit is None:
+        inside = (forward._bin_of_cell >= 0) & (forward._bin_of_cell < forward.n_bins)
+        weighted = np.bincount(
+            forward._bin_of_cell[inside],
+            weights=(area_grid * forward.grid_width_mag)[inside],
+            minlength=forward.n_bins,
+        )
+        return weighted / np.diff(forward.bin_edges_mag)
+    model = fit.model_
+    mu = forward._response_for(area_grid) @ (10.0 ** model._log10_density(forward.grid_mag))
+    intrinsic = forward.intrinsic_counts_per_deg2(model)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(intrinsic > 0.0, mu / intrinsic, 0.0)
+
+
+def _differential_counts(counts, forward, fit, regions, grids, level):
+    level = _check_real(level, "level", 0.0, 1.0)
+    edges = forward.bin_edges_mag
+    widths = np.diff(edges)
+    counts_f = counts.astype(float)
+    lo, hi = poisson_interval(counts, level)
+    raw_scale = 1.0 / (forward.area_deg2 * widths)
+    correction_area = _correction_areas(forward, fit, forward.effective_area_grid_deg2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        corrected_scale = np.where(correction_area > 0.0, 1.0 / (correction_area * widths), np.nan)
+    corrected = counts_f * corrected_scale
+    corrected_interval = np.column_stack([lo * corrected_scale, hi * corrected_scale])
+    full = None
+    if regions is not None:
+        total_grid = forward.effective_area_grid_deg2
+        delete_one = []
+        for k in range(regions.shape[0]):
+            area_k = _correction_areas(forward, fit, total_grid - grids[k])
+            with np.errstate(divide="ignore", invalid="ignore"):
+                delete_one.append(
+                    np.where(area_k > 0.0, (counts_f - regions[k]) / (area_k * widths), np.nan)
+                )
+        delete_one = np.array(delete_one)
+        k_regions = delete_one.shape[0]
+        centred = delete_one - np.nanmean(delete_one, axis=0)
+        var_jack = (k_regions - 1.0) / k_regions * np.nansum(centred**2, axis=0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            var_poisson = np.where(counts > 0, corrected**2 / counts_f, 0.0)
+        excess = np.clip(var_jack - var_poisson, 0.0, None)
+        low_half = corrected - corrected_interval[:, 0]
+        high_half = corrected_interval[:, 1] - corrected
+        full = np.column_stack(
+            [
+                np.clip(corrected - np.sqrt(low_half**2 + excess), 0.0, None),
+                corrected + np.sqrt(high_half**2 + excess),
+            ]
+        )
+    model_density = None
+    used = None
+    if fit is not None:
+        model_density = forward.intrinsic_counts_per_deg2(fit.model_) / widths
+        used = fit.used_bins_.copy()
+    return DifferentialCounts(
+        mag_lo=_read_only(edges[:-1]),
+        mag_hi=_read_only(edges[1:]),
+        n_observed=_read_only(counts, dtype=np.int64),
+        raw_density=_read_only(counts_f * raw_scale),
+        raw_interval_68=_read_only(np.column_stack([lo * raw_scale, hi * raw_scale])),
+        corrected_density=_read_only(corrected),
+        corrected_interval_68=_read_only(corrected_interval),
+        corrected_interval_68_full=None if full is None else _read_only(full),
+        completeness=_read_only(forward.bin_completeness()),
+        correction="effective_area" if fit is None else "forward_model",
+        model_density=None if model_density is None else _read_only(model_density),
+        used_in_fit=None if used is None else _read_only(used, dtype=bool),
+        area_deg2=float(forward.area_deg2),
+    )
+
+
+# ============================================================================ model comparison
+@dataclass(frozen=True)
+class ModelComparison:
+    """AIC/BIC comparison of count fits to the same binned counts.
+
+    Parameters
+    ----------
+    models : tuple of str
+        Model names, in the order given.
+    n_params : tuple of int
+    loglike, aic, bic, delta_aic, delta_bic, akaike_weights : tuple of float
+        Deltas are relative to the smallest value; Akaike weights
+        ``exp(-delta_aic / 2) / sum`` (Burnham & Anderson 2002, Model Selection and Multimodel
+        Inference, 2nd ed., sec. 2.9; from memory).
+    best_aic, best_bic : str
+        Names of the preferred models.
+    """
+
+    models: tuple[str, ...]
+    n_params: tuple[int, ...]
+    loglike: tuple[float, ...]
+    aic: tuple[float, ...]
+    bic: tuple[float, ...]
+    delta_aic: tuple[float, ...]
+    delta_bic: tuple[float, ...]
+    akaike_weights: tuple[float, ...]
+    best_aic: str
+    best_bic: str
+
+    def to_json(self):
+        """``{model name: {"n_params", "loglike", "aic", "bic", "delta_aic", ...}}`` plus bests."""
+        rows = {}
+        for i, name in enumerate(self.models):
+            rows[name] = {
+                "n_params": self.n_params[i],
+                "loglike": self.loglike[i],
+                "aic": self.aic[i],
+                "bic": self.bic[i],
+                "delta_aic": self.delta_aic[i],
+                "delta_bic": self.delta_bic[i],
+                "akaike_weight": self.akaike_weights[i],
+            }
+        return {"models": rows, "best_aic": self.best_aic, "best_bic": self.best_bic}
+
+
+def compare_models(fits):
+    """Compare fitted count models by AIC and BIC.
+
+    Parameters
+    ----------
+    fits : sequence of CountsFit
+        At least two fits of different models to the same counts in the same bins.
+
+    Returns
+    -------
+    ModelComparison
+    """
+    if isinstance(fits, CountsFit) or not isinstance(fits, Sequence):
+        raise InputTypeError(f"`fits` must be a sequence of CountsFit; got {type(fits).__name__}")
+    if len(fits) < 2:
+        raise InputError(f"`fits` must hold at least 2 fits to compare; got {len(fits)}")
+    for i, fit in enumerate(fits):
+        if not isinstance(fit, CountsFit):
+            raise InputTypeError(f"`fits[{i}]` must be a CountsFit; got {type(fit).__name__}")
+        fit._fitted("model_")
+    first = fits[0]
+    for i, fit in enumerate(fits[1:], start=1):
+        same_bins = np.array_equal(
+            fit.forward.bin_edges_mag[:-1][fit.used_bins_],
+            first.forward.bin_edges_mag[:-1][first.used_bins_],
+        ) and np.array_equal(fit.fit_range_, first.fit_range_)
+        same_counts = same_bins and np.array_equal(
+            fit.observed_counts_[fit.used_bins_], first.observed_counts_[first.used_bins_]
+        )
+        if not same_counts:
+            raise InputError(
+                f"`fits[{i}]` was fitted to other bins or counts than `fits[0]`; AIC and BIC "
+                "compare models on the same data only"
+            )
+    names = tuple(fit.model_.name for fit in fits)
+    if len(set(names)) != len(names):
+        names = tuple(f"{name}#{i}" for i, name in enumerate(names))
+    aic = np.array([fit.aic_ for fit in fits])
+    bic = np.array([fit.bic_ for fit in fits])
+    delta_aic = aic - aic.min()
+    delta_bic = bic - bic.min()
+    weights = np.exp(-0.5 * delta_aic)
+    weights /= weights.sum()
+    return ModelComparison(
+        models=names,
+        n_params=tuple(len(fit.model_.param_names) for fit in fits),
+        loglike=tuple(float(fit.loglike_) for fit in fits),
+        aic=tuple(float(v) for v in aic),
+        bic=tuple(float(v) for v in bic),
+        delta_aic=tuple(float(v) for v in delta_aic),
+        delta_bic=tuple(float(v) for v in delta_bic),
+        akaike_weights=tuple(float(v) for v in weights),
+        best_aic=names[int(np.argmin(aic))],
+        best_bic=names[int(np.argmin(bic))],
+    )
