@@ -49,8 +49,10 @@ HEALPIX_MAX_ORDER = 29
 #: only costs a little refinement work; under-estimating would misclassify cells.
 _PIXRAD_SAFETY = 1.05
 
-#: Covered fractions closer than this to 0 or 1 are rounding, not geometry (see `_refine`).
-_FRACTION_TOLERANCE = 1e-8
+#: Covered fractions closer than this to 0 or 1 are treated as 0 or 1 (see `_refine`): the
+#: closed forms carry ~1e-10 of rounding, and weights are stored as float32, which cannot
+#: tell 1 - 3e-8 from 1 (a sliver that small would then be counted twice in set algebra).
+_FRACTION_TOLERANCE = 1e-6
 
 #: Pairs (part, cell) handled at once in the refinement loop, to bound memory.
 _BATCH_PAIRS = 2_000_000
@@ -830,8 +832,8 @@ def _refine(shape, part_ids, max_order, starts, ends, cells_out, frac_out, sigma
     if len(cells) == 0:
         return
     frac, sigma = shape._fraction(part, cells, max_order)
-    # Closed-form fractions carry ~1e-10 of rounding: a cell touched by less than 1e-8 of its
-    # area is untouched, and one covered to within 1e-8 is whole.
+    # A cell touched by less than `_FRACTION_TOLERANCE` of its area is untouched, and one
+    # covered to within it is whole.
     frac = np.where(frac < _FRACTION_TOLERANCE, 0.0, frac)
     frac = np.where(frac > 1.0 - _FRACTION_TOLERANCE, 1.0, frac)
     whole = frac >= 1.0
