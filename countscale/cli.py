@@ -2,6 +2,12 @@
 
 Examples
 --------
+The bundled demo survey, then a survey of your own described by a run file::
+
+    $ countscale demo --out demo_out
+    $ countscale run survey.toml --out results/ --seed 1
+    $ countscale run survey.toml --engine dask --scheduler tcp://10.0.0.5:8786 --json
+
 Area of a footprint given as a HEALPix map, a MOC, or a run file's ``[footprint]``::
 
     $ countscale area demo_data/survey.toml
@@ -67,6 +73,32 @@ def build_parser():
     ordering.add_argument("--ring", dest="nest", action="store_const", const=False,
                           help="the map is RING-ordered (overrides its header)")
     area.set_defaults(handler=_cmd_area)
+
+    run = sub.add_parser(
+        "run",
+        help="the whole job a run file describes (tally, ...) into a report folder",
+        description="Run every stage a TOML run file asks for and write results.json and "
+        "report.md into the output folder.",
+    )
+    run.add_argument("runfile", metavar="RUNFILE", help="the TOML run file")
+    _add_run_options(run)
+    run.add_argument("--engine", choices=("local", "dask"),
+                     help="where to tally: this process (local) or a Dask cluster "
+                     "(default: the run file's [engine].kind)")
+    run.add_argument("--scheduler", metavar="ADDR",
+                     help="Dask scheduler address, e.g. tcp://host:8786 (default: the run "
+                     "file's, else a local cluster)")
+    run.add_argument("--seed", type=int, metavar="N",
+                     help="seed of the run's random generator (default: drawn and recorded)")
+    run.set_defaults(handler=_cmd_run)
+
+    demo = sub.add_parser(
+        "demo",
+        help="run the bundled demo survey",
+        description="Run demo_data/survey.toml from the countscale source repository.",
+    )
+    _add_run_options(demo, default_out=DEMO_OUT)
+    demo.set_defaults(handler=_cmd_demo)
 
     horizon = sub.add_parser(
         "horizon",
@@ -202,6 +234,59 @@ def _cmd_area(args):
         rows.append(("figure", args.plot))
     _print_table(rows)
     return EXIT_OK
+
+
+# ----------------------------------------------------------------------------------------
+# run, demo
+# ----------------------------------------------------------------------------------------
+#: Where ``countscale demo`` writes unless told (relative to the working folder).
+DEMO_OUT = "countscale_demo"
+
+
+def _add_run_options(parser, default_out=None):
+    where = f"default {default_out}" if default_out else "default: the run file's [output].dir"
+    parser.add_argument("--out", metavar="DIR", default=default_out,
+                        help=f"report folder ({where})")
+    parser.add_argument("--json", action="store_true",
+                        help="print the results as one JSON object")
+    parser.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def demo_runfile():
+    """Path of the demo run file: ``demo_data/survey.toml`` at the repository's root."""
+    import countscale
+
+    return Path(countscale.__file__).resolve().parents[1] / "demo_data" / "survey.toml"
+
+
+def _run_and_print(args, runfile, engine=None, scheduler=None, seed=None):
+    from countscale import report
+    from countscale.pipeline import run_survey
+
+    if seed is not None and seed < 0:
+        raise InputError(f"--seed must be a non-negative integer; got {seed}")
+    result = run_survey(runfile, out_dir=args.out, engine=engine, scheduler=scheduler,
+                        seed=seed, progress=False if args.quiet else None)
+    if args.json:
+        output = {"dir": str(result.out_dir), "files": [str(f) for f in result.files]}
+        print(json.dumps({**result.results, "output": output}))
+    else:
+        print(report.render_text(result.results, result.files))
+    return EXIT_OK
+
+
+def _cmd_run(args):
+    return _run_and_print(args, args.runfile, args.engine, args.scheduler, args.seed)
+
+
+def _cmd_demo(args):
+    path = demo_runfile()
+    if not path.is_file():
+        raise InputError(
+            f"demo run file not found at '{path}'; the demo data ships with the countscale "
+            "source repository (or run `countscale run YOUR_RUNFILE.toml`)"
+        )
+    return _run_and_print(args, path)
 
 
 # ----------------------------------------------------------------------------------------

@@ -1,0 +1,225 @@
+"""Results of a run → ``results.json``, ``report.md`` and the command line's summary.
+
+Everything here reads the JSON-ready results dict that :func:`countscale.pipeline.run_survey`
+builds; nothing computes science.
+
+Topics
+------
+write_report
+    Write the report folder; ``results.json`` last, atomically.
+render_markdown, render_text
+    The Markdown report and the plain-text summary ``countscale run`` prints.
+results_json
+    The dict as JSON text (finite numbers only).
+
+How a report folder is written
+------------------------------
+Every file's content is built in memory first, so a failure there touches nothing. Then the
+previous ``results.json`` (if any) is removed, every other file is written (each to a
+temporary name in the folder, renamed when complete: :func:`countscale._io.atomic_path`), and
+``results.json`` is written the same way, last. So ``results.json`` exists only when the whole
+report of one run is there; after an interrupted run the folder holds no ``results.json`` or
+the previous run's complete one, never a partial one.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+from typing import Any
+
+from countscale._io import atomic_path
+from countscale.errors import InputError, InputTypeError
+
+__all__ = [
+    "REPORT_NAME",
+    "RESULTS_NAME",
+    "render_markdown",
+    "render_text",
+    "results_json",
+    "write_report",
+]
+
+RESULTS_NAME = "results.json"
+REPORT_NAME = "report.md"
+
+
+def results_json(results: Mapping[str, Any]) -> str:
+    """JSON text of the results (indented; NaN or infinity is an error, not invalid JSON)."""
+    if not isinstance(results, Mapping):
+        raise InputTypeError(f"`results` must be a mapping; got {type(results).__name__}")
+    return json.dumps(results, indent=2, allow_nan=False) + "\n"
+
+
+# --------------------------------------------------------------------------------------------
+# Rendering
+# --------------------------------------------------------------------------------------------
+
+
+def _ledger_rows(ledger: Mapping[str, Any]) -> list[tuple[str, int]]:
+    rows = [
+        ("read", ledger["rows_read"]),
+        ("in footprint", ledger["rows_in_footprint"]),
+        ("outside footprint", ledger["rows_outside_footprint"]),
+        ("rejected", sum(ledger["rows_rejected"].values())),
+    ]
+    rows += [(f"rejected: {k}", v) for k, v in ledger["rows_rejected"].items() if v]
+    return rows
+
+
+def _bin_rows(results: Mapping[str, Any]) -> list[tuple[float, float, int, float]]:
+    tally = results["tally"]
+    edges = tally["mag_bins"]["edges"]
+    area = results["footprint"]["area_deg2"]
+    return [(edges[i], edges[i + 1], n, n / area / (edges[i + 1] - edges[i]))
+            for i, n in enumerate(tally["counts"]) if n]
+
+
+def _regions_line(regions: Mapping[str, Any]) -> str:
+    per_region = [sum(row) for row in regions["counts"]]
+    area = regions["area_deg2"]
+    return (f"{regions['n_regions']} regions of HEALPix order {regions['order']}; "
+            f"area {min(area):.4g}–{max(area):.4g} deg², sources {min(per_region):,d}–"
+            f"{max(per_region):,d} per region")
+
+
+def _title(results: Mapping[str, Any]) -> str:
+    return results.get("survey", {}).get("name") or "countscale run"
+
+
+def render_markdown(results: Mapping[str, Any]) -> str:
+    """The ``report.md`` text: ledger, footprint, counts per magnitude bin, regions."""
+    run, ledger, fp, tally = (results["run"], results["ledger"], results["footprint"],
+                              results["tally"])
+    out = [
+        f"# {_title(results)}",
+        "",
+        f"Run file `{run['runfile']}`; engine `{run['engine']}`; seed {run['seed']}; "
+        f"countscale {results.get('countscale_version', '?')}.",
+        "",
+        "## Row ledger",
+        "",
+        "Every row of the catalogue, counted once.",
+        "",
+        "| rows | count |",
+        "|---|---:|",
+    ]
+    out += [f"| {name} | {n:,d} |" for name, n in _ledger_rows(ledger)]
+    notes = {k: v for k, v in ledger.get("notes", {}).items() if v}
+    if notes:
+        out += ["", "Notes: " + "; ".join(f"{k} {v:,d}" for k, v in notes.items()) + "."]
+    out += [
+        "",
+        "## Footprint",
+        "",
+        f"Area {fp['area_deg2']:.6g} ± {fp['area_uncertainty_deg2']:.2g} deg² "
+        f"({fp['area_sr']:.6g} sr, sky fraction {fp['sky_fraction']:.4g}); finest HEALPix "
+        f"order {fp['max_order']}, {fp['n_cells']:,d} cells.",
+        "",
+        "## Counts per magnitude bin",
+        "",
+        f"Bins: {tally['mag_bins']['grid']} grid. Density is per deg² per magnitude over the "
+        "footprint's covered area (no completeness correction).",
+        "",
+        "| magnitude | sources | per deg² per mag |",
+        "|---|---:|---:|",
+    ]
+    out += [f"| {lo:.4g}–{hi:.4g} | {n:,d} | {d:.4g} |" for lo, hi, n, d in _bin_rows(results)]
+    out += [
+        "",
+        f"Brighter than the first edge: {tally['n_brighter']:,d}; at or fainter than the last "
+        f"edge: {tally['n_fainter']:,d}.",
+        "",
+        "## Regions (for jackknife errors)",
+        "",
+        _regions_line(tally["regions"]) + ".",
+    ]
+    if run.get("sections_not_run"):
+        listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
+        out += ["", "## Not run", "", f"The run file has {listed}; this version of countscale "
+                "has no stage that fits or reports them yet (the tally used `[counts].bins` "
+                "and `[variance].regions` where given)."]
+    return "\n".join(out) + "\n"
+
+
+def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] = ()) -> str:
+    """The plain-text summary ``countscale run`` prints."""
+    run, ledger, fp, tally = (results["run"], results["ledger"], results["footprint"],
+                              results["tally"])
+    lines = [
+        f"survey          {_title(results)}",
+        f"run file        {run['runfile']}",
+        f"engine          {run['engine']} (seed {run['seed']})",
+        "",
+        "row ledger",
+    ]
+    lines += [f"  {name:<32} {n:>14,d}" for name, n in _ledger_rows(ledger)]
+    lines += [f"  note: {k:<26} {v:>14,d}" for k, v in ledger.get("notes", {}).items() if v]
+    lines += [
+        "",
+        f"footprint       {fp['area_deg2']:.6g} ± {fp['area_uncertainty_deg2']:.2g} deg² "
+        f"(order {fp['max_order']})",
+        f"regions         {_regions_line(tally['regions'])}",
+        "",
+        f"counts per magnitude bin ({tally['mag_bins']['grid']} grid)",
+        f"  {'magnitude':<15} {'sources':>12} {'per deg² mag':>14}",
+    ]
+    lines += [f"  {lo:>6.4g} – {hi:<6.4g} {n:>12,d} {d:>14.4g}"
+              for lo, hi, n, d in _bin_rows(results)]
+    lines.append(f"  brighter {tally['n_brighter']:,d}; fainter {tally['n_fainter']:,d}")
+    if run.get("sections_not_run"):
+        listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
+        lines += ["", f"not run yet     {listed}",
+                  "                (no stage in this version; the tally used [counts].bins and "
+                  "[variance].regions where given)"]
+    files = [str(f) for f in files]
+    if files:
+        lines += ["", "written         " + "\n                ".join(files)]
+    return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------------------------
+# Writing
+# --------------------------------------------------------------------------------------------
+
+
+def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
+                 formats: Iterable[str] = ("json", "markdown")) -> tuple[Path, ...]:
+    """Write the report folder; ``results.json`` last (see the module docstring).
+
+    Parameters
+    ----------
+    results : mapping
+        JSON-ready results of a run.
+    out_dir : path
+        The folder (created if needed).
+    formats : iterable of str
+        ``"markdown"`` adds ``report.md``. ``results.json`` is always written: it marks a
+        complete report. ``"html"`` and ``"png"`` are accepted and not produced yet.
+
+    Returns
+    -------
+    tuple of pathlib.Path
+        The files written, ``results.json`` last.
+    """
+    out_dir = Path(out_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise InputError(f"`out_dir` '{out_dir}' exists and is not a folder")
+    formats = tuple(formats)
+    # Build every file's content before touching the folder.
+    contents: list[tuple[str, str]] = []
+    if "markdown" in formats:
+        contents.append((REPORT_NAME, render_markdown(results)))
+    contents.append((RESULTS_NAME, results_json(results)))
+
+    out_dir.mkdir(parents=True, exist_ok=True)
+    (out_dir / RESULTS_NAME).unlink(missing_ok=True)
+    written = []
+    for name, text in contents:
+        path = out_dir / name
+        with atomic_path(path) as tmp:
+            tmp.write_text(text, encoding="utf-8")
+        written.append(path)
+    return tuple(written)
