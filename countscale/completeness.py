@@ -19,7 +19,10 @@ Helpers
     :func:`pool_adjacent_violators`, :func:`clopper_pearson`, :func:`check_usable`.
 Spatially varying depth
     :class:`DepthMap` (per-HEALPix-pixel m50 with a common curve shape),
-    :func:`effective_area_deg2` (A_eff(m) over a footprint).
+    :func:`effective_area_deg2` (A_eff(m) over a footprint),
+    :func:`region_effective_areas` (A_eff(m) of each jackknife region).
+Summaries
+    :func:`binned_recovery` (recovered fraction per bin), :func:`completeness_band`.
 Warnings and errors
     :class:`CompletenessWarning`, :class:`NotFittedError`, :class:`CompletenessFitError`.
 
@@ -61,12 +64,17 @@ __all__ = [
     "LogisticCompleteness",
     "MonotoneCompleteness",
     "NotFittedError",
+    "RecoveryBins",
+    "ShiftedCompleteness",
+    "binned_recovery",
     "check_usable",
     "clopper_pearson",
+    "completeness_band",
     "effective_area_deg2",
     "fit_completeness",
     "fit_completeness_by_region",
     "pool_adjacent_violators",
+    "region_effective_areas",
 ]
 
 #: Fewest injections a completeness fit accepts. DESIGN.md section 5 flags fits to fewer than 20
@@ -1617,3 +1625,194 @@ def effective_area_deg2(m, coverage, depth):
             area += values @ weights[part]
     area = area.reshape(m_array.shape)
     return float(area) if scalar else area
+
+
+# ------------------------------------------------------------------------------------------
+# Summaries for reports and per-region effective areas
+# ------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class RecoveryBins:
+    """Recovered fraction of injections in magnitude bins (for tables and figures).
+
+    Attributes
+    ----------
+    mag_lo, mag_hi : ndarray
+        Bin edges (injected magnitude).
+    n_injected, n_recovered : ndarray of int
+    fraction : ndarray
+        n_recovered / n_injected (NaN for empty bins).
+    interval_lo, interval_hi : ndarray
+        Clopper-Pearson interval at `confidence`.
+    confidence : float
+    """
+
+    mag_lo: np.ndarray
+    mag_hi: np.ndarray
+    n_injected: np.ndarray
+    n_recovered: np.ndarray
+    fraction: np.ndarray
+    interval_lo: np.ndarray
+    interval_hi: np.ndarray
+    confidence: float
+
+    def to_json(self):
+        keep = self.n_injected > 0
+        return {
+            "mag_lo": self.mag_lo[keep].tolist(),
+            "mag_hi": self.mag_hi[keep].tolist(),
+            "n_injected": self.n_injected[keep].tolist(),
+            "n_recovered": self.n_recovered[keep].tolist(),
+            "fraction": self.fraction[keep].tolist(),
+            "interval_lo": self.interval_lo[keep].tolist(),
+            "interval_hi": self.interval_hi[keep].tolist(),
+            "confidence": self.confidence,
+        }
+
+
+def binned_recovery(injections, bin_width=0.25, confidence=0.68):
+    """Recovered fraction of injections per magnitude bin with Clopper-Pearson intervals.
+
+    Parameters
+    ----------
+    injections : InjectionTable, DataFrame, path or (mag, recovered) pair
+    bin_width : float
+        Bin width in mag; bins start at a multiple of the width.
+    confidence : float
+        Level of the binomial intervals.
+    """
+    table = _as_injection_table(injections)
+    bin_width = _check_real(bin_width, "bin_width", 0.0)
+    lo = math.floor(float(table.mag.min()) / bin_width) * bin_width
+    n_bins = max(1, math.ceil((float(table.mag.max()) - lo) / bin_width + 1e-9))
+    edges = lo + bin_width * np.arange(n_bins + 1)
+    index = np.clip(np.searchsorted(edges, table.mag, side="right") - 1, 0, n_bins - 1)
+    n_injected = np.bincount(index, minlength=n_bins)
+    n_recovered = np.bincount(index, weights=table.recovered.astype(float), minlength=n_bins)
+    n_recovered = n_recovered.astype(np.int64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        fraction = np.where(n_injected > 0, n_recovered / np.maximum(n_injected, 1), np.nan)
+    interval_lo = np.full(n_bins, np.nan)
+    interval_hi = np.full(n_bins, np.nan)
+    has = n_injected > 0
+    if has.any():
+        interval_lo[has], interval_hi[has] = clopper_pearson(
+            n_recovered[has], n_injected[has], confidence
+        )
+    return RecoveryBins(edges[:-1], edges[1:], n_injected, n_recovered, fraction, interval_lo,
+                        interval_hi, float(confidence))
+
+
+def completeness_band(fit, m, level=0.68, n_draws=400, rng=None):
+    """Pointwise band of a fitted completeness curve.
+
+    Parametric fits: the `level` quantiles over `n_draws` curves whose parameters are drawn from
+    the fit's Gaussian approximation (``params_``, ``cov_``). Monotone fits: the per-block
+    Clopper-Pearson intervals, interpolated like the curve.
+
+    Returns
+    -------
+    lo, hi : ndarray, shape of `m`
+    """
+    if not isinstance(fit, CompletenessFit):
+        raise InputTypeError(f"`fit` must be a CompletenessFit; got {type(fit).__name__}")
+    model = fit._fitted("model_")
+    m_array, _ = _as_magnitudes(m)
+    if isinstance(model, MonotoneCompleteness):
+        lo = np.interp(m_array, model.mag, model.interval_lo)
+        hi = np.interp(m_array, model.mag, model.interval_hi)
+        return lo, hi
+    generator = _as_generator(rng)
+    names = list(fit.params_)
+    mean = np.array([fit.params_[name] for name in names])
+    draws = generator.multivariate_normal(mean, fit.cov_, size=int(n_draws))
+    curves = []
+    for row in draws:
+        p = dict(zip(names, row, strict=True))
+        c_max = float(np.clip(p.get("c_max", 1.0), 1e-6, 1.0))
+        if fit.model == "logistic":
+            if p["width"] <= 0:
+                continue
+            curve = LogisticCompleteness(p["m50"], p["width"], c_max)
+        else:
+            if p["alpha"] <= 0:
+                continue
+            curve = FlemingCompleteness(p["m_lim"], p["alpha"], c_max)
+        curves.append(curve(m_array))
+    tail = (1.0 - float(level)) / 2.0
+    lo, hi = np.quantile(np.array(curves), [tail, 1.0 - tail], axis=0)
+    return lo, hi
+
+
+@dataclass(frozen=True, eq=False)
+class ShiftedCompleteness:
+    """A_eff(m) = sum_j weight_j * shape(m - shift_j): one region's effective area (deg^2)."""
+
+    shape: object
+    shifts: np.ndarray
+    weights_deg2: np.ndarray
+
+    def __call__(self, m):
+        m_array = np.asarray(m, dtype=float)
+        flat = m_array.reshape(-1)
+        area = np.zeros(flat.size)
+        for start in range(0, self.shifts.size, 256):
+            part = slice(start, start + 256)
+            area += self.shape(flat[:, None] - self.shifts[None, part]) @ self.weights_deg2[part]
+        return area.reshape(m_array.shape) if m_array.ndim else float(area[0])
+
+
+def region_effective_areas(footprint, regions, shape, depth=None):
+    """Effective area A_eff_k(m) of each jackknife region, and of the whole footprint.
+
+    Parameters
+    ----------
+    footprint : countscale.footprint.Footprint
+    regions : countscale.footprint.Regions
+        Regions made of whole cells of ``regions.order`` (``Footprint.split``).
+    shape : CompletenessModel or CompletenessFit
+        The completeness curve; with a depth map it is shifted to each cell's m50.
+    depth : DepthMap, optional
+        Per-pixel m50. Cells finer than the depth map take their pixel's m50; cells in pixels
+        without depth data count as completeness 0 (with a warning).
+
+    Returns
+    -------
+    per_region : list of ShiftedCompleteness, length ``regions.n_regions``
+    total : ShiftedCompleteness
+        Their sum (it adds up exactly to the regions' total by construction).
+    """
+    if isinstance(shape, CompletenessFit):
+        shape = shape._fitted("model_")
+    if not isinstance(shape, CompletenessModel):
+        raise InputTypeError(f"`shape` must be a completeness model; got {type(shape).__name__}")
+    cells, fraction = footprint.coverage_cells(regions.order)
+    position = np.clip(np.searchsorted(regions.cells, cells), 0, len(regions.cells) - 1)
+    label = np.where(regions.cells[position] == cells, regions.labels[position], -1)
+    area_deg2 = fraction * hp.nside2pixarea(2**regions.order, degrees=True)
+    if depth is None:
+        shift = np.zeros(len(cells))
+    else:
+        if not isinstance(depth, DepthMap):
+            raise InputTypeError(f"`depth` must be a DepthMap; got {type(depth).__name__}")
+        x, y, z = hp.pix2vec(2**regions.order, cells, nest=True)
+        pixel = hp.vec2pix(depth.nside, x, y, z, nest=depth.nest)
+        shift = depth.m50_mag[pixel] - depth.shape.m50
+        missing = np.isnan(shift)
+        if missing.any():
+            warnings.warn(
+                f"{area_deg2[missing].sum():.4g} deg^2 of the footprint lies in depth-map pixels "
+                "with no data; counted as zero completeness",
+                CompletenessWarning,
+                stacklevel=2,
+            )
+            area_deg2 = np.where(missing, 0.0, area_deg2)
+            shift = np.where(missing, 0.0, shift)
+    per_region = []
+    for k in range(regions.n_regions):
+        mine = label == k
+        shifts, inverse = np.unique(shift[mine], return_inverse=True)
+        weights = np.bincount(inverse, weights=area_deg2[mine], minlength=shifts.size)
+        per_region.append(ShiftedCompleteness(shape, shifts, weights))
+    shifts, inverse = np.unique(shift[label >= 0], return_inverse=True)
+    weights = np.bincount(inverse, weights=area_deg2[label >= 0], minlength=shifts.size)
+    return per_region, ShiftedCompleteness(shape, shifts, weights)

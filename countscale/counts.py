@@ -27,6 +27,7 @@ Results
     :class:`DifferentialCounts` / :func:`differential_counts` (raw and corrected binned counts
     with Poisson and Poisson + clustering intervals, for tables and plots).
 Helpers
+    :func:`scatter_from_errors` / :class:`ScatterRelation` (sigma(m) from quoted errors),
     :func:`poisson_interval` (Garwood), :func:`jackknife_covariance`,
     :func:`combine_covariances` (Poisson floor + clustering excess).
 Warnings and errors
@@ -77,6 +78,7 @@ __all__ = [
     "ModelComparison",
     "NotFittedError",
     "PowerLaw",
+    "ScatterRelation",
     "combine_covariances",
     "compare_models",
     "differential_counts",
@@ -84,6 +86,7 @@ __all__ = [
     "integral_counts",
     "jackknife_covariance",
     "poisson_interval",
+    "scatter_from_errors",
 ]
 
 #: Fewest sources in a fit before it warns (DESIGN.md section 5: "fewer than 20 sources in a
@@ -2443,3 +2446,91 @@ def compare_models(fits):
         best_aic=names[int(np.argmin(aic))],
         best_bic=names[int(np.argmin(bic))],
     )
+
+
+# ------------------------------------------------------------------------------------------
+# Photometric scatter from a catalogue's own errors
+# ------------------------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class ScatterRelation:
+    """Photometric scatter sigma(m) in mag, from the median quoted error in magnitude bins.
+
+    Linear in log sigma between bin centres and constant beyond the first and last bins (a
+    callable for :class:`ForwardModel`'s ``scatter_mag``).
+
+    Attributes
+    ----------
+    mag : ndarray
+        Bin centres (AB mag) of the bins with enough sources.
+    sigma_mag : ndarray
+        Median quoted error there, made non-decreasing with magnitude (errors of a
+        sky-limited survey grow towards its limit; a running maximum removes the noise of
+        sparse bright bins).
+    n_sources : ndarray of int
+    """
+
+    mag: np.ndarray
+    sigma_mag: np.ndarray
+    n_sources: np.ndarray
+
+    def __call__(self, m):
+        m_array = np.asarray(m, dtype=float)
+        out = np.exp(np.interp(m_array, self.mag, np.log(self.sigma_mag)))
+        return out if m_array.ndim else float(out)
+
+    def to_json(self):
+        return {
+            "mag": self.mag.tolist(),
+            "sigma_mag": self.sigma_mag.tolist(),
+            "n_sources": self.n_sources.tolist(),
+        }
+
+
+def scatter_from_errors(mag, mag_error, bin_width=0.25, min_sources=20):
+    """The scatter relation sigma(m) of a catalogue from its quoted magnitude errors.
+
+    Parameters
+    ----------
+    mag, mag_error : array_like, shape (n,)
+        Observed magnitudes and their quoted 1-sigma errors (mag). Rows with a non-finite or
+        non-positive error are ignored here (they are still counted by the tally).
+    bin_width : float
+        Bin width in mag.
+    min_sources : int
+        Bins with fewer sources are left out.
+
+    Notes
+    -----
+    The quoted error is taken at the observed magnitude and used as the scatter at the same
+    true magnitude; the difference is second order in sigma for a smooth relation.
+    """
+    mag = np.asarray(mag, dtype=float)
+    mag_error = np.asarray(mag_error, dtype=float)
+    if mag.shape != mag_error.shape or mag.ndim != 1:
+        raise InputError(
+            f"`mag` and `mag_error` must be 1-D and of one length; got {mag.shape} and "
+            f"{mag_error.shape}"
+        )
+    good = np.isfinite(mag) & np.isfinite(mag_error) & (mag_error > 0)
+    if good.sum() < min_sources:
+        raise InputError(
+            f"`mag_error` has {int(good.sum())} usable values (finite, > 0); at least "
+            f"{min_sources} are needed for a scatter relation"
+        )
+    mag, mag_error = mag[good], mag_error[good]
+    bin_width = _check_real(bin_width, "bin_width", 0.0)
+    index = np.floor(mag / bin_width).astype(np.int64)
+    order = np.argsort(index, kind="stable")
+    index, errors = index[order], mag_error[order]
+    starts = np.flatnonzero(np.r_[True, index[1:] != index[:-1]])
+    ends = np.r_[starts[1:], len(index)]
+    counts = ends - starts
+    keep = counts >= min_sources
+    if not keep.any():
+        raise InputError(
+            f"no magnitude bin of width {bin_width:g} holds {min_sources} sources with errors"
+        )
+    medians = np.array([np.median(errors[a:b]) for a, b in zip(starts[keep], ends[keep],
+                                                                strict=True)])
+    centres = (index[starts[keep]] + 0.5) * bin_width
+    return ScatterRelation(centres, np.maximum.accumulate(medians), counts[keep])

@@ -209,9 +209,205 @@ def _stage_tally(ctx: RunContext) -> Any:
     )
 
 
-#: The stages, in order. Later issues append counts, luminosity_function, variance, totals.
+@dataclass(frozen=True, eq=False)
+class StageResult:
+    """A stage's JSON-ready summary plus the live objects later stages read."""
+
+    data: dict
+    objects: Mapping[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        return self.data
+
+    def __getitem__(self, name: str) -> Any:
+        return self.objects[name]
+
+
+#: Magnitude grid step of the curves stored for figures (mag).
+_CURVE_STEP_MAG = 0.02
+
+
+def _depth_offsets(table: Any, depth: Any, footprint: Any) -> tuple[np.ndarray, float]:
+    """Each injection's depth offset m50(position) - median m50 over the footprint."""
+    import healpy as hp
+
+    pixel = hp.ang2pix(depth.nside, table.ra_deg, table.dec_deg, nest=depth.nest, lonlat=True)
+    cover = footprint.to_healpix(depth.nside, nest=depth.nest)
+    reference = float(np.nanmedian(depth.m50_mag[cover > 0]))
+    return depth.m50_mag[pixel] - reference, reference
+
+
+def _stage_completeness(ctx: RunContext) -> StageResult:
+    """Fit the injection table; effective area of the footprint and of each region.
+
+    With a depth map and injection positions, each injection's magnitude is first moved by
+    its tile's depth offset from the footprint's median m50, so the fit measures the curve's
+    *shape* (a single curve fitted across tiles of different depth would come out too wide);
+    the depth map then places that shape at each tile's m50.
+    """
+    from countscale import completeness as cm
+
+    runfile, section = ctx.runfile, ctx.runfile.completeness
+    tally_result = ctx.results["tally"]
+    table = cm.InjectionTable.from_csv(section.injections, columns=section.columns)
+    depth_info = None
+    fit_table = table
+    if section.depth_map is not None:
+        placeholder = cm.LogisticCompleteness(0.0, 1.0)
+        depth_raw = cm.DepthMap.from_fits(section.depth_map, shape=placeholder)
+        if table.ra_deg is not None:
+            offset, reference = _depth_offsets(table, depth_raw, ctx.footprint)
+            usable = np.isfinite(offset)
+            if not usable.any():
+                raise InputError(
+                    f"{runfile.location('completeness', 'depth_map')}: no injection lies in a "
+                    "depth-map pixel with data"
+                )
+            fit_table = cm.InjectionTable.from_arrays(
+                table.mag[usable] - offset[usable], table.recovered[usable]
+            )
+            depth_info = {"reference_m50": reference,
+                          "n_injections_outside_depth_map": int((~usable).sum())}
+    fit = cm.fit_completeness(fit_table, model=section.model, plateau=section.plateau,
+                              rng=ctx.rng)
+    depth = None
+    if section.depth_map is not None:
+        depth = cm.DepthMap.from_fits(section.depth_map, shape=fit)
+        cover = ctx.footprint.to_healpix(depth.nside, nest=depth.nest) > 0
+        values = depth.m50_mag[cover & np.isfinite(depth.m50_mag)]
+        depth_info = {
+            **(depth_info or {}),
+            "path": str(section.depth_map),
+            "nside": int(depth.nside),
+            "m50_min": float(values.min()) if values.size else None,
+            "m50_median": float(np.median(values)) if values.size else None,
+            "m50_max": float(values.max()) if values.size else None,
+            "shifted_injections": table.ra_deg is not None,
+        }
+    per_region, total = cm.region_effective_areas(ctx.footprint, tally_result.regions, fit,
+                                                  depth)
+    recovery = cm.binned_recovery(fit_table, bin_width=0.1)
+    lo_mag = float(np.floor(fit_table.mag.min() * 10) / 10)
+    hi_mag = float(np.ceil(fit_table.mag.max() * 10) / 10)
+    grid = np.arange(lo_mag, hi_mag + _CURVE_STEP_MAG / 2, _CURVE_STEP_MAG)
+    band_lo, band_hi = cm.completeness_band(fit, grid, rng=ctx.rng)
+    area = tally_result.area_deg2
+    data = {
+        "model": section.model,
+        "plateau": bool(section.plateau),
+        "injections": str(section.injections),
+        "n_injections": len(table),
+        "n_injections_fitted": len(fit_table),
+        "m50": fit.m50.to_json(),
+        "width": fit.width.to_json(),
+        "m90": fit.m90.to_json(),
+        "params": {k: float(v) for k, v in fit.params_.items()},
+        "depth_map": depth_info,
+        "recovery": recovery.to_json(),
+        "curve": {
+            "mag": grid.tolist(),
+            "completeness": np.asarray(fit(grid), dtype=float).tolist(),
+            "band_lo": band_lo.tolist(),
+            "band_hi": band_hi.tolist(),
+            "effective_area_fraction": (np.asarray(total(grid)) / area).tolist(),
+        },
+    }
+    return StageResult(data, {"fit": fit, "depth": depth, "per_region": per_region,
+                              "total": total})
+
+
+#: Models fitted for comparison beside the run file's choice.
+_COUNT_MODELS = ("power_law", "broken_power_law", "double_power_law")
+
+
+def _stage_counts(ctx: RunContext) -> StageResult:
+    """Fit the number counts through the forward model; integral and differential counts."""
+    from countscale import counts as ct
+
+    runfile, section = ctx.runfile, ctx.runfile.counts
+    tally_result = ctx.results["tally"]
+    completeness = ctx.results.get("completeness")
+    area = float(tally_result.area_deg2)
+    notes = []
+    if completeness is not None:
+        effective, per_region = completeness["total"], list(completeness["per_region"])
+    else:
+        effective, per_region = area, [float(a) for a in tally_result.region_area_deg2]
+        notes.append("no [completeness] section: the survey is taken as complete at every "
+                     "magnitude fitted")
+    columns = tally_result.columns
+    scatter = None
+    if columns is not None and "mag_error" in columns and "mag" in columns:
+        scatter = ct.scatter_from_errors(columns["mag"], columns["mag_error"])
+    else:
+        notes.append("no magnitude errors in the catalogue: photometric scatter is ignored")
+    forward = ct.ForwardModel(tally_result.mag_edges, effective, scatter, area_deg2=area)
+    fit_range = section.fit_range
+    if fit_range is None:
+        # Default: the bins that are at least half complete (DESIGN.md section 5).
+        good = np.flatnonzero(forward.bin_completeness() >= 0.5)
+        if good.size == 0:
+            raise InputError(f"{runfile.location('counts')}: no magnitude bin is at least 50 % "
+                             "complete; give `fit_range`")
+        edges = tally_result.mag_edges
+        fit_range = (float(edges[good[0]]), float(edges[good[-1] + 1]))
+    observed = tally_result.counts
+    region_counts = tally_result.region_counts
+    if tally_result.n_unassigned or not np.array_equal(region_counts.sum(axis=0), observed):
+        notes.append("some sources fall in no jackknife region: errors are Poisson only")
+        region_counts, per_region = None, None
+    elif tally_result.n_regions < 3:
+        region_counts, per_region = None, None
+        notes.append("fewer than 3 regions: errors are Poisson only (no jackknife)")
+
+    fits = {}
+    for name in (section.model, *[m for m in _COUNT_MODELS if m != section.model]):
+        try:
+            fits[name] = ct.CountsFit(name, forward, fit_range_mag=fit_range).fit(
+                observed, rng=ctx.rng, region_counts=region_counts,
+                region_effective_area_deg2=per_region,
+            )
+        except (ct.CountsFitError, InputError) as exc:
+            if name == section.model:
+                raise
+            notes.append(f"comparison model {name} not fitted: {exc}")
+    main = fits[section.model]
+    comparison = ct.compare_models(list(fits.values())) if len(fits) > 1 else None
+    m_limit = float(main.fit_range_[1])
+    integral = main.integral_counts(m_limit, area_deg2=area, rng=ctx.rng)
+    differential = main.differential_counts()
+    grid = np.arange(tally_result.mag_edges[0], tally_result.mag_edges[-1] + 1e-9,
+                     _CURVE_STEP_MAG)
+    data = {
+        "model": section.model,
+        "fit": main.to_json(),
+        "alternatives": {name: fit.to_json() for name, fit in fits.items()
+                         if name != section.model},
+        "comparison": None if comparison is None else comparison.to_json(),
+        "integral_counts": {
+            **integral.to_json(),
+            "note": (f"sources brighter than m = {m_limit:g}, the faint end of the fit range, "
+                     "from the fitted model corrected for completeness and scatter; brighter "
+                     f"than {float(main.fit_range_[0]):g} the model is extrapolated"),
+        },
+        "differential": differential.to_json(),
+        "expected_counts": np.asarray(main.expected_counts_, dtype=float).tolist(),
+        "scatter": None if scatter is None else scatter.to_json(),
+        "model_curves": {
+            "mag": grid.tolist(),
+            **{name: np.asarray(fit.model_.density(grid), dtype=float).tolist()
+               for name, fit in fits.items()},
+        },
+        "notes": notes,
+    }
+    return StageResult(data, {"fit": main, "fits": fits, "forward": forward})
+
+
+#: The stages, in order. Later issues append luminosity_function, variance, totals.
 STAGES: list[Stage] = [
     Stage("tally", ("catalog", "footprint"), _stage_tally),
+    Stage("completeness", ("completeness",), _stage_completeness),
+    Stage("counts", ("counts",), _stage_counts, columns=("mag", "mag_error")),
 ]
 
 #: Sections read by the run itself rather than by a stage.
@@ -340,7 +536,8 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     for stage in to_run:
         if stage.name != "tally":
             results[stage.name] = ctx.results[stage.name].to_dict()
-    files = report.write_report(results, out_dir, formats=runfile.output.formats)
+    files = report.write_report(results, out_dir, formats=runfile.output.formats,
+                                footprint=ctx.footprint)
     return RunResult(
         runfile=runfile, out_dir=out_dir, files=files, engine=engine, seed=seed,
         stages=tuple(s.name for s in to_run), sections_not_run=not_run,

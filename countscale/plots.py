@@ -95,3 +95,126 @@ def footprint_figure(footprint, path, title=None, zoom_pixels=700):
     with atomic_path(path, suffix=".png") as tmp:
         fig.savefig(tmp, dpi=110, format="png")
     plt.close(fig)
+
+
+def completeness_figure(completeness, path, title=None):
+    """Completeness: recovered fraction of injections, the fitted curve and its band.
+
+    Parameters
+    ----------
+    completeness : mapping
+        The ``completeness`` block of ``results.json``.
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    rec, curve = completeness["recovery"], completeness["curve"]
+    mid = 0.5 * (np.asarray(rec["mag_lo"]) + np.asarray(rec["mag_hi"]))
+    frac = np.asarray(rec["fraction"])
+    err = np.abs(np.stack([frac - np.asarray(rec["interval_lo"]),
+                           np.asarray(rec["interval_hi"]) - frac]))
+    fig, ax = plt.subplots(figsize=(8, 5))
+    mag = np.asarray(curve["mag"])
+    ax.fill_between(mag, curve["band_lo"], curve["band_hi"], color="tab:blue", alpha=0.3,
+                    lw=0, label="fit, 68 % band")
+    ax.plot(mag, curve["completeness"], color="tab:blue", lw=1.5,
+            label=f"{completeness['model']} fit")
+    ax.errorbar(mid, frac, yerr=err, fmt="o", ms=3, color="k", lw=0.8,
+                label=f"injections ({completeness['n_injections_fitted']:,d}), "
+                      f"{int(100 * rec['confidence'])} % binomial")
+    ax.plot(mag, curve["effective_area_fraction"], color="tab:orange", ls="--", lw=1.2,
+            label="effective area / area (depth map applied)")
+    m50, m90 = completeness["m50"], completeness["m90"]
+    for est, name in ((m50, "m50"), (m90, "m90")):
+        ax.axvline(est["median"], color="grey", ls=":", lw=1)
+        ax.text(est["median"], 0.03, f" {name} = {est['median']:.3f}", rotation=90,
+                va="bottom", ha="right", fontsize=8, color="grey")
+    depth = completeness.get("depth_map")
+    xlabel = "injected magnitude"
+    if depth and depth.get("shifted_injections"):
+        xlabel += f" (moved to the median depth, m50 = {depth['reference_m50']:.2f})"
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel("completeness")
+    ax.set_ylim(-0.02, 1.05)
+    ax.grid(alpha=0.3)
+    ax.legend(loc="lower left", fontsize=8)
+    ax.set_title(title or "Detection completeness", fontsize=11)
+    fig.tight_layout()
+    _save(fig, path)
+
+
+def counts_figure(counts, path, title=None):
+    """Number counts: raw and corrected densities, fitted models, and fit residuals.
+
+    Parameters
+    ----------
+    counts : mapping
+        The ``counts`` block of ``results.json``.
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    diff = counts["differential"]
+    lo, hi = np.asarray(diff["mag_lo"]), np.asarray(diff["mag_hi"])
+    mid = 0.5 * (lo + hi)
+    n_obs = np.asarray(diff["n_observed"], dtype=float)
+    used = np.asarray(diff["used_in_fit"], dtype=bool)
+    fig, (ax, res) = plt.subplots(2, 1, figsize=(8, 7), sharex=True,
+                                  gridspec_kw={"height_ratios": [3, 1]})
+    shown = n_obs > 0
+    raw = np.asarray(diff["raw_density"])
+    ax.plot(mid[shown], raw[shown], "o", mfc="none", mec="grey", ms=4,
+            label="raw (no correction)")
+    corr = np.array([np.nan if v is None else v for v in diff["corrected_density"]])
+    full = diff["corrected_interval_68_full"] or diff["corrected_interval_68"]
+    band = np.array([[np.nan, np.nan] if v is None else v for v in full], dtype=float)
+    # Corrected points only where at least half the sources are detected: deeper, the
+    # correction is mostly the model's own extrapolation.
+    ok = shown & np.isfinite(corr) & (np.asarray(diff["completeness"]) >= 0.5)
+    yerr = np.abs(np.stack([corr - band[:, 0], band[:, 1] - corr]))[:, ok]
+    error_kind = "Poisson + clustering" if diff["corrected_interval_68_full"] else "Poisson"
+    ax.errorbar(mid[ok], corr[ok], yerr=yerr, fmt="o", ms=3.5, color="k", lw=0.9,
+                label=f"corrected for completeness and scatter (68 %, {error_kind}; "
+                      "shown where completeness ≥ 0.5)")
+    curves = counts["model_curves"]
+    grid = np.asarray(curves["mag"])
+    styles = {"power_law": "-", "broken_power_law": "--", "double_power_law": ":"}
+    for name, values in curves.items():
+        if name == "mag":
+            continue
+        main = name == counts["model"]
+        label = name.replace("_", " ") + (" (fitted)" if main else " (comparison)")
+        if main and "slope" in counts["fit"]:
+            slope = counts["fit"]["slope"]
+            label += (f": slope {slope['median']:.3f} "
+                      f"[{slope['interval_68'][0]:.3f}, {slope['interval_68'][1]:.3f}]")
+        ax.plot(grid, values, styles.get(name, "-"), color="tab:red" if main else "tab:blue",
+                lw=1.6 if main else 1.0, label=label)
+    fit_lo, fit_hi = counts["fit"]["fit_range"]
+    for axis in (ax, res):
+        axis.axvspan(fit_lo, fit_hi, color="tab:green", alpha=0.07, lw=0)
+    ax.set_yscale("log")
+    positive = raw[shown]
+    ax.set_ylim(0.5 * positive.min(), 3 * max(positive.max(), np.nanmax(corr[ok])))
+    ax.set_ylabel("sources per deg² per mag")
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=7.5, loc="upper left")
+    ax.set_title(title or "Differential number counts (fit range shaded)", fontsize=11)
+    expected = np.asarray(counts["expected_counts"], dtype=float)
+    pull = np.where(expected > 0, (n_obs - expected) / np.sqrt(np.maximum(expected, 1e-300)),
+                    np.nan)
+    res.axhline(0, color="k", lw=0.8)
+    res.plot(mid[used], pull[used], "o", color="tab:red", ms=3.5)
+    res.plot(mid[~used & shown], pull[~used & shown], "o", mfc="none", mec="grey", ms=3)
+    res.set_ylabel("(N − μ) / √μ")
+    res.set_xlabel("magnitude")
+    res.grid(alpha=0.3)
+    fig.tight_layout()
+    _save(fig, path)
+
+
+def _save(fig, path):
+    plt = _pyplot()
+    with atomic_path(path, suffix=".png") as tmp:
+        fig.savefig(tmp, dpi=110, format="png")
+    plt.close(fig)

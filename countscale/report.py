@@ -136,12 +136,100 @@ def render_markdown(results: Mapping[str, Any]) -> str:
         "",
         _regions_line(tally["regions"]) + ".",
     ]
+    figures = results.get("figures", {})
+    if "footprint" in figures:
+        out += ["", f"![footprint]({figures['footprint']})"]
+    if "completeness" in results:
+        out += ["", *_completeness_markdown(results["completeness"])]
+        if "completeness" in figures:
+            out += ["", f"![completeness]({figures['completeness']})"]
+    if "counts" in results:
+        out += ["", *_counts_markdown(results["counts"])]
+        if "counts" in figures:
+            out += ["", f"![number counts]({figures['counts']})"]
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         out += ["", "## Not run", "", f"The run file has {listed}; this version of countscale "
                 "has no stage that fits or reports them yet (the tally used `[counts].bins` "
                 "and `[variance].regions` where given)."]
     return "\n".join(out) + "\n"
+
+
+def _estimate(obj: Mapping[str, Any]) -> str:
+    from countscale.estimate import Estimate
+
+    return Estimate.from_json(obj).format()
+
+
+def _completeness_markdown(comp: Mapping[str, Any]) -> list[str]:
+    out = [
+        "## Completeness",
+        "",
+        f"{comp['model']} curve fitted to {comp['n_injections_fitted']:,d} of "
+        f"{comp['n_injections']:,d} injections (`{comp['injections']}`).",
+        "",
+        f"- m50 = {_estimate(comp['m50'])}",
+        f"- m90 = {_estimate(comp['m90'])}",
+        f"- width = {_estimate(comp['width'])}",
+    ]
+    depth = comp.get("depth_map")
+    if depth and depth.get("nside"):
+        out += [
+            f"- depth map `{depth['path']}` (nside {depth['nside']}): m50 from "
+            f"{depth['m50_min']:.3f} to {depth['m50_max']:.3f}, median {depth['m50_median']:.3f}"
+            + ("; injections were moved to the median depth before fitting, so the curve is "
+               "the shape at one depth and the map places it tile by tile"
+               if depth.get("shifted_injections") else ""),
+        ]
+    out += ["", "Intervals are 68 %; they reflect the finite number of injections only."]
+    return out
+
+
+def _counts_markdown(counts: Mapping[str, Any]) -> list[str]:
+    fit = counts["fit"]
+    lo, hi = fit["fit_range"]
+    out = [
+        "## Number counts",
+        "",
+        f"Model `{fit['model']}` fitted by Poisson likelihood to {fit['n_sources']:,d} sources in "
+        f"{fit['n_bins']} bins over {lo:g}–{hi:g} mag, through a forward model of completeness, "
+        "effective area and photometric scatter. Intervals are 68 %; "
+        + (f"errors include the jackknife over {fit['n_regions']} regions (clustering)."
+           if fit.get("n_regions", 0) >= 3 else "errors are Poisson only."),
+        "",
+        "| parameter | value | budget |",
+        "|---|---|---|",
+    ]
+    for name, value in fit.items():
+        if isinstance(value, Mapping) and "median" in value:
+            budget = ", ".join(f"{k} {v:.0%}" for k, v in value.get("budget", {}).items())
+            out.append(f"| {name} | {_estimate(value)} | {budget} |")
+    p = fit.get("p_value")
+    out += [
+        "",
+        f"Goodness of fit: deviance {fit['deviance']:.1f} for {fit['dof']} degrees of freedom"
+        + (f", parametric-bootstrap p = {p:.3g}" if p is not None else "")
+        + f"; AIC {fit['aic']:.1f}, BIC {fit['bic']:.1f}."
+        + (" **The model does not describe these counts within their errors (p < 0.05): its "
+           "parameters summarise a curved relation, compare the alternatives below.**"
+           if p is not None and p < 0.05 else ""),
+    ]
+    alternatives = counts.get("alternatives") or {}
+    if alternatives:
+        out += ["", "| model | deviance | dof | AIC | BIC |", "|---|---:|---:|---:|---:|"]
+        for name, alt in [(fit["model"], fit), *alternatives.items()]:
+            out.append(f"| {name} | {alt['deviance']:.1f} | {alt['dof']} | {alt['aic']:.1f} | "
+                       f"{alt['bic']:.1f} |")
+    integral = counts["integral_counts"]
+    out += [
+        "",
+        f"Integral counts N(<{integral['m_limit']:g}) = {_estimate(integral['per_deg2'])}; over "
+        f"the footprint's {integral['area_deg2']:.4g} deg²: {_estimate(integral['total'])} "
+        f"sources ({integral['note']}).",
+    ]
+    for note in counts.get("notes", []):
+        out += ["", f"Note: {note.rstrip('.')}."]
+    return out
 
 
 def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] = ()) -> str:
@@ -169,6 +257,23 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
     lines += [f"  {lo:>6.4g} – {hi:<6.4g} {n:>12,d} {d:>14.4g}"
               for lo, hi, n, d in _bin_rows(results)]
     lines.append(f"  brighter {tally['n_brighter']:,d}; fainter {tally['n_fainter']:,d}")
+    if "completeness" in results:
+        comp = results["completeness"]
+        lines += ["", f"completeness    {comp['model']}: m50 {_estimate(comp['m50'])}, "
+                      f"m90 {_estimate(comp['m90'])}"]
+    if "counts" in results:
+        fit = results["counts"]["fit"]
+        integral = results["counts"]["integral_counts"]
+        params = [f"{k} {_estimate(v)}" for k, v in fit.items()
+                  if isinstance(v, Mapping) and "median" in v]
+        lines += [
+            "",
+            f"number counts   {fit['model']} over {fit['fit_range'][0]:g}–{fit['fit_range'][1]:g}"
+            f" mag: " + "; ".join(params),
+            f"                deviance {fit['deviance']:.1f} / {fit['dof']} dof; "
+            f"N(<{integral['m_limit']:g}) = {_estimate(integral['per_deg2'])}",
+        ]
+        lines += [f"                note: {note}" for note in results["counts"].get("notes", [])]
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         lines += ["", f"not run yet     {listed}",
@@ -185,8 +290,13 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
 # --------------------------------------------------------------------------------------------
 
 
+FIGURE_NAMES = {"footprint": "footprint.png", "completeness": "completeness.png",
+                "counts": "counts.png"}
+
+
 def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
-                 formats: Iterable[str] = ("json", "markdown")) -> tuple[Path, ...]:
+                 formats: Iterable[str] = ("json", "markdown"),
+                 footprint: Any = None) -> tuple[Path, ...]:
     """Write the report folder; ``results.json`` last (see the module docstring).
 
     Parameters
@@ -196,8 +306,12 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
     out_dir : path
         The folder (created if needed).
     formats : iterable of str
-        ``"markdown"`` adds ``report.md``. ``results.json`` is always written: it marks a
-        complete report. ``"html"`` and ``"png"`` are accepted and not produced yet.
+        ``"markdown"`` adds ``report.md``; ``"png"`` adds the figures (footprint, when
+        `footprint` is given; completeness and number counts when the results have them),
+        which the Markdown report shows. ``results.json`` is always written: it marks a
+        complete report. ``"html"`` is accepted and not produced yet.
+    footprint : countscale.footprint.Footprint, optional
+        For the footprint figure.
 
     Returns
     -------
@@ -208,7 +322,21 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
     if out_dir.exists() and not out_dir.is_dir():
         raise InputError(f"`out_dir` '{out_dir}' exists and is not a folder")
     formats = tuple(formats)
-    # Build every file's content before touching the folder.
+    figures: dict[str, Any] = {}
+    if "png" in formats:
+        from countscale import plots
+
+        title = _title(results)
+        if footprint is not None:
+            figures["footprint"] = lambda p: plots.footprint_figure(footprint, p, title=title)
+        if "completeness" in results:
+            figures["completeness"] = lambda p: plots.completeness_figure(
+                results["completeness"], p, title=f"{title}: detection completeness")
+        if "counts" in results:
+            figures["counts"] = lambda p: plots.counts_figure(
+                results["counts"], p, title=f"{title}: differential number counts")
+        results = {**results, "figures": {k: FIGURE_NAMES[k] for k in figures}}
+    # Build every text file's content before touching the folder.
     contents: list[tuple[str, str]] = []
     if "markdown" in formats:
         contents.append((REPORT_NAME, render_markdown(results)))
@@ -217,6 +345,10 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
     out_dir.mkdir(parents=True, exist_ok=True)
     (out_dir / RESULTS_NAME).unlink(missing_ok=True)
     written = []
+    for name, draw in figures.items():
+        path = out_dir / FIGURE_NAMES[name]
+        draw(path)  # plots write through atomic_path themselves
+        written.append(path)
     for name, text in contents:
         path = out_dir / name
         with atomic_path(path) as tmp:

@@ -1,0 +1,130 @@
+"""Completeness and counts stages of a run: helpers, figures and recovery on the demo survey.
+
+Outside references: Clopper & Pearson intervals via scipy.stats.binomtest; the effective area
+against `completeness.effective_area_deg2` at the depth map's own pixels; the demo's truth
+(demo_data/truth.json, written by the mock generator, never read by the pipeline); faint
+galaxy count slopes 0.33-0.50 (McCracken et al. 2001, A&A; REFERENCES.md §6).
+"""
+
+import json
+from pathlib import Path
+
+import healpy as hp
+import numpy as np
+import pytest
+from scipy import stats
+
+from countscale import completeness as cm
+from countscale import counts as ct
+from countscale.footprint import Footprint
+
+DEMO = Path(__file__).resolve().parents[1] / "demo_data"
+
+
+def test_binned_recovery_matches_scipy_binomial_intervals():
+    rng = np.random.default_rng(3)
+    mag = rng.uniform(20, 25, 3000)
+    recovered = rng.random(3000) < cm.LogisticCompleteness(23.0, 0.3)(mag)
+    bins = cm.binned_recovery((mag, recovered), bin_width=0.5)
+    assert bins.n_injected.sum() == 3000
+    for k in np.flatnonzero(bins.n_injected):
+        ci = stats.binomtest(int(bins.n_recovered[k]), int(bins.n_injected[k])).proportion_ci(
+            confidence_level=0.68, method="exact"
+        )
+        assert bins.interval_lo[k] == pytest.approx(ci.low, abs=1e-9)
+        assert bins.interval_hi[k] == pytest.approx(ci.high, abs=1e-9)
+
+
+def test_completeness_band_covers_the_true_curve():
+    rng = np.random.default_rng(8)
+    truth = cm.LogisticCompleteness(23.0, 0.25)
+    covered = []
+    grid = np.array([22.5, 23.0, 23.4])
+    for seed in range(40):
+        mag = rng.uniform(21, 25, 2000)
+        fit = cm.fit_completeness((mag, rng.random(2000) < truth(mag)))
+        lo, hi = cm.completeness_band(fit, grid, rng=seed)
+        covered.append((lo <= truth(grid)) & (truth(grid) <= hi))
+    rate = np.mean(covered)
+    # 68 % pointwise band over 40 x 3 points (correlated): a loose binomial range.
+    assert 0.5 < rate < 0.85
+
+
+def test_region_effective_areas_add_up_to_the_depth_map_integral(tmp_path):
+    footprint = Footprint.box((150, 154), (0, 3), max_order=12)
+    nside = 32
+    m50 = np.full(hp.nside2npix(nside), hp.UNSEEN)
+    cover = footprint.to_healpix(nside) > 0
+    m50[cover] = 22.5 + np.linspace(0, 0.6, cover.sum())
+    hp.write_map(tmp_path / "depth.fits", m50)
+    shape = cm.LogisticCompleteness(22.8, 0.2)
+    depth = cm.DepthMap.from_fits(tmp_path / "depth.fits", shape=shape)
+    regions = footprint.split(6)
+    per_region, total = cm.region_effective_areas(footprint, regions, shape, depth)
+    m = np.linspace(21, 24.5, 30)
+    reference = cm.effective_area_deg2(m, footprint, depth)
+    assert np.allclose(total(m), reference, rtol=1e-9, atol=1e-12)
+    assert np.allclose(sum(f(m) for f in per_region), total(m), rtol=1e-12)
+    # Bright limit: every region's area (completeness 1).
+    assert np.allclose([f(10.0) for f in per_region], regions.area_deg2, rtol=1e-9)
+
+
+def test_scatter_relation_recovers_a_sky_limited_law():
+    rng = np.random.default_rng(4)
+    mag = rng.uniform(18, 24, 50_000)
+    sigma = 0.2 * 10 ** (0.4 * (mag - 23.0))  # sky-limited: sigma grows 10^(0.4 m)
+    error = sigma * rng.lognormal(0, 0.05, mag.size)
+    relation = ct.scatter_from_errors(mag, error, bin_width=0.25)
+    m = np.array([19.0, 21.0, 23.0])
+    assert relation(m) == pytest.approx(0.2 * 10 ** (0.4 * (m - 23.0)), rel=0.06)
+    with pytest.raises(ct.InputError, match=r"`mag_error` has 3 usable values"):
+        ct.scatter_from_errors([1.0, 2.0, 3.0, 4.0], [0.1, 0.1, 0.1, -1.0])
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory):
+    if not (DEMO / "survey.toml").is_file():
+        pytest.skip("demo_data not generated")
+    from countscale.pipeline import run_survey
+
+    out = tmp_path_factory.mktemp("demo")
+    return run_survey(DEMO / "survey.toml", out_dir=out, seed=11)
+
+
+def test_demo_recovers_its_truth(demo_run):
+    truth = json.loads((DEMO / "truth.json").read_text())["mock"]
+    results = demo_run.results
+    comp = results["completeness"]
+    # Each tile's true curve is logistic with width 0.15 at the tile's m50; moved to the
+    # median depth, the injections follow one logistic at the reference m50.
+    reference = comp["depth_map"]["reference_m50"]
+    for name, true in (("m50", reference), ("width", truth["measurement"]["width"])):
+        est = comp[name]
+        sigma = 0.5 * (est["interval_68"][1] - est["interval_68"][0])
+        assert abs(est["median"] - true) < 2.5 * sigma, name
+    counts = results["counts"]
+    slope = counts["fit"]["slope"]["median"]
+    assert 0.33 <= slope <= 0.50  # McCracken et al. 2001 faint-galaxy range (REFERENCES §6)
+    # N(< faint end of the fit range) over the footprint against the galaxies actually drawn
+    # there (true magnitudes), interpolated in log N between the truth's magnitude limits.
+    integral = counts["integral_counts"]
+    limits = np.array(truth["mag_limits"])
+    drawn = np.array(truth["n_true_footprint"]["galaxies"], dtype=float)
+    true_total = np.exp(np.interp(integral["m_limit"], limits, np.log(drawn)))
+    lo, hi = integral["total"]["interval_95"]
+    assert lo <= true_total <= hi
+
+
+def test_demo_report_has_sections_and_figures(demo_run):
+    out = demo_run.out_dir
+    report = (out / "report.md").read_text()
+    for heading in ("## Completeness", "## Number counts", "![number counts](counts.png)"):
+        assert heading in report
+    for name in ("footprint.png", "completeness.png", "counts.png"):
+        assert (out / name).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    saved = json.loads((out / "results.json").read_text())
+    for block in (saved["completeness"]["m50"], saved["counts"]["fit"]["slope"],
+                  saved["counts"]["integral_counts"]["total"]):
+        assert set(block) == {"median", "interval_68", "interval_95", "unit", "budget"}
+        if block["budget"]:
+            assert sum(block["budget"].values()) == pytest.approx(1.0, abs=0.01)
