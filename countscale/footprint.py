@@ -132,34 +132,70 @@ _EMPTY_W = np.zeros(0, dtype=np.float32)
 
 
 def _canonical(edges, weight, sigma):
-    """Drop empty segments, merge equal neighbours, trim zero-weight ends."""
+    """Drop empty segments, merge equal neighbours, trim zero-weight ends.
+
+    Written to copy each array once at most: footprints with 10^5 holes hold ~10^7
+    segments, and these copies set the peak memory of building them.
+    """
     if len(weight) == 0:
         return _EMPTY_EDGES, _EMPTY_W, None
     edges = np.asarray(edges, dtype=np.int64)
     weight = np.asarray(weight, dtype=np.float32)
-    sig = np.zeros(len(weight), np.float32) if sigma is None else np.asarray(sigma, np.float32)
+    sigma = None if sigma is None else np.asarray(sigma, np.float32)
+    if sigma is not None and not np.any(sigma):
+        sigma = None
+    # A segment starts a new run unless it is empty or continues its neighbour's values.
+    # Boolean masks, not index arrays: a mask costs 1 byte per segment, an index 8.
     keep = np.diff(edges) > 0
-    starts, end = edges[:-1][keep], edges[-1]
-    weight, sig = weight[keep], sig[keep]
-    if len(weight) == 0:
+    if not keep.all():
+        starts = edges[:-1][keep]
+        weight = weight[keep]
+        sigma = None if sigma is None else sigma[keep]
+        if len(weight) == 0:
+            return _EMPTY_EDGES, _EMPTY_W, None
+    else:
+        starts = edges[:-1]
+    del keep
+    # Compared after dropping empty segments, so an empty segment between two equal ones
+    # does not split them.
+    new = np.ones(len(weight), dtype=bool)
+    np.not_equal(weight[1:], weight[:-1], out=new[1:])
+    if sigma is not None:
+        new[1:] |= sigma[1:] != sigma[:-1]
+    if not new.all():
+        starts = starts[new]
+        weight = weight[new]
+        sigma = None if sigma is None else sigma[new]
+    del new
+    positive = weight > 0
+    if not positive.any():
         return _EMPTY_EDGES, _EMPTY_W, None
-    new = np.empty(len(weight), dtype=bool)
-    new[0] = True
-    new[1:] = (weight[1:] != weight[:-1]) | (sig[1:] != sig[:-1])
-    starts, weight, sig = starts[new], weight[new], sig[new]
-    nonzero = np.flatnonzero(weight > 0)
-    if len(nonzero) == 0:
-        return _EMPTY_EDGES, _EMPTY_W, None
-    first, last = nonzero[0], nonzero[-1]
-    stop = starts[last + 1] if last + 1 < len(starts) else end
-    edges = np.append(starts[first : last + 1], stop)
+    first = int(np.argmax(positive))
+    last = len(positive) - 1 - int(np.argmax(positive[::-1]))
+    del positive
+    out = np.empty(last - first + 2, dtype=np.int64)
+    out[:-1] = starts[first : last + 1]
+    out[-1] = starts[last + 1] if last + 1 < len(starts) else edges[-1]
     weight = weight[first : last + 1]
-    sig = sig[first : last + 1]
-    return edges, weight, (sig if np.any(sig) else None)
+    sigma = None if sigma is None else sigma[first : last + 1]
+    if sigma is not None and not np.any(sigma):
+        sigma = None
+    return out, weight, sigma
 
 
 def _from_disjoint(starts, ends, weight, sigma, order):
     """Step function from disjoint intervals (any order), weight 0 in the gaps."""
+    return _from_interval_list([starts, ends, weight, sigma])
+
+
+def _from_interval_list(buffers):
+    """`_from_disjoint` taking [starts, ends, weight, sigma] in a list it empties.
+
+    A caller that hands over its only references lets each input be freed as soon as it has
+    been copied into the segments (the peak memory of building 10^7-segment footprints).
+    """
+    starts, ends, weight, sigma = buffers
+    buffers.clear()
     if len(starts) == 0:
         return _EMPTY_EDGES, _EMPTY_W, None
     weight = np.asarray(weight, dtype=np.float32)
@@ -168,15 +204,28 @@ def _from_disjoint(starts, ends, weight, sigma, order):
         idx = np.argsort(starts, kind="stable")
         starts, ends, weight = starts[idx], ends[idx], weight[idx]
         sigma = None if sigma is None else sigma[idx]
-    n = len(starts)
-    edges = np.empty(2 * n, dtype=np.int64)
-    edges[0::2], edges[1::2] = starts, ends
-    w = np.zeros(2 * n - 1, dtype=np.float32)
-    w[0::2] = weight
+        del idx
+    # Segments: each interval, plus a zero-weight one wherever the next interval does not
+    # start where this one ends.
+    gap = ends[:-1] < starts[1:]
+    position = np.arange(len(starts), dtype=np.int64)
+    position[1:] += np.cumsum(gap)
+    n_segments = len(starts) + int(position[-1] - (len(starts) - 1))
+    edges = np.empty(n_segments + 1, dtype=np.int64)
+    edges[position] = starts
+    del starts
+    edges[position[:-1][gap] + 1] = ends[:-1][gap]
+    edges[-1] = ends[-1]
+    del ends, gap
+    w = np.zeros(n_segments, dtype=np.float32)
+    w[position] = weight
+    del weight
     s = None
     if sigma is not None:
-        s = np.zeros(2 * n - 1, dtype=np.float32)
-        s[0::2] = sigma
+        s = np.zeros(n_segments, dtype=np.float32)
+        s[position] = sigma
+        del sigma
+    del position
     return _canonical(edges, w, s)
 
 
@@ -234,6 +283,23 @@ def _lookup(edges, weight, sigma, cells):
     """Weight and sigma of the segments holding `cells` (0 outside)."""
     idx = _segment_index(edges, cells)
     return _take(weight, idx), (None if sigma is None else _take(sigma, idx))
+
+
+def _operand(edges, weight, sigma, starts, flag_boundary):
+    """Weight, sigma and (optionally) boundary flag of one operand at sorted `starts`.
+
+    A boundary cell is partly covered, or was measured before (sigma > 0) even if it came
+    out 0 or 1.
+    """
+    idx = np.searchsorted(edges, starts, side="right") - 1  # sorted queries: fast
+    w = _take(weight, idx)
+    sig = None if sigma is None else _take(sigma, idx)
+    on = None
+    if flag_boundary:
+        on = (w > 0) & (w < 1)
+        if sig is not None:
+            on |= sig > 0
+    return w, sig, on
 
 
 def _take(values, idx):
@@ -374,44 +440,59 @@ class Footprint:
     def _from_shape(cls, shape, max_order):
         max_order = _check_order("max_order", max_order)
         raster = geo.rasterise(shape, max_order)
-        full_s, full_e = _merge_intervals(raster.starts, raster.ends)
+        # Unpack and drop the raster so that each array can be freed once consumed.
+        starts, ends = raster.starts, raster.ends
         cells, frac, sigma = raster.cells, raster.fraction, raster.sigma
+        del raster
+        full_s, full_e = _merge_intervals(starts, ends)
+        del starts, ends
         if len(cells):
             # Cells on the boundary of several parts (overlapping holes): their fractions
             # cannot be combined without knowing where each lies in the cell, so measure the
             # union there with the shape's exact point test.
             idx = np.argsort(cells, kind="stable")
             cells, frac, sigma = cells[idx], frac[idx], sigma[idx]
+            del idx
             new = np.empty(len(cells), dtype=bool)
             new[0] = True
             new[1:] = cells[1:] != cells[:-1]
-            starts_at = np.flatnonzero(new)
-            shared = np.diff(np.append(starts_at, len(cells))) > 1
-            cells, frac, sigma = cells[new], frac[new], sigma[new]
+            shared = np.diff(np.append(np.flatnonzero(new), len(cells))) > 1
+            if not new.all():
+                cells, frac, sigma = cells[new], frac[new], sigma[new]
+            del new
             if np.any(shared):
                 frac[shared], sigma[shared] = geo.point_test_fraction(
                     shape, cells[shared], max_order
                 )
+            del shared
             # Fractional cells inside a whole interval of another part are whole.
-            pos = np.searchsorted(full_s, cells, side="right") - 1
-            inside = (pos >= 0) & (cells < full_e[np.clip(pos, 0, None)]) if len(full_s) else (
-                np.zeros(len(cells), dtype=bool)
-            )
-            cells, frac, sigma = cells[~inside], frac[~inside], sigma[~inside]
+            if len(full_s):
+                pos = np.searchsorted(full_s, cells, side="right") - 1
+                outside = (pos < 0) | (cells >= full_e[np.clip(pos, 0, None)])
+                del pos
+                if not outside.all():
+                    cells, frac, sigma = cells[outside], frac[outside], sigma[outside]
+                del outside
         # Both lists are sorted: interleave them by a merge rather than a sort.
         at_full, at_cell = _merge_sorted(full_s, cells)
         n = len(full_s) + len(cells)
         starts = np.empty(n, dtype=np.int64)
+        starts[at_full], starts[at_cell] = full_s, cells
+        del full_s
         ends = np.empty(n, dtype=np.int64)
+        ends[at_full], ends[at_cell] = full_e, cells + 1
+        del full_e, cells
         weight = np.ones(n, dtype=np.float32)
-        starts[at_full], ends[at_full] = full_s, full_e
-        starts[at_cell], ends[at_cell], weight[at_cell] = cells, cells + 1, frac
+        weight[at_cell] = frac
+        del frac
         sig = None
         if np.any(sigma):
             sig = np.zeros(n, dtype=np.float32)
             sig[at_cell] = sigma
-        del full_s, full_e, cells, frac, sigma, raster, at_full, at_cell
-        parts = _from_disjoint(starts, ends, weight, sig, max_order)
+        del sigma, at_full, at_cell
+        buffers = [starts, ends, weight, sig]
+        del starts, ends, weight, sig
+        parts = _from_interval_list(buffers)
         return cls._make(max_order, parts, _Exact("leaf", shape))
 
     @classmethod
@@ -785,43 +866,41 @@ class Footprint:
         if len(ea) == 0 and len(eb) == 0:
             return Footprint.empty(order)
         edges = _sorted_union(ea, eb)
-        starts = edges[:-1]
-        # Sorted queries: plain searchsorted is fast here.
-        ia = np.searchsorted(ea, starts, side="right") - 1
-        ib = np.searchsorted(eb, starts, side="right") - 1
-        a, b = _take(wa, ia), _take(wb, ib)
+        both_exact = self._exact is not None and other._exact is not None
+        # Each operand's weight, sigma and boundary flag on the merged segments; the index
+        # arrays are dropped as soon as they are used (this sets the peak memory).
+        a, sig_a, on_a = _operand(ea, wa, sa, edges[:-1], both_exact)
+        b, sig_b, on_b = _operand(eb, wb, sb, edges[:-1], both_exact)
         if op == "|":
             weight = a + b - a * b
         elif op == "&":
             weight = a * b
         else:
             weight = a * (1 - b)
-        sigma = None
-        if sa is not None or sb is not None:
-            # First-order propagation of each operand's boundary uncertainty.
-            sig_a = _take(sa, ia) if sa is not None else np.zeros_like(a)
-            sig_b = _take(sb, ib) if sb is not None else np.zeros_like(b)
-            if op == "|":
-                var = ((1 - b) * sig_a) ** 2 + ((1 - a) * sig_b) ** 2
-            elif op == "&":
-                var = (b * sig_a) ** 2 + (a * sig_b) ** 2
-            else:
-                var = ((1 - b) * sig_a) ** 2 + (a * sig_b) ** 2
-            sigma = np.sqrt(var)
-        exact = _Exact(op, self._point_test(), other._point_test())
         np.clip(weight, 0, 1, out=weight)
-        if self._exact is not None and other._exact is not None:
+        sigma = None
+        if sig_a is not None or sig_b is not None:
+            # First-order propagation of each operand's boundary uncertainty:
+            # d(weight)/da and d(weight)/db times each operand's sigma, in quadrature.
+            if op == "|":
+                da, db = 1 - b, 1 - a
+            elif op == "&":
+                da, db = b, a
+            else:
+                da, db = 1 - b, a
+            terms = [d * s for d, s in ((da, sig_a), (db, sig_b)) if s is not None]
+            del da, db
+            sigma = terms[0] if len(terms) == 1 else np.hypot(*terms)
+            np.abs(sigma, out=sigma)
+            del terms
+        del a, b, sig_a, sig_b
+        exact = _Exact(op, self._point_test(), other._point_test())
+        if both_exact:
             # Where both boundaries pass through a cell, treating the two fractions as
             # independent would be wrong (A - B and B share an edge exactly): measure the
-            # combination with the exact point tests of both shapes instead. A boundary cell
-            # is partly covered, or was measured before (sigma > 0) even if it came out 0 or 1.
-            on_a = (a > 0) & (a < 1)
-            on_b = (b > 0) & (b < 1)
-            if sa is not None:
-                on_a |= _take(sa, ia) > 0
-            if sb is not None:
-                on_b |= _take(sb, ib) > 0
+            # combination with the exact point tests of both shapes instead.
             shared = on_a & on_b
+            del on_a, on_b
             if np.any(shared):
                 edges, weight, sigma = _remeasure(edges, weight, sigma, shared, order, exact)
         return Footprint._make(order, _canonical(edges, weight, sigma), exact)
