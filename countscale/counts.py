@@ -58,7 +58,7 @@ from dataclasses import dataclass
 from typing import ClassVar
 
 import numpy as np
-from scipy import optimize, special, stats
+from scipy import linalg, optimize, special, stats
 
 from countscale.completeness import NotFittedError
 from countscale.errors import InputError, InputTypeError
@@ -212,6 +212,39 @@ def _power_law_integral(log10_n_start, slope, width):
     return 10.0**log10_n_start * width * special.exprel(slope * _LN10 * width)
 
 
+#: Below this |z| the derivative of exprel is summed as a series (terms through z^6: the next
+#: one, z^7 / (7! 9), is < 2e-14 relative at the threshold), where the closed form would lose
+#: digits to cancellation (relative error ~ 2 eps / z^2 ~ 1e-13 at the threshold).
+_EXPREL_SERIES_BELOW = 0.05
+
+
+def _exprel(z):
+    """exprel(z) = (e^z - 1) / z; the series 1 + z/2 + z^2/6 + ... (through z^6: the next
+    term is < 2e-14 relative) when every |z| is below the threshold, else scipy's."""
+    z = np.asarray(z, dtype=float)
+    if z.size and np.abs(z).max() < _EXPREL_SERIES_BELOW:
+        return 1.0 + z * (1.0 / 2.0 + z * (1.0 / 6.0 + z * (1.0 / 24.0 + z * (
+            1.0 / 120.0 + z * (1.0 / 720.0 + z / 5040.0)))))
+    return special.exprel(z)
+
+
+def _exprel_derivative(z):
+    """d exprel / dz = int_0^1 v e^(z v) dv = (e^z (z - 1) + 1) / z^2, elementwise.
+
+    The series is sum_n z^n / (n! (n + 2)) (integrate the exponential series term by term).
+    """
+    z = np.asarray(z, dtype=float)
+    # Horner form of the series (the common case: cells of 0.01 mag give |z| ~ 0.01).
+    out = 0.5 + z * (1.0 / 3.0 + z * (1.0 / 8.0 + z * (1.0 / 30.0 + z * (
+        1.0 / 144.0 + z * (1.0 / 840.0 + z / 5760.0)))))
+    large = np.abs(z) >= _EXPREL_SERIES_BELOW
+    if large.any():
+        zl = z[large]
+        with np.errstate(over="ignore", invalid="ignore"):
+            out[large] = (np.exp(zl) * (zl - 1.0) + 1.0) / zl**2
+    return out
+
+
 # ============================================================================ count models
 @dataclass(frozen=True)
 class CountModel:
@@ -223,6 +256,18 @@ class CountModel:
 
     ``_log10_density(m)``
         log10 n on a float ndarray (required);
+    ``_log10_density_at(values, m)``
+        log10 n for a parameter vector ``values`` (:attr:`param_names` order) with this
+        model's fixed settings, without building or validating a model: the fit's inner loop
+        (default: through :meth:`with_params`);
+    ``_log10_density_gradient(values, m)``
+        ``(log10 n, d log10 n / d values)``, the gradient of shape (n_params, m.size) (default:
+        central differences of ``_log10_density_at``);
+    ``_log10_cell_density(values, lo, hi, gradient)``
+        log10 of the mean of n over cells [lo, hi] and, with ``gradient``, its gradient; what
+        :class:`ForwardModel` integrates (default: the value at the cell centre, the midpoint
+        rule; a model with a kink overrides it with the exact cell mean so the likelihood stays
+        smooth in the kink's position);
     ``_integral(lo, hi)``
         integral of n over [lo, hi] for 1-D arrays with lo <= hi (default: Gauss-Legendre);
     ``_cumulative_unbounded(m)``
@@ -396,6 +441,31 @@ class CountModel:
     def _log10_density(self, m):
         raise NotImplementedError
 
+    def _log10_density_at(self, values, m):
+        return self.with_params(values)._log10_density(m)
+
+    def _log10_density_gradient(self, values, m):
+        values = np.asarray(values, dtype=float)
+        log10_n = self._log10_density_at(values, m)
+        gradient = np.empty((values.size, np.size(m)))
+        for i in range(values.size):
+            # Step ~ cube root of the float epsilon times the scale: the central-difference
+            # optimum (truncation ~ h^2, rounding ~ eps / h).
+            step = 6e-6 * max(1.0, abs(values[i]))
+            up, down = values.copy(), values.copy()
+            up[i] += step
+            down[i] -= step
+            gradient[i] = (self._log10_density_at(up, m) - self._log10_density_at(down, m)) / (
+                2.0 * step
+            )
+        return log10_n, gradient
+
+    def _log10_cell_density(self, values, lo, hi, gradient=False):
+        mid = 0.5 * (lo + hi)
+        if gradient:
+            return self._log10_density_gradient(values, mid)
+        return self._log10_density_at(values, mid), None
+
     def _integral(self, lo, hi):
         """Composite 8-point Gauss-Legendre on panels of at most 0.1 mag."""
         out = np.empty(lo.size)
@@ -478,7 +548,15 @@ class PowerLaw(CountModel):
     _param_units: ClassVar[Mapping[str, str]] = {"log10_norm": "dex", "slope": "dex mag^-1"}
 
     def _log10_density(self, m):
-        return self.log10_norm + self.slope * (m - self.reference_mag)
+        return self._log10_density_at((self.log10_norm, self.slope), m)
+
+    def _log10_density_at(self, values, m):
+        log10_norm, slope = values
+        return log10_norm + slope * (m - self.reference_mag)
+
+    def _log10_density_gradient(self, values, m):
+        offset = m - self.reference_mag
+        return self._log10_density_at(values, m), np.stack([np.ones_like(offset), offset])
 
     def _integral(self, lo, hi):
         return _power_law_integral(self._log10_density(lo), self.slope, hi - lo)
@@ -504,12 +582,33 @@ class _TwoSlopeModel(CountModel):
         "m_break": "mag",
     }
 
-    def _shape(self, m):
-        """log10 n(m) - log10 n(m_break)."""
+    def _shape(self, slope_bright, slope_faint, m_break, m):
+        """log10 n(m) - log10 n(m_break) for the given shape parameters."""
+        raise NotImplementedError
+
+    def _shape_gradient(self, slope_bright, slope_faint, m_break, m):
+        """d shape / d (slope_bright, slope_faint, m_break), shape (3, m.size)."""
         raise NotImplementedError
 
     def _log10_density(self, m):
-        return self.log10_norm + self._shape(m) - self._shape(np.asarray(self.reference_mag))
+        return self._log10_density_at(self.params, m)
+
+    def _log10_density_at(self, values, m):
+        log10_norm, slope_bright, slope_faint, m_break = values
+        reference = np.asarray(self.reference_mag, dtype=float)
+        return (log10_norm + self._shape(slope_bright, slope_faint, m_break, m)
+                - self._shape(slope_bright, slope_faint, m_break, reference))
+
+    def _log10_density_gradient(self, values, m):
+        _, slope_bright, slope_faint, m_break = values
+        m = np.asarray(m, dtype=float)
+        reference = np.asarray([self.reference_mag], dtype=float)
+        shape = self._shape_gradient(slope_bright, slope_faint, m_break, m.reshape(-1))
+        at_reference = self._shape_gradient(slope_bright, slope_faint, m_break, reference)
+        gradient = np.empty((4, m.size))
+        gradient[0] = 1.0
+        gradient[1:] = shape - at_reference
+        return self._log10_density_at(values, m), gradient.reshape((4, *m.shape))
 
     def _initial_params(self, m, log10_n, m_lo, m_hi):
         m_break = 0.5 * (m_lo + m_hi)
@@ -567,9 +666,74 @@ class BrokenPowerLaw(_TwoSlopeModel):
         "m_break",
     )
 
-    def _shape(self, m):
-        delta = m - self.m_break
-        return np.where(delta < 0.0, self.slope_bright * delta, self.slope_faint * delta)
+    def _shape(self, slope_bright, slope_faint, m_break, m):
+        delta = m - m_break
+        return np.where(delta < 0.0, slope_bright * delta, slope_faint * delta)
+
+    def _shape_gradient(self, slope_bright, slope_faint, m_break, m):
+        delta = m - m_break
+        bright = delta < 0.0
+        return np.stack([np.where(bright, delta, 0.0), np.where(bright, 0.0, delta),
+                         np.where(bright, -slope_bright, -slope_faint)])
+
+    def _log10_cell_density(self, values, lo, hi, gradient=False):
+        """Exact mean of n over each cell (closed form on each side of the break).
+
+        With the midpoint rule the likelihood would have a kink in m_break at every cell
+        centre (the break crossing a node changes which slope the node follows); the exact
+        cell mean is continuously differentiable in m_break, so the fit's Newton steps and
+        the covariance's finite differences see a smooth function.
+        """
+        log10_norm, slope_bright, slope_faint, m_break = values
+        reference = self.reference_mag
+        reference_bright = reference < m_break
+        slope_at_reference = slope_bright if reference_bright else slope_faint
+        offset_bright = (reference - m_break) if reference_bright else 0.0
+        offset_faint = 0.0 if reference_bright else (reference - m_break)
+        width = hi - lo
+        start = lo - m_break
+        bright = hi <= m_break  # wholly brighter than the break (cells at or past it: faint)
+        slope = np.where(bright, slope_bright, slope_faint)
+        # y(lo) = log10 n at the cell's bright edge; on a cell wholly on one side the mean is
+        # n(lo) exprel(k w) with k = slope ln 10 (integrate the exponential).
+        log10_start = log10_norm + slope * start - slope_at_reference * (reference - m_break)
+        z = slope * _LN10 * width
+        j0 = _exprel(z)
+        log10_mean = log10_start + np.log10(j0)
+        straddle = np.flatnonzero((lo < m_break) & ~bright)  # the break inside: 0 or 1 cells
+        if straddle.size:
+            # Split at the break: a bright piece [lo, m_break] and a faint one [m_break, hi].
+            w, u_bright = width[straddle], m_break - lo[straddle]
+            u_faint = w - u_bright
+            rise = 10.0 ** (slope_bright * u_bright)  # n(m_break) / n(lo): continuity
+            j0_bright = u_bright * special.exprel(slope_bright * _LN10 * u_bright)
+            j0_faint = rise * u_faint * special.exprel(slope_faint * _LN10 * u_faint)
+            y_lo = log10_norm + slope_bright * start[straddle] - slope_at_reference * (
+                reference - m_break)
+            log10_mean[straddle] = y_lo + np.log10((j0_bright + j0_faint) / w)
+        if not gradient:
+            return log10_mean, None
+        # d log10(mean) / d theta = int (d y / d theta) n / int n, with y = log10 n linear on
+        # each side: d y / d theta = alpha + beta (m - lo), beta = 1 for the side's own slope;
+        # int (m - lo) n / int n = w exprel'(z) / exprel(z) on a one-sided cell.
+        lever = width * _exprel_derivative(z) / j0
+        grad = np.empty((4, lo.size))
+        grad[0] = 1.0
+        grad[1] = np.where(bright, start - offset_bright + lever, -offset_bright)
+        grad[2] = np.where(bright, -offset_faint, start - offset_faint + lever)
+        grad[3] = slope_at_reference - slope
+        if straddle.size:
+            j1_bright = u_bright**2 * _exprel_derivative(slope_bright * _LN10 * u_bright)
+            j1_faint = rise * u_faint**2 * _exprel_derivative(slope_faint * _LN10 * u_faint)
+            total = j0_bright + j0_faint
+            s = start[straddle]
+            grad[1, straddle] = ((s - offset_bright) * j0_bright + j1_bright
+                                 - offset_bright * j0_faint) / total
+            grad[2, straddle] = (-offset_faint * j0_faint + j1_faint
+                                 - offset_faint * j0_bright) / total
+            grad[3, straddle] = (slope_at_reference
+                                 - (slope_bright * j0_bright + slope_faint * j0_faint) / total)
+        return log10_mean, grad
 
     def _integral(self, lo, hi):
         # Closed form on each side of the break (power-law integrals).
@@ -641,12 +805,21 @@ class DoublePowerLaw(_TwoSlopeModel):
         if self.transition_mag <= 0.0:
             raise InputError(f"`transition_mag` must be > 0; got {self.transition_mag}")
 
-    def _shape(self, m):
-        x = m - self.m_break
+    def _shape(self, slope_bright, slope_faint, m_break, m):
+        x = m - m_break
         t = self.transition_mag
         # log10(1 + 10^u) = logaddexp(0, u ln10) / ln10, stable for any u.
         softplus = np.logaddexp(0.0, x / t * _LN10) / _LN10
-        return self.slope_bright * x + (self.slope_faint - self.slope_bright) * t * softplus
+        return slope_bright * x + (slope_faint - slope_bright) * t * softplus
+
+    def _shape_gradient(self, slope_bright, slope_faint, m_break, m):
+        x = m - m_break
+        t = self.transition_mag
+        softplus = np.logaddexp(0.0, x / t * _LN10) / _LN10
+        # d softplus(u) / du = 10^u / (1 + 10^u) = expit(u ln 10).
+        step = special.expit(x / t * _LN10)
+        return np.stack([x - t * softplus, t * softplus,
+                         -slope_bright - (slope_faint - slope_bright) * step])
 
     def _cumulative_unbounded(self, m):
         if not self.slope_bright > 0.0:
@@ -696,18 +869,24 @@ def poisson_interval(n_observed, level=0.68):
     return lo, hi
 
 
-def _poisson_loglike(mu, counts):
-    """Full Poisson log-likelihood sum(N ln mu - mu - ln N!)."""
-    with np.errstate(divide="ignore"):
-        terms = special.xlogy(counts, mu) - mu - special.gammaln(counts + 1.0)
-    return float(np.sum(terms))
-
-
 def _deviance(mu, counts):
     """Poisson deviance 2 sum[N ln(N / mu) - (N - mu)] (McCullagh & Nelder 1989, sec. 2.3)."""
+    return 2.0 * _half_deviance(mu, counts)
+
+
+def _half_deviance(mu, counts, positive=None):
+    """Half the Poisson deviance, sum[N ln(N / mu) - (N - mu)], to full relative precision.
+
+    Written as ``N (q - ln(1 + q))`` with ``q = mu / N - 1`` (and ``mu`` where N = 0): near the
+    optimum each term is ~q^2 N / 2 and is computed without the cancellation of terms ~N ln N
+    in the direct form (whose rounding, ~1e-10 for 10^5 sources per bin, stalls an optimiser).
+    """
+    if positive is None:
+        positive = counts > 0
     with np.errstate(divide="ignore", invalid="ignore"):
-        terms = special.xlogy(counts, counts) - special.xlogy(counts, mu) - (counts - mu)
-    return float(2.0 * np.sum(terms))
+        n, m = counts[positive], mu[positive]
+        q = (m - n) / n
+        return float(np.sum(n * (q - np.log1p(q)))) + float(np.sum(mu[~positive]))
 
 
 def jackknife_covariance(delete_one_values):
@@ -886,12 +1065,15 @@ class ForwardModel:
 
     the intrinsic counts times the effective area, convolved with the scatter and integrated
     over the bin (the Eddington 1913, MNRAS 73, 359 problem, forward-modelled). It is evaluated
-    as ``mu = (K * A_eff) @ n`` on cells of at most ``grid_step_mag``, taking n and A_eff at
-    the cell centre and integrating the Gaussian bin probability over each cell exactly:
+    as ``mu = (K * A_eff) @ n`` on cells of at most ``grid_step_mag``, taking A_eff at the
+    cell centre, n as its mean over the cell (the centre value for smooth models; the exact
+    cell mean for :class:`BrokenPowerLaw`, whose kink would otherwise make mu jump in slope
+    whenever the break crosses a cell centre), and integrating the Gaussian bin probability
+    over each cell exactly:
     ``int_a^b [Phi((e - m)/s)] dm = s [G((e - a)/s) - G((e - b)/s)]`` with
     ``G(x) = x Phi(x) + phi(x)``. Without scatter K is the overlap of cell and bin. Cells tile
-    each bin exactly, so the only approximation is the midpoint rule for n A_eff (relative
-    error ~ (step slope ln10)^2 / 24 ~ 1e-5 at the defaults).
+    each bin exactly, so the only approximation is the midpoint rule for A_eff and (smooth
+    models) n (relative error ~ (step slope ln10)^2 / 24 ~ 1e-5 at the defaults).
 
     Sources scatter into the bins from outside them, so the true-magnitude grid extends beyond
     the outer bin edges: on each side up to where a source is more than ``scatter_reach`` sigma
@@ -978,6 +1160,8 @@ class ForwardModel:
         self.scatter_reach = reach
         self.kernel = _read_only(self._kernel(edges, cell_lo, cell_hi, sigma))
         self._response = _read_only(self.kernel * area_grid[None, :])
+        self._cell_lo = _read_only(cell_lo)
+        self._cell_hi = _read_only(cell_hi)
         self._bin_of_cell = np.searchsorted(edges, mid, side="right") - 1
 
     # -------------------------------------------------------------- construction helpers
@@ -1076,6 +1260,11 @@ class ForwardModel:
     def _response_for(self, area_grid):
         return self.kernel * area_grid[None, :]
 
+    def _cell_density(self, model):
+        """Mean intrinsic n over each true-magnitude cell (deg^-2 mag^-1), shape (n_grid,)."""
+        log10_n, _ = model._log10_cell_density(model.params, self._cell_lo, self._cell_hi)
+        return 10.0**log10_n
+
     def expected_counts(self, model):
         """Expected observed counts per bin, mu_i.
 
@@ -1090,7 +1279,7 @@ class ForwardModel:
         """
         if not isinstance(model, CountModel):
             raise InputTypeError(f"`model` must be a CountModel; got {type(model).__name__}")
-        return self._response @ (10.0 ** model._log10_density(self.grid_mag))
+        return self._response @ self._cell_density(model)
 
     def intrinsic_counts_per_deg2(self, model):
         """Integral of the intrinsic n(m) over each bin (true magnitudes), per deg^2."""
@@ -1203,67 +1392,322 @@ def _numerical_gradient(function, theta, steps):
     return gradient
 
 
-class _Likelihood:
-    """Poisson likelihood of binned counts under ``response @ n(grid; theta)``.
+#: Newton iterations allowed per fit before it reports non-convergence.
+_NEWTON_MAX_ITERATIONS = 100
+#: Convergence: the Newton decrement g^T F^-1 g (F the Fisher information) below this. It is
+#: the squared distance to the optimum in units of the statistical errors, so 1e-10 puts the
+#: parameters within ~1e-5 sigma of the maximum and ln L within ~5e-11 of it.
+_NEWTON_TOLERANCE = 1e-10
+#: When no step along the Newton direction lowers -ln L any more (float rounding of -ln L is
+#: ~1e-13 with the half-deviance form), a decrement below this is accepted (~1e-3 sigma).
+_NEWTON_NOISE_TOLERANCE = 1e-6
+#: Below this Fisher decrement (within ~1 sigma of the optimum) the steps use the observed
+#: information (the Hessian of -ln L from forward differences of the analytic gradient) when it
+#: is positive definite. The Fisher information leaves out sum (mu - N) d^2 mu, which is not
+#: small for a weakly constrained break (a sharp break moves mu by ~n(m_break) times the slope
+#: change); Fisher steps alone then overshoot and converge only linearly.
+_OBSERVED_BELOW = 1.0
+#: Forward-difference step for the observed information, in units of each parameter's Fisher
+#: sigma: far above the gradient's rounding, far below the scale on which the Hessian varies.
+_OBSERVED_STEP_SIGMA = 1e-3
+#: Refits of perturbed data (jackknife, bootstrap) start from each local maximum of the full
+#: fit within this much ln L of the best, at most this many. Rough scale: perturbing the data
+#: moves the ln L difference dlnL of two maxima by ~sqrt(2 dlnL) for a Poisson redraw and
+#: ~sqrt(2 dlnL / K) for leaving out one of K regions, so maxima 5 below the best are rarely
+#: promoted by a redraw and practically never by a delete-one sample (judgement call).
+_REFIT_START_DELTA_LOGLIKE = 5.0
+_REFIT_MAX_STARTS = 4
+#: Armijo sufficient-decrease constant and number of step halvings in the line search
+#: (Nocedal & Wright 2006, Numerical Optimization, 2nd ed., sec. 3.1; from memory).
+_ARMIJO = 1e-4
+_MAX_HALVINGS = 30
+#: A search is abandoned as stalled when, for ``_STALL_ITERATIONS`` steps in a row, -ln L fell
+#: by less than ``_STALL_RATIO`` of the decrease its quadratic model promised (half the Newton
+#: decrement; a healthy Newton step realises most of it) or by less than ``_STALL_DROP``,
+#: without converging: the search is creeping along a flat, degenerate valley (e.g. a break
+#: within a bin of the range's end, where one slope and the break trade off). A healthy search
+#: takes at most a step or two that small before converging (near the end the decrement
+#: falls tenfold per step, or the curvature is recomputed). A fit from the data then relies on
+#: its other starts; a refit from the full fit's maxima on the others or on the search.
+_STALL_RATIO = 1e-3
+_STALL_DROP = 1e-9
+_STALL_ITERATIONS = 5
 
-    The normalisation enters mu linearly, so for fixed shape parameters its maximum-likelihood
-    value is closed-form (sum mu = sum N); the optimiser works on the shape parameters only.
-    Location parameters (m_break) are mapped into the fit range with a logistic.
+
+def _newton_step(gradient, fisher):
+    """Newton step -F^-1 g and decrement g^T F^-1 g, damping F when it is not positive."""
+    size = gradient.size
+    scale = float(np.max(np.abs(np.diag(fisher)))) if size else 0.0
+    if not (scale > 0.0 and math.isfinite(scale)):
+        return None, math.inf
+    damping = 0.0
+    for _ in range(12):
+        step = _solve_positive(fisher + damping * scale * np.eye(size), -gradient)
+        if step is not None:
+            return step, float(-gradient @ step)
+        # Levenberg damping towards steepest descent (Nocedal & Wright 2006, sec. 10.3).
+        damping = 1e-12 if damping == 0.0 else 100.0 * damping
+    return None, math.inf
+
+
+def _bfgs_update(hessian, step, change):
+    """BFGS update of a Hessian approximation from a step and the gradient's change.
+
+    Keeps the matrix positive definite when ``step . change > 0`` and leaves it alone
+    otherwise (Nocedal & Wright 2006, Numerical Optimization, 2nd ed., eq. 6.19; from memory).
+    """
+    curvature = float(step @ change)
+    pushed = hessian @ step
+    along = float(step @ pushed)
+    if not (curvature > 0.0 and along > 0.0):
+        return hessian
+    return hessian + np.outer(change, change) / curvature - np.outer(pushed, pushed) / along
+
+
+def _solve_positive(matrix, vector):
+    """``matrix^-1 vector`` for a well-conditioned positive-definite matrix, else None."""
+    try:
+        factor = linalg.cho_factor(matrix)
+    except linalg.LinAlgError:
+        return None
+    # Reciprocal condition number from the Cholesky diagonal: below ~1e-14 the solution
+    # carries no correct digits (double precision).
+    diagonal = np.abs(np.diag(factor[0]))
+    if not (np.all(np.isfinite(factor[0])) and diagonal.min() > 1e-7 * diagonal.max()):
+        return None
+    return linalg.cho_solve(factor, vector)
+
+
+class _Likelihood:
+    """Poisson likelihood of binned counts under ``mu = response @ n(cells; theta)``.
+
+    Works on parameter vectors (:attr:`names` order) through the model's
+    ``_log10_cell_density`` hook, so no model object is built or validated in the optimiser's
+    loop. The normalisation enters mu linearly, so for free shape parameters its
+    maximum-likelihood value is closed-form (sum mu = sum N, "profiled"); the other parameters
+    are found by Newton's method on the half deviance with analytic gradients: the Fisher
+    information as curvature far from the optimum, the observed information (then BFGS-
+    updated) near it, and a backtracking line search. Location parameters (m_break) are kept
+    inside ``location_range``; ``fit_range`` holds the outer edges of the fitted bins.
     """
 
-    def __init__(self, template, grid_mag, response, counts, location_range):
+    def __init__(self, template, cell_lo, cell_hi, response, counts, fit_range,
+                 location_range):
+        # Cells that cannot reach a fitted bin do not change mu: drop them once.
+        reach = np.any(response > 0.0, axis=0)
         self.template = template
-        self.grid_mag = grid_mag
-        self.response = response
-        self.counts = counts.astype(float)
-        self.total = float(self.counts.sum())
         self.names = template.param_names
+        self.cell_lo = cell_lo[reach]
+        self.cell_hi = cell_hi[reach]
+        self.response = np.ascontiguousarray(response[:, reach])
+        self.fit_range = fit_range
         self.location_range = location_range
+        self._norm = self.names.index("log10_norm") if "log10_norm" in self.names else None
+        self._lower = np.array([location_range[0] if n in template._location_params else -np.inf
+                                for n in self.names])
+        self._upper = np.array([location_range[1] if n in template._location_params else np.inf
+                                for n in self.names])
+        self._set_counts(counts)
 
-    # full parameter vector -> log-likelihood
+    def _set_counts(self, counts):
+        self.counts = np.asarray(counts, dtype=float)
+        self.total = float(self.counts.sum())
+        self._positive = self.counts > 0
+        self._all_positive = bool(self._positive.all())
+        #: ln L of the saturated model (mu = N): ln L = saturated - half deviance.
+        self.saturated = float(np.sum(special.xlogy(self.counts, self.counts) - self.counts
+                                      - special.gammaln(self.counts + 1.0)))
+
+    def with_counts(self, counts):
+        """The same likelihood for other counts in the same bins (a bootstrap redraw)."""
+        other = object.__new__(_Likelihood)
+        other.__dict__.update(self.__dict__)
+        other._set_counts(counts)
+        return other
+
+    # -------------------------------------------------------------- evaluation
+    def _evaluate(self, theta, free, profile, gradient):
+        """Half deviance (and its gradient and Fisher information over ``free``) at ``theta``.
+
+        Returns ``(f, g, F, theta_full)``; with ``profile`` the normalisation in ``theta`` is
+        ignored and ``theta_full`` carries its closed-form best value. ``f`` is inf where mu is
+        not finite or vanishes in a bin with sources.
+        """
+        work = np.array(theta, dtype=float)
+        if profile:
+            work[self._norm] = 0.0
+        failed = (math.inf, None, None, work)
+        with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+            log10_n, log10_gradient = self.template._log10_cell_density(
+                work, self.cell_lo, self.cell_hi, gradient
+            )
+            # The maximum is NaN or +inf if any value is (np.max propagates NaN); -inf is a
+            # zero density, which is allowed.
+            shift = float(np.max(log10_n))
+            if not math.isfinite(shift):
+                return failed
+            density = np.exp((log10_n - shift) * _LN10)
+            shape = self.response @ density
+            if profile:
+                total_shape = float(np.sum(shape))
+                if not (total_shape > 0.0 and math.isfinite(total_shape)):
+                    return failed
+                scale = self.total / total_shape
+                work[self._norm] = math.log10(scale) - shift if scale > 0.0 else -math.inf
+            else:
+                scale = 10.0**shift
+            mu = shape * scale
+            if not math.isfinite(float(mu.sum())):
+                return failed
+            if self._all_positive:
+                # The common case: no empty bin, so no masks (this loop is the fit's hot path).
+                if mu.min() <= 0.0:
+                    return failed
+                q = mu / self.counts - 1.0
+                f = float(self.counts @ (q - np.log1p(q)))
+            else:
+                if np.any(mu[self._positive] <= 0.0):
+                    return failed
+                f = _half_deviance(mu, self.counts, self._positive)
+            if not gradient or not math.isfinite(f):
+                return f, None, None, work
+            # d mu_i / d theta_k = ln10 [response @ (n d log10 n / d theta_k)]_i; with a = d ln
+            # mu / d theta: gradient sum (mu - N) a, Fisher information sum mu a a^T (for the
+            # profiled case the multinomial one, with a centred by d ln sum(shape)).
+            d_shape = (log10_gradient[free] * density) @ self.response.T
+            d_shape = d_shape.T * _LN10
+            if shape.min() > 0.0:
+                a = d_shape / shape[:, None]
+            else:
+                live = shape > 0.0
+                a = np.where(live[:, None], d_shape / np.where(live, shape, 1.0)[:, None], 0.0)
+            if profile:
+                a = a - d_shape.sum(axis=0) / total_shape
+            g = (mu - self.counts) @ a
+            fisher = (a * mu[:, None]).T @ a
+        if not math.isfinite(float(fisher.sum()) + float(g.sum())):
+            return failed
+        return f, g, fisher, work
+
+    def _observed_information(self, theta, free, profile, gradient, fisher):
+        """Hessian of the half deviance over ``free``: forward differences of the gradient.
+
+        Forward differences (relative error ~ the step, 1e-3 sigma) are ample for a Newton
+        matrix and cost one gradient per parameter.
+        """
+        steps = _OBSERVED_STEP_SIGMA / np.sqrt(np.diag(fisher))
+        hessian = np.empty((free.size, free.size))
+        for k in range(free.size):
+            up = theta.copy()
+            up[free[k]] += steps[k]
+            g_up = self._evaluate(up, free, profile, True)[1]
+            if g_up is None:
+                return None
+            hessian[:, k] = (g_up - gradient) / steps[k]
+        return 0.5 * (hessian + hessian.T)
+
+    def half_deviance(self, theta):
+        """Half the deviance at a full parameter vector (normalisation included)."""
+        return self._evaluate(theta, np.empty(0, dtype=int), False, False)[0]
+
     def loglike(self, theta):
-        model = self.template.with_params(theta)
-        # Trial parameters far from the optimum may overflow; they get -inf, not a warning.
-        with np.errstate(over="ignore", invalid="ignore"):
-            mu = self.response @ (10.0 ** model._log10_density(self.grid_mag))
-        if np.any((mu <= 0.0) & (self.counts > 0)) or not np.all(np.isfinite(mu)):
-            return -np.inf
-        return _poisson_loglike(mu, self.counts)
+        """Poisson ln L (including -ln N!) at a full parameter vector; -inf where undefined."""
+        f = self.half_deviance(theta)
+        return self.saturated - f if math.isfinite(f) else -math.inf
 
-    def expected(self, theta):
-        model = self.template.with_params(theta)
-        return self.response @ (10.0 ** model._log10_density(self.grid_mag))
+    def deviance(self, theta):
+        return 2.0 * self.half_deviance(theta)
 
-    def _internal_to_value(self, name, u):
-        if name in self.template._location_params:
-            lo, hi = self.location_range
-            return lo + (hi - lo) * special.expit(u)
-        return u
+    # -------------------------------------------------------------- optimisation
+    def _newton(self, theta, free, profile):
+        """Minimise the half deviance over ``free`` from ``theta``.
 
-    def _value_to_internal(self, name, value):
-        if name in self.template._location_params:
-            lo, hi = self.location_range
-            fraction = min(max((value - lo) / (hi - lo), 1e-6), 1.0 - 1e-6)
-            return math.log(fraction / (1.0 - fraction))
-        return value
-
-    def _profiled(self, values):
-        """Best log10_norm and log-likelihood for the given shape values (norm free)."""
-        trial = dict(values)
-        trial["log10_norm"] = 0.0
-        model = self.template.with_params(trial)
-        log10_n = model._log10_density(self.grid_mag)
-        shift = float(np.max(log10_n))
-        with np.errstate(over="ignore", invalid="ignore", under="ignore"):
-            shape = self.response @ (10.0 ** (log10_n - shift))
-            total_shape = float(shape.sum())
-        if not (total_shape > 0.0 and math.isfinite(total_shape)):
-            return math.nan, -np.inf
-        mu = shape * (self.total / total_shape)
-        if np.any((mu <= 0.0) & (self.counts > 0)):
-            return math.nan, -np.inf
-        log10_norm = math.log10(self.total / total_shape) - shift
-        return log10_norm, _poisson_loglike(mu, self.counts)
+        Returns ``(theta_full, f, problem)`` with ``problem`` None on convergence, else a
+        reason.
+        """
+        theta = np.array(theta, dtype=float)
+        lower, upper = self._lower[free], self._upper[free]
+        theta[free] = np.clip(theta[free], lower, upper)
+        f, g, fisher, full = self._evaluate(theta, free, profile, True)
+        if not math.isfinite(f):
+            return full, f, "no finite likelihood at the starting parameters"
+        if free.size == 0:
+            return full, f, None
+        observed = None  # observed information, computed near the optimum and then reused
+        previous = math.inf  # the last decrement
+        creeping = 0  # consecutive steps that lowered -ln L too little (see _STALL_RATIO)
+        for _ in range(_NEWTON_MAX_ITERATIONS):
+            x = theta[free]
+            # Parameters on a bound that the gradient pushes outwards stay there this step.
+            move = ~(((x <= lower) & (g > 0.0)) | ((x >= upper) & (g < 0.0)))
+            while True:
+                if not move.any():
+                    return full, f, None
+                curvature = fisher[np.ix_(move, move)]
+                step_move, decrement = _newton_step(g[move], curvature)
+                if step_move is None:
+                    return full, f, "the Fisher information is not finite and positive"
+                fresh = observed is None and decrement < _OBSERVED_BELOW
+                if fresh:
+                    observed = self._observed_information(theta, free, profile, g, fisher)
+                if observed is not None:
+                    # Reused while the search ends (the curvature barely changes over the
+                    # last ~1 sigma), so convergence stays fast without recomputing it; but
+                    # recomputed here if the last step cut the decrement by less than 10 (the
+                    # iterate has moved to where the old curvature no longer fits).
+                    observed_step = _solve_positive(observed[np.ix_(move, move)], -g[move])
+                    if not fresh and observed_step is not None and (
+                        float(-g[move] @ observed_step) > 0.1 * previous
+                    ):
+                        observed = self._observed_information(theta, free, profile, g, fisher)
+                        observed_step = (None if observed is None else _solve_positive(
+                            observed[np.ix_(move, move)], -g[move]))
+                    if observed_step is None:
+                        observed = None  # not a local bowl (yet): Fisher steps for now
+                    else:
+                        step_move = observed_step
+                        decrement = float(-g[move] @ step_move)
+                step = np.zeros(x.size)
+                step[move] = step_move
+                outward = ((x <= lower) & (step < 0.0)) | ((x >= upper) & (step > 0.0))
+                if not outward.any():
+                    break
+                move &= ~outward
+            if decrement <= _NEWTON_TOLERANCE:
+                return full, f, None
+            if creeping >= _STALL_ITERATIONS:
+                return full, f, (f"stalled: {_STALL_ITERATIONS} steps in a row lowered -ln L by "
+                                 f"under {_STALL_RATIO:g} of the predicted decrease (Newton "
+                                 f"decrement {decrement:.3g})")
+            previous = decrement
+            with np.errstate(divide="ignore", invalid="ignore"):
+                room = np.where(step > 0.0, (upper - x) / step,
+                                np.where(step < 0.0, (lower - x) / step, np.inf))
+            t = min(1.0, float(np.min(room)))
+            for halving in range(_MAX_HALVINGS):
+                trial = theta.copy()
+                trial[free] = np.clip(x + t * step, lower, upper)
+                # The full step is usually accepted: evaluate it with its gradient at once.
+                evaluated = self._evaluate(trial, free, profile, halving == 0)
+                if evaluated[0] <= f - _ARMIJO * t * decrement:
+                    break
+                t *= 0.5
+            else:
+                if decrement <= _NEWTON_NOISE_TOLERANCE:
+                    return full, f, None
+                return full, f, (f"no step lowers -ln L although the Newton decrement is "
+                                 f"{decrement:.3g}")
+            theta = trial
+            if evaluated[1] is None:
+                evaluated = self._evaluate(theta, free, profile, True)
+            g_old, f_old = g, f
+            f, g, fisher, full = evaluated
+            drop = f_old - f
+            creeping = creeping + 1 if (drop < _STALL_RATIO * 0.5 * decrement
+                                        or drop < _STALL_DROP) else 0
+            if observed is not None:
+                observed = _bfgs_update(observed, theta[free] - x, g - g_old)
+        return full, f, f"no convergence in {_NEWTON_MAX_ITERATIONS} Newton iterations"
 
     def maximise(self, start, fixed=None):
         """Maximise over the parameters not in ``fixed``; returns (theta, loglike).
@@ -1271,65 +1715,25 @@ class _Likelihood:
         Parameters
         ----------
         start : dict
-            Starting values for every parameter.
+            Starting values for every parameter (the normalisation's is not used while it is
+            free: it is profiled in closed form).
         fixed : dict, optional
             Parameters held at given values.
+
+        Raises
+        ------
+        CountsFitError
+            When the optimiser does not converge.
         """
         fixed = dict(fixed or {})
-        free = [n for n in self.names if n != "log10_norm" and n not in fixed]
-        norm_fixed = "log10_norm" in fixed
-
-        def assemble(u):
-            values = dict(fixed)
-            for name, x in zip(free, u, strict=True):
-                values[name] = self._internal_to_value(name, x)
-            return values
-
-        def objective(u):
-            values = assemble(u)
-            if norm_fixed:
-                theta = [values[n] for n in self.names]
-                value = self.loglike(np.array(theta))
-            else:
-                _, value = self._profiled(values)
-            return -value if math.isfinite(value) else 1e300
-
-        u0 = np.array([self._value_to_internal(n, start[n]) for n in free], dtype=float)
-        if free:
-            u = u0
-            for _ in range(3):
-                # Nelder-Mead (no gradients needed; the sharp break makes mu only piecewise
-                # smooth in m_break). Restarted from its own answer, which un-sticks a
-                # collapsed simplex.
-                simplex_steps = np.array(
-                    [0.5 if n in self.template._location_params else 0.05 for n in free]
-                )
-                simplex = np.vstack([u] + [u + np.diag(simplex_steps)[i] for i in range(u.size)])
-                result = optimize.minimize(
-                    objective,
-                    u,
-                    method="Nelder-Mead",
-                    options={
-                        "initial_simplex": simplex,
-                        "xatol": 1e-8,
-                        "fatol": 1e-10,
-                        "maxiter": 20000,
-                        "maxfev": 40000,
-                    },
-                )
-                converged = np.allclose(result.x, u, atol=1e-7, rtol=0.0)
-                u = result.x
-                if converged:
-                    break
-            if not result.success:
-                raise CountsFitError(f"the count fit did not converge: {result.message}")
-        else:
-            u = u0
-        values = assemble(u)
-        if not norm_fixed:
-            values["log10_norm"], _ = self._profiled(values)
-        theta = np.array([values[n] for n in self.names], dtype=float)
-        return theta, self.loglike(theta)
+        theta = np.array([fixed.get(n, start[n]) for n in self.names], dtype=float)
+        profile = self._norm is not None and "log10_norm" not in fixed
+        free = np.array([i for i, n in enumerate(self.names)
+                         if n not in fixed and not (profile and i == self._norm)], dtype=int)
+        theta, f, problem = self._newton(theta, free, profile)
+        if problem is not None:
+            raise CountsFitError(f"the count fit did not converge: {problem}")
+        return theta, self.saturated - f
 
 
 def _model_template(model, fit_lo, fit_hi):
@@ -1394,6 +1798,9 @@ class CountsFit:
         Poisson deviance; ``dof_`` = fitted bins - parameters.
     p_value_ : float or None
         Parametric-bootstrap p-value of the deviance.
+    p_value_error_ : float or None
+        Its Monte Carlo standard error ``sqrt(p (1 - p) / B)`` from B draws. When no redraw is
+        as bad as the data, p = 1 / (B + 1) only bounds the p-value from above.
     aic_, bic_ : float
         ``2 k - 2 ln L`` and ``k ln(n_bins) - 2 ln L``.
     n_sources_, n_bins_, n_regions_ : int
@@ -1408,9 +1815,19 @@ class CountsFit:
     Maximises ``ln L = sum_i [N_i ln mu_i - mu_i - ln N_i!]`` over the fitted bins (Cash 1979,
     ApJ 228, 939, for binned Poisson data), with mu from :class:`ForwardModel`. The normalisation
     is profiled in closed form (sum mu = sum N at the optimum) and the shape parameters found by
-    Nelder-Mead; broken models start from the best of a scan over m_break, which is kept inside
-    the fit range. The Poisson covariance is the inverse of the central-difference Hessian of
-    -ln L in the natural parameters (steps refined to a tenth of the first-pass sigma).
+    Newton's method with analytic gradients through the linear forward model: Fisher-scoring
+    steps far from the optimum, the observed information (finite differences of the gradient,
+    then BFGS-updated) within ~1 sigma of it, a backtracking line search, to a Newton decrement
+    of 1e-10 (within ~1e-5 sigma of the maximum). Two-slope models first scan m_break at every
+    bin edge and centre with the other parameters refitted, then free it from each position
+    and keep the best of the local maxima reached; m_break is kept at least two bins inside
+    the fit range (nearer an end the slope on the short side rests on one bin and trades off
+    with the break: a ridge, not a maximum), with a :class:`CountsWarning` when it ends on that
+    limit. Jackknife and bootstrap refits start from each of the full fit's local maxima within
+    5 in ln L of the best (with sharp bins and little scatter the likelihood in m_break has
+    several, about a bin apart) and take the best; only if none converges do they search from
+    the data. The Poisson covariance is the inverse of the central-difference Hessian of -ln L
+    in the natural parameters (steps refined to a tenth of the first-pass sigma).
 
     Clustering makes counts in cells over-dispersed, so with ``region_counts`` (K footprint
     regions) every parameter is refitted with each region left out; the delete-one jackknife
@@ -1592,19 +2009,22 @@ class CountsFit:
                 stacklevel=2,
             )
 
-        likelihood = _Likelihood(template, forward.grid_mag, response, used_counts,
-                                 (fit_lo, fit_hi))
-        theta, loglike = self._maximise_from_data(
-            likelihood, template, used, counts, bin_area, fit_lo, fit_hi
-        )
+        used_edges = edges[np.r_[np.flatnonzero(used), np.flatnonzero(used)[-1] + 1]]
+        # A break is kept two bins inside the range: nearer an end, the slope on the short
+        # side rests on one bin, trades off exactly with the break, and the likelihood has a
+        # ridge instead of a maximum (the model is not identifiable there).
+        break_range = (float(used_edges[min(2, n_bins // 2)]),
+                       float(used_edges[max(-3, -1 - n_bins // 2)]))
+        likelihood = _Likelihood(template, forward._cell_lo, forward._cell_hi, response,
+                                 used_counts, (fit_lo, fit_hi), break_range)
+        theta, loglike, maxima = self._maximise_from_data(likelihood, counts, bin_area)
+        self._warn_at_range_edge(template, theta, (fit_lo, fit_hi), break_range)
         cov_poisson = self._poisson_covariance(likelihood, theta, template)
 
         cov_jackknife = None
         jackknife_params = None
         if regions is not None:
-            jackknife_params = self._jackknife(
-                template, regions[:, used], region_grids, used, theta, (fit_lo, fit_hi)
-            )
+            jackknife_params = self._jackknife(likelihood, regions, region_grids, used, maxima)
             cov_jackknife = jackknife_covariance(jackknife_params)
             cov = combine_covariances(cov_poisson, cov_jackknife)
         else:
@@ -1615,9 +2035,13 @@ class CountsFit:
         mu = expected_all[used]
         deviance = _deviance(mu, used_counts.astype(float))
         p_value = None
+        p_value_error = None
         if n_bootstrap:
-            p_value = self._bootstrap_p_value(likelihood, theta, mu, deviance, n_bootstrap,
-                                              generator)
+            p_value = self._bootstrap_p_value(likelihood, maxima, mu, deviance, n_bootstrap,
+                                              generator, bin_area)
+            # Binomial standard error of a Monte Carlo p-value from B draws (Davison & Hinkley
+            # 1997, sec. 4.2.5; from memory).
+            p_value_error = math.sqrt(p_value * (1.0 - p_value) / n_bootstrap)
 
         self.model_ = model
         self.params_ = model.params_dict()
@@ -1629,6 +2053,7 @@ class CountsFit:
         self.deviance_ = deviance
         self.dof_ = n_bins - n_params
         self.p_value_ = p_value
+        self.p_value_error_ = p_value_error
         self.aic_ = 2.0 * n_params - 2.0 * loglike
         self.bic_ = n_params * math.log(n_bins) - 2.0 * loglike
         self.n_sources_ = n_sources
@@ -1645,34 +2070,113 @@ class CountsFit:
         self._profiles = {}
         return self
 
-    def _maximise_from_data(self, likelihood, template, used, counts, bin_area, fit_lo, fit_hi):
-        """Start from rough binned densities (and, for a break, a scan), then maximise."""
-        widths = np.diff(self.forward.bin_edges_mag)
-        centres = 0.5 * (self.forward.bin_edges_mag[1:] + self.forward.bin_edges_mag[:-1])
+    def _maximise_from_data(self, likelihood, counts, bin_area, starts=()):
+        """Maximise ``likelihood``; returns ``(theta, loglike, maxima)``.
+
+        Parameters
+        ----------
+        likelihood : _Likelihood
+        counts, bin_area : ndarray, shape (n_bins,)
+            Counts and mean effective area per bin of the forward model (all bins), for the
+            data start: a line fit to the rough densities ``counts / (bin_area * width)``.
+        starts : sequence of ndarray
+            Parameter vectors to start from first (a refit of perturbed data starts from the
+            full fit's local maxima); the best converged one is taken, and the search from the
+            data runs only when none converges.
+
+        Notes
+        -----
+        A model with one location parameter (m_break) scans it over every bin edge and centre
+        in its range with the other parameters refitted at each position, then frees it from
+        every position. With sharp bins and little scatter the likelihood in m_break has local
+        maxima about a bin apart and within bins; ``maxima`` lists the distinct ones within
+        ``_REFIT_START_DELTA_LOGLIKE`` of the best (best first) so that refits of perturbed
+        data can start from each.
+        """
+        template = likelihood.template
+        names = template.param_names
+        found = []
+        for start in starts:
+            try:
+                found.append(likelihood.maximise(dict(zip(names, start, strict=True))))
+            except CountsFitError:
+                continue
+        if not found:
+            found = self._search_from_data(likelihood, counts, bin_area)
+        maxima = []
+        location = [names.index(n) for n in template._location_params]
+        for theta, value in sorted(found, key=lambda pair: -pair[1]):
+            # Distinct maxima: location parameters more than 1e-3 mag apart (a hundredth of a
+            # typical error; closer ones are the same maximum reached from two sides).
+            if all(np.max(np.abs(theta[location] - other[location]), initial=0.0) > 1e-3
+                   for other, _ in maxima):
+                maxima.append((theta, value))
+        theta, loglike = maxima[0]
+        if not math.isfinite(loglike):
+            raise CountsFitError("the count fit found no parameters with a finite likelihood")
+        close = [t for t, value in maxima if value >= loglike - _REFIT_START_DELTA_LOGLIKE]
+        return theta, loglike, close[:_REFIT_MAX_STARTS]
+
+    def _search_from_data(self, likelihood, counts, bin_area):
+        """Converged ``(theta, loglike)`` pairs from the data start (and a scan of m_break)."""
+        template = likelihood.template
+        names = template.param_names
+        fit_lo, fit_hi = likelihood.fit_range
+        edges = self.forward.bin_edges_mag
+        widths = np.diff(edges)
+        centres = 0.5 * (edges[1:] + edges[:-1])
+        used = (edges[:-1] >= fit_lo) & (edges[1:] <= fit_hi)
         good = used & (counts > 0) & (bin_area > 0)
         m = centres[good]
         log10_n = np.log10(counts[good] / (bin_area[good] * widths[good]))
         start = template._initial_params(m, log10_n, fit_lo, fit_hi)
-        if template._location_params:
-            best = None
-            # Scan the break over the inner 80 % of the range (11 positions): the likelihood in
-            # m_break can have several local maxima.
-            for m_break in np.linspace(fit_lo, fit_hi, 13)[1:-1]:
-                trial = dict(start)
-                trial["m_break"] = float(m_break)
-                bright = m <= m_break
-                if bright.sum() >= 2:
-                    trial["slope_bright"] = _line_fit(m[bright], log10_n[bright])[1]
-                if (~bright).sum() >= 2:
-                    trial["slope_faint"] = _line_fit(m[~bright], log10_n[~bright])[1]
-                theta, value = likelihood.maximise(trial, fixed={"m_break": float(m_break)})
-                if best is None or value > best[1]:
-                    best = (theta, value)
-            start = dict(zip(template.param_names, best[0], strict=True))
-        theta, loglike = likelihood.maximise(start)
-        if not math.isfinite(loglike):
-            raise CountsFitError("the count fit found no parameters with a finite likelihood")
-        return theta, loglike
+        if len(template._location_params) != 1:
+            return [likelihood.maximise(start)]
+        name = template._location_params[0]
+        low, high = likelihood.location_range
+        # Every bin edge and centre in the break's range (at most 101, evenly thinned).
+        positions = np.unique(np.r_[edges[:-1][used], edges[1:][used], centres[used]])
+        slack = 1e-9 * max(1.0, abs(low), abs(high))
+        positions = positions[(positions >= low - slack) & (positions <= high + slack)]
+        if positions.size > 101:
+            positions = positions[np.round(np.linspace(0, positions.size - 1, 101)).astype(int)]
+        found = []
+        for position in np.clip(positions, low, high):
+            trial = dict(start)
+            trial[name] = float(position)
+            bright = m <= position
+            if "slope_bright" in trial and bright.sum() >= 2:
+                trial["slope_bright"] = _line_fit(m[bright], log10_n[bright])[1]
+            if "slope_faint" in trial and (~bright).sum() >= 2:
+                trial["slope_faint"] = _line_fit(m[~bright], log10_n[~bright])[1]
+            try:
+                theta, _ = likelihood.maximise(trial, fixed={name: float(position)})
+                found.append(likelihood.maximise(dict(zip(names, theta, strict=True))))
+            except CountsFitError:
+                continue
+        if not found:
+            raise CountsFitError(
+                f"the count fit did not converge: no {name} in [{low:g}, {high:g}] mag gave a "
+                "converged fit"
+            )
+        return found
+
+    @staticmethod
+    def _warn_at_range_edge(template, theta, fit_range, location_range):
+        low, high = location_range
+        for name in template._location_params:
+            value = float(theta[template.param_names.index(name)])
+            # Within 1e-9 of a limit: the optimiser's bound, not a fitted position.
+            slack = 1e-9 * max(1.0, abs(low), abs(high))
+            if value <= low + slack or value >= high - slack:
+                side = "bright" if value <= low + slack else "faint"
+                warnings.warn(
+                    f"`{name}` of {template.name} sits on its {side} limit {value:g} mag (two "
+                    f"bins inside the fit range [{fit_range[0]:g}, {fit_range[1]:g}]): the data "
+                    "show no break inside that range",
+                    CountsWarning,
+                    stacklevel=3,
+                )
 
     def _poisson_covariance(self, likelihood, theta, template):
         names = template.param_names
@@ -1680,13 +2184,10 @@ class CountsFit:
             [3.0 * self.forward.grid_step_mag if n in template._location_params else 1e-7
              for n in names]
         )
-
-        def negative(t):
-            return -likelihood.loglike(t)
-
         steps = np.maximum(np.array([1e-3] * len(names)), minimum_steps)
         for _ in range(2):
-            hessian = _numerical_hessian(negative, theta, steps)
+            # -ln L up to a constant, in its precise half-deviance form.
+            hessian = _numerical_hessian(likelihood.half_deviance, theta, steps)
             try:
                 np.linalg.cholesky(hessian)
             except np.linalg.LinAlgError as error:
@@ -1701,41 +2202,59 @@ class CountsFit:
             steps = np.maximum(0.1 * np.sqrt(np.diag(cov)), minimum_steps)
         return cov
 
-    def _jackknife(self, template, regions, region_grids, used, theta, location_range):
-        kernel = self.forward.kernel[used]
-        total_grid = self.forward.effective_area_grid_deg2
+    def _jackknife(self, likelihood, regions, region_grids, used, maxima):
+        """Parameters refitted with each region left out, shape (K, n_params)."""
+        forward = self.forward
+        kernel = forward.kernel[used]
+        total_grid = forward.effective_area_grid_deg2
         total_counts = regions.sum(axis=0)
-        start = dict(zip(template.param_names, theta, strict=True))
+        n_params = len(likelihood.names)
         values = []
         for k in range(regions.shape[0]):
             counts_k = total_counts - regions[k]
-            if counts_k.sum() <= len(template.param_names):
+            if counts_k[used].sum() <= n_params:
                 raise InputError(
-                    f"leaving out region {k} leaves {int(counts_k.sum())} sources; too few for "
-                    "a jackknife refit (use fewer, larger regions)"
+                    f"leaving out region {k} leaves {int(counts_k[used].sum())} sources; too "
+                    "few for a jackknife refit (use fewer, larger regions)"
                 )
-            response_k = kernel * (total_grid - region_grids[k])[None, :]
-            likelihood_k = _Likelihood(template, self.forward.grid_mag, response_k, counts_k,
-                                       location_range)
-            theta_k, value = likelihood_k.maximise(start)
-            if not math.isfinite(value):
-                raise CountsFitError(f"the jackknife refit without region {k} failed")
+            grid_k = total_grid - region_grids[k]
+            likelihood_k = _Likelihood(likelihood.template, forward._cell_lo, forward._cell_hi,
+                                       kernel * grid_k[None, :], counts_k[used],
+                                       likelihood.fit_range, likelihood.location_range)
+            try:
+                theta_k, _, _ = self._maximise_from_data(
+                    likelihood_k, counts_k, _correction_areas(forward, None, grid_k),
+                    starts=maxima,
+                )
+            except CountsFitError as error:
+                raise CountsFitError(
+                    f"the jackknife refit without region {k} failed: {error}"
+                ) from error
             values.append(theta_k)
         return np.array(values)
 
-    def _bootstrap_p_value(self, likelihood, theta, mu, deviance, n_bootstrap, generator):
-        start = dict(zip(likelihood.names, theta, strict=True))
+    def _bootstrap_p_value(self, likelihood, maxima, mu, deviance, n_bootstrap, generator,
+                           bin_area):
         exceed = 0
+        edges = self.forward.bin_edges_mag
+        fit_lo, fit_hi = likelihood.fit_range  # edges of the fitted bins, exactly
+        used = (edges[:-1] >= fit_lo) & (edges[1:] <= fit_hi)
+        full = np.zeros(self.forward.n_bins)
         for _ in range(n_bootstrap):
             draw = generator.poisson(mu)
             if draw.sum() == 0:
                 exceed += 1
                 continue
-            redraw = _Likelihood(likelihood.template, likelihood.grid_mag, likelihood.response,
-                                 draw, likelihood.location_range)
-            theta_b, _ = redraw.maximise(start)
-            deviance_b = _deviance(redraw.expected(theta_b), draw.astype(float))
-            exceed += deviance_b >= deviance
+            redraw = likelihood.with_counts(draw)
+            full[used] = draw
+            try:
+                theta_b, _, _ = self._maximise_from_data(redraw, full, bin_area, starts=maxima)
+            except CountsFitError as error:
+                raise CountsFitError(
+                    f"a parametric-bootstrap refit failed ({error}); set n_bootstrap=0 to skip "
+                    "the p-value"
+                ) from error
+            exceed += redraw.deviance(theta_b) >= deviance
         return (1.0 + exceed) / (1.0 + n_bootstrap)
 
     def _estimates(self, model, cov_poisson, cov, cov_jackknife):
@@ -1757,7 +2276,8 @@ class CountsFit:
     _FITTED_ATTRIBUTES = frozenset(
         {
             "model_", "params_", "cov_", "cov_poisson_", "cov_jackknife_", "jackknife_params_",
-            "loglike_", "deviance_", "dof_", "p_value_", "aic_", "bic_", "n_sources_", "n_bins_",
+            "loglike_", "deviance_", "dof_", "p_value_", "p_value_error_", "aic_", "bic_",
+            "n_sources_", "n_bins_",
             "n_regions_", "expected_counts_", "used_bins_", "fit_range_", "observed_counts_",
             "region_counts_", "region_area_grids_", "estimates_",
         }
@@ -1879,6 +2399,9 @@ class CountsFit:
                 "deviance": float(self.deviance_),
                 "dof": int(self.dof_),
                 "p_value": None if self.p_value_ is None else float(self.p_value_),
+                "p_value_error": (
+                    None if self.p_value_error_ is None else float(self.p_value_error_)
+                ),
                 "aic": float(self.aic_),
                 "bic": float(self.bic_),
             }
@@ -1895,7 +2418,9 @@ class CountsFit:
         ]
         for name in model.param_names:
             lines.append(f"  {name:13s} {self.estimates_[name].format()}")
-        p_text = "not computed" if self.p_value_ is None else f"{self.p_value_:.3g}"
+        p_text = "not computed" if self.p_value_ is None else (
+            f"{self.p_value_:.3g} +/- {self.p_value_error_:.2g}"
+        )
         lines.append(
             f"  deviance {self.deviance_:.4g} on {self.dof_} dof (bootstrap p = {p_text}); "
             f"AIC {self.aic_:.6g}, BIC {self.bic_:.6g}"
@@ -2036,8 +2561,8 @@ def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None):
     Raises
     ------
     CountsFitError
-        When some parameter draws make N(<m) diverge (a bright slope <= 0 within the errors and
-        no ``m_bright`` on the model).
+        When N(<m) diverges at the fitted parameters or for some parameter draws (a bright
+        slope <= 0 at the fit or within the errors, and no ``m_bright`` on the model).
 
     Notes
     -----
@@ -2069,7 +2594,14 @@ def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None):
             CountsWarning,
             stacklevel=2,
         )
-    point = float(model.cumulative(m_limit))
+    try:
+        point = float(model.cumulative(m_limit))
+    except InputError as error:
+        # A fitted bright-end slope <= 0 is an outcome of the fit, not bad input.
+        raise CountsFitError(
+            f"N(<{m_limit:g}) diverges at the fitted parameters ({error}); set `m_bright` on "
+            "the model"
+        ) from error
     theta = model.params
 
     def log10_n(t):
@@ -2281,7 +2813,7 @@ def _correction_areas(forward, fit, area_grid):
         )
         return weighted / np.diff(forward.bin_edges_mag)
     model = fit.model_
-    mu = forward._response_for(area_grid) @ (10.0 ** model._log10_density(forward.grid_mag))
+    mu = forward._response_for(area_grid) @ forward._cell_density(model)
     intrinsic = forward.intrinsic_counts_per_deg2(model)
     with np.errstate(divide="ignore", invalid="ignore"):
         return np.where(intrinsic > 0.0, mu / intrinsic, 0.0)
