@@ -316,8 +316,36 @@ def _stage_completeness(ctx: RunContext) -> StageResult:
                               "total": total})
 
 
-#: Models fitted for comparison beside the run file's choice.
-_COUNT_MODELS = ("power_law", "broken_power_law", "double_power_law")
+def _integral_with_bright_part(integral: Any, n_bright: int, area_deg2: float,
+                               rng: np.random.Generator) -> dict:
+    """N(<m) = sources observed brighter than the fit range + the model over the fit range.
+
+    The survey is taken as complete brighter than the fit range, so those sources are counted
+    as observed, with Poisson draws for their error; the model part keeps its own draws
+    (Poisson + clustering). Budget shares are of the variance of the total (for small
+    relative errors, the same shares as of its log10).
+    """
+    from countscale.estimate import Estimate
+
+    model_total = integral.total
+    draws = np.asarray(model_total.draws, dtype=float)
+    bright = rng.poisson(max(n_bright, 0), size=draws.size).astype(float)
+    total = draws + bright
+    var_model, var_bright = float(np.var(draws)), float(n_bright)
+    shares = {k: v * var_model for k, v in model_total.budget.items()}
+    shares["poisson"] = shares.get("poisson", 0.0) + var_bright
+    norm = sum(shares.values()) or 1.0
+    budget = {k: v / norm for k, v in shares.items()}
+    total_estimate = Estimate.from_draws(total, "sources", budget=budget)
+    per_deg2 = Estimate.from_draws(total / area_deg2, "deg^-2", budget=budget)
+    return {
+        "m_limit": float(integral.m_limit),
+        "area_deg2": float(area_deg2),
+        "per_deg2": per_deg2.to_json(),
+        "total": total_estimate.to_json(),
+        "n_observed_brighter": int(n_bright),
+        "model_part": integral.to_json(),
+    }
 
 
 def _stage_counts(ctx: RunContext) -> StageResult:
@@ -361,9 +389,19 @@ def _stage_counts(ctx: RunContext) -> StageResult:
         notes.append("fewer than 3 regions: errors are Poisson only (no jackknife)")
 
     fits = {}
-    for name in (section.model, *[m for m in _COUNT_MODELS if m != section.model]):
+    fit_lo = float(fit_range[0])
+    reference = 0.5 * round(fit_range[0] + fit_range[1])
+    models = {"power_law": ct.PowerLaw, "broken_power_law": ct.BrokenPowerLaw,
+              "double_power_law": ct.DoublePowerLaw}
+    for name in (section.model, *[m for m in models if m != section.model]):
+        # N(<m) is integrated from the bright edge of the fit range (m_bright); brighter
+        # sources are taken as observed (see _integral_with_bright_part).
+        settings = {"reference_mag": reference, "m_bright": fit_lo}
+        if name != "power_law":
+            settings["m_break"] = 0.5 * (fit_range[0] + fit_range[1])
+        template = models[name](**settings)
         try:
-            fits[name] = ct.CountsFit(name, forward, fit_range_mag=fit_range).fit(
+            fits[name] = ct.CountsFit(template, forward, fit_range_mag=fit_range).fit(
                 observed, rng=ctx.rng, region_counts=region_counts,
                 region_effective_area_deg2=per_region,
             )
@@ -374,7 +412,10 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     main = fits[section.model]
     comparison = ct.compare_models(list(fits.values())) if len(fits) > 1 else None
     m_limit = float(main.fit_range_[1])
-    integral = main.integral_counts(m_limit, area_deg2=area, rng=ctx.rng)
+    edges = tally_result.mag_edges
+    n_bright = int(tally_result.n_brighter + observed[edges[1:] <= fit_lo].sum())
+    integral = _integral_with_bright_part(
+        main.integral_counts(m_limit, area_deg2=area, rng=ctx.rng), n_bright, area, ctx.rng)
     differential = main.differential_counts()
     grid = np.arange(tally_result.mag_edges[0], tally_result.mag_edges[-1] + 1e-9,
                      _CURVE_STEP_MAG)
@@ -385,10 +426,11 @@ def _stage_counts(ctx: RunContext) -> StageResult:
                          if name != section.model},
         "comparison": None if comparison is None else comparison.to_json(),
         "integral_counts": {
-            **integral.to_json(),
-            "note": (f"sources brighter than m = {m_limit:g}, the faint end of the fit range, "
-                     "from the fitted model corrected for completeness and scatter; brighter "
-                     f"than {float(main.fit_range_[0]):g} the model is extrapolated"),
+            **integral,
+            "note": (f"sources brighter than m = {m_limit:g}, the faint end of the fit range: "
+                     f"the {n_bright:,d} observed brighter than {fit_lo:g} (taken as complete) "
+                     "plus the fitted model, corrected for completeness and scatter, over "
+                     "the fit range"),
         },
         "differential": differential.to_json(),
         "expected_counts": np.asarray(main.expected_counts_, dtype=float).tolist(),
@@ -536,6 +578,9 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     for stage in to_run:
         if stage.name != "tally":
             results[stage.name] = ctx.results[stage.name].to_dict()
+    figures = report.figure_names(results, runfile.output.formats, ctx.footprint)
+    if figures:
+        results["figures"] = figures
     files = report.write_report(results, out_dir, formats=runfile.output.formats,
                                 footprint=ctx.footprint)
     return RunResult(

@@ -294,6 +294,22 @@ FIGURE_NAMES = {"footprint": "footprint.png", "completeness": "completeness.png"
                 "counts": "counts.png"}
 
 
+def figure_names(results: Mapping[str, Any], formats: Iterable[str],
+                 footprint: Any = None) -> dict[str, str]:
+    """The figures a report will hold ({name: file name}); empty unless "png" is a format.
+
+    The run puts this under ``results["figures"]`` before writing, so ``results.json`` and
+    ``report.md`` list exactly the figures drawn.
+    """
+    if "png" not in tuple(formats):
+        return {}
+    names = []
+    if footprint is not None:
+        names.append("footprint")
+    names += [name for name in ("completeness", "counts") if name in results]
+    return {name: FIGURE_NAMES[name] for name in names}
+
+
 def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
                  formats: Iterable[str] = ("json", "markdown"),
                  footprint: Any = None) -> tuple[Path, ...]:
@@ -327,15 +343,15 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
         from countscale import plots
 
         title = _title(results)
-        if footprint is not None:
-            figures["footprint"] = lambda p: plots.footprint_figure(footprint, p, title=title)
-        if "completeness" in results:
-            figures["completeness"] = lambda p: plots.completeness_figure(
-                results["completeness"], p, title=f"{title}: detection completeness")
-        if "counts" in results:
-            figures["counts"] = lambda p: plots.counts_figure(
-                results["counts"], p, title=f"{title}: differential number counts")
-        results = {**results, "figures": {k: FIGURE_NAMES[k] for k in figures}}
+        drawers = {
+            "footprint": lambda p: plots.footprint_figure(footprint, p, title=title),
+            "completeness": lambda p: plots.completeness_figure(
+                results["completeness"], p, title=f"{title}: detection completeness"),
+            "counts": lambda p: plots.counts_figure(
+                results["counts"], p, title=f"{title}: differential number counts"),
+        }
+        for name in figure_names(results, formats, footprint):
+            figures[name] = drawers[name]
     # Build every text file's content before touching the folder.
     contents: list[tuple[str, str]] = []
     if "markdown" in formats:

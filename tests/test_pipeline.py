@@ -98,7 +98,9 @@ def test_run_writes_results_with_ledger_footprint_and_counts(tmp_path):
     out = tmp_path / "out"
     result = run_survey(runfile, out_dir=out, seed=5, progress=False)
     assert isinstance(result, RunResult)
-    assert [p.name for p in result.files] == ["report.md", "results.json"]
+    # Default formats: figures (only the footprint: no completeness or counts section here),
+    # then the Markdown report, then results.json last.
+    assert [p.name for p in result.files] == ["footprint.png", "report.md", "results.json"]
     data = json.loads((out / "results.json").read_text())
     assert data == json.loads(json.dumps(result.results))
 
@@ -141,8 +143,10 @@ def test_counts_bins_and_variance_regions_from_the_run_file(tmp_path):
     np.testing.assert_allclose(tally_part["mag_bins"]["edges"], 18.0 + 0.5 * np.arange(13))
     assert tally_part["mag_bins"]["grid"] == "given"
     assert tally_part["regions"]["n_regions"] == 6
-    # No stage reads [counts] or [variance] beyond the bins and the regions yet: listed.
-    assert result.results["run"]["sections_not_run"] == ["counts", "variance"]
+    # The counts stage ran on these bins; no stage reads [variance] beyond its regions yet.
+    assert result.stages == ("tally", "counts")
+    assert result.results["counts"]["differential"]["mag_lo"][0] == 18.0
+    assert result.results["run"]["sections_not_run"] == ["variance"]
     assert "## Not run" in (tmp_path / "out" / "report.md").read_text()
 
 
@@ -184,8 +188,9 @@ def test_stage_list_runs_stages_only_when_their_sections_are_present(tmp_path, m
         assert set(ctx.columns) == {"mag", "redshift"}
         return Fake()
 
-    stages = [*STAGES, pipeline.Stage("fake", ("catalog", "counts"), fake_stage,
-                                      columns=("mag", "redshift"))]
+    # Only the tally and a fake stage, so the test is about the stage mechanism.
+    stages = [STAGES[0], pipeline.Stage("fake", ("catalog", "counts"), fake_stage,
+                                        columns=("mag", "redshift"))]
     monkeypatch.setattr(pipeline, "STAGES", stages)
     runfile, _ = make_survey(tmp_path, n=2000)
     without = run_survey(runfile, out_dir=tmp_path / "a", seed=1, progress=False)
