@@ -417,6 +417,17 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     integral = _integral_with_bright_part(
         main.integral_counts(m_limit, area_deg2=area, rng=ctx.rng), n_bright, area, ctx.rng)
     differential = main.differential_counts()
+    preferred = None
+    if comparison is not None:
+        best = min(fits, key=lambda name: fits[name].bic_)
+        if best != section.model:
+            preferred = {
+                "model": best,
+                "criterion": "BIC",
+                "integral_counts": _integral_with_bright_part(
+                    fits[best].integral_counts(m_limit, area_deg2=area, rng=ctx.rng),
+                    n_bright, area, ctx.rng),
+            }
     grid = np.arange(tally_result.mag_edges[0], tally_result.mag_edges[-1] + 1e-9,
                      _CURVE_STEP_MAG)
     data = {
@@ -432,6 +443,7 @@ def _stage_counts(ctx: RunContext) -> StageResult:
                      "plus the fitted model, corrected for completeness and scatter, over "
                      "the fit range"),
         },
+        "preferred": preferred,
         "differential": differential.to_json(),
         "expected_counts": np.asarray(main.expected_counts_, dtype=float).tolist(),
         "scatter": None if scatter is None else scatter.to_json(),

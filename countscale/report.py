@@ -225,8 +225,16 @@ def _counts_markdown(counts: Mapping[str, Any]) -> list[str]:
         "",
         f"Integral counts N(<{integral['m_limit']:g}) = {_estimate(integral['per_deg2'])}; over "
         f"the footprint's {integral['area_deg2']:.4g} deg²: {_estimate(integral['total'])} "
-        f"sources ({integral['note']}).",
+        f"({integral['note']}).",
     ]
+    preferred = counts.get("preferred")
+    if preferred:
+        out += [
+            "",
+            f"With `{preferred['model']}`, the model BIC prefers: N(<{integral['m_limit']:g}) = "
+            f"{_estimate(preferred['integral_counts']['per_deg2'])}; over the footprint: "
+            f"{_estimate(preferred['integral_counts']['total'])}.",
+        ]
     for note in counts.get("notes", []):
         out += ["", f"Note: {note.rstrip('.')}."]
     return out

@@ -113,6 +113,12 @@ def test_demo_recovers_its_truth(demo_run):
     true_total = np.exp(np.interp(integral["m_limit"], limits, np.log(drawn)))
     lo, hi = integral["total"]["interval_95"]
     assert lo <= true_total <= hi
+    # The demo's counts curve (a Schechter population): BIC prefers a curved model, whose
+    # N(<m) must bracket the truth too.
+    preferred = counts["preferred"]
+    assert preferred["model"] in ("broken_power_law", "double_power_law")
+    lo, hi = preferred["integral_counts"]["total"]["interval_95"]
+    assert lo <= true_total <= hi
 
 
 def test_demo_report_has_sections_and_figures(demo_run):
