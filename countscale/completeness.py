@@ -49,6 +49,12 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, special, stats
 
+from countscale._checks import as_generator as _as_generator
+from countscale._checks import as_magnitudes as _as_magnitudes
+from countscale._checks import check_real as _check_real
+from countscale._checks import numerical_gradient as _numerical_gradient
+from countscale._checks import numerical_hessian as _numerical_hessian
+from countscale._checks import read_only as _read_only
 from countscale.errors import InputError, InputTypeError
 from countscale.estimate import Estimate
 
@@ -101,49 +107,6 @@ class CompletenessFitError(RuntimeError):
 
 
 # ============================================================================ input helpers
-def _as_generator(rng):
-    if rng is None or isinstance(rng, np.random.Generator):
-        return np.random.default_rng(rng)
-    if isinstance(rng, numbers.Integral) and not isinstance(rng, bool):
-        if rng < 0:
-            raise InputError(f"`rng` seed must be >= 0; got {rng}")
-        return np.random.default_rng(int(rng))
-    raise InputTypeError(
-        f"`rng` must be an int seed or a numpy Generator; got {type(rng).__name__}"
-    )
-
-
-def _as_magnitudes(m, name="m"):
-    """Return (float ndarray copy, was_scalar); NaN passes through (gives NaN completeness)."""
-    if isinstance(m, (str, bytes)):
-        raise InputTypeError(f"`{name}` must be numeric magnitudes; got {type(m).__name__}")
-    try:
-        array = np.array(m, dtype=float, copy=True)
-    except (TypeError, ValueError) as error:
-        raise InputTypeError(
-            f"`{name}` must be numeric magnitudes; got {type(m).__name__}"
-        ) from error
-    return array, array.ndim == 0
-
-
-def _check_real(value, name, low=None, high=None, low_open=True, high_open=False):
-    """A finite float inside an optional interval, or raise naming ``name``."""
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise InputTypeError(f"`{name}` must be a real number; got {type(value).__name__}")
-    value = float(value)
-    if not math.isfinite(value):
-        raise InputError(f"`{name}` must be finite; got {value}")
-    below = low is not None and (value <= low if low_open else value < low)
-    above = high is not None and (value >= high if high_open else value > high)
-    if below or above:
-        left = "(" if low_open else "["
-        right = ")" if (high_open or high is None) else "]"
-        lo_text = "-inf" if low is None else f"{low:g}"
-        hi_text = "inf" if high is None else f"{high:g}"
-        raise InputError(f"`{name}` must be in {left}{lo_text}, {hi_text}{right}; got {value}")
-    return value
-
-
 def _log_plateau(log_shape, log_one_minus_shape, c_max):
     """(log c, log(1 - c)) for c = c_max * s, computed without cancellation."""
     if c_max == 1.0:
@@ -440,12 +403,6 @@ def clopper_pearson(n_recovered, n_injected, confidence=0.68):
     lo[has_k] = stats.beta.ppf(tail, kf[has_k], nf[has_k] - kf[has_k] + 1.0)
     hi[below_n] = stats.beta.ppf(1.0 - tail, kf[below_n] + 1.0, nf[below_n] - kf[below_n])
     return lo, hi
-
-
-def _read_only(array, dtype=float):
-    array = np.array(array, dtype=dtype, copy=True)
-    array.flags.writeable = False
-    return array
 
 
 @dataclass(frozen=True, eq=False)
@@ -960,37 +917,6 @@ def _build_parametric(kind, theta, plateau):
 def _negative_loglike(kind, theta, plateau, mag, hit):
     log_c, log_one_minus = _build_parametric(kind, theta, plateau).log_completeness(mag)
     return -float(np.sum(np.where(hit, log_c, log_one_minus)))
-
-
-def _numerical_hessian(function, theta, steps):
-    """Central-difference Hessian of a scalar function."""
-    n = theta.size
-    hessian = np.empty((n, n))
-    f0 = function(theta)
-    for i in range(n):
-        e_i = np.zeros(n)
-        e_i[i] = steps[i]
-        hessian[i, i] = (function(theta + e_i) - 2.0 * f0 + function(theta - e_i)) / steps[i] ** 2
-        for j in range(i):
-            e_j = np.zeros(n)
-            e_j[j] = steps[j]
-            value = (
-                function(theta + e_i + e_j)
-                - function(theta + e_i - e_j)
-                - function(theta - e_i + e_j)
-                + function(theta - e_i - e_j)
-            ) / (4.0 * steps[i] * steps[j])
-            hessian[i, j] = hessian[j, i] = value
-    return hessian
-
-
-def _numerical_gradient(function, theta, steps):
-    gradient = np.empty(theta.size)
-    for i in range(theta.size):
-        e_i = np.zeros(theta.size)
-        e_i[i] = steps[i]
-        gradient[i] = (function(theta + e_i) - function(theta - e_i)) / (2.0 * steps[i])
-    return gradient
 
 
 class CompletenessFit:

@@ -44,7 +44,6 @@ from __future__ import annotations
 
 import difflib
 import math
-import numbers
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -55,6 +54,10 @@ from astropy import cosmology as _astropy_cosmology
 from astropy.cosmology import FLRW, FlatLambdaCDM, LambdaCDM
 from scipy import integrate
 
+from countscale._checks import as_output as _out
+from countscale._checks import finite_scalar as _finite_scalar
+from countscale._checks import first_bad as _first_bad
+from countscale._checks import real_array as _real_array
 from countscale.errors import InputError, InputTypeError
 
 __all__ = [
@@ -95,44 +98,6 @@ _EXPLICIT_PARAMETERS = ("H0", "Om0", "Ode0", "Tcmb0", "Ob0")
 # --------------------------------------------------------------------------------------------
 # Input checks shared by the entry points
 # --------------------------------------------------------------------------------------------
-def _real_scalar(name: str, value: Any) -> float:
-    """A finite-or-not real scalar as float; wrong kinds raise InputTypeError."""
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise InputTypeError(f"`{name}` must be a real number; got {value!r}")
-    return float(value)
-
-
-def _finite_scalar(name: str, value: Any) -> float:
-    x = _real_scalar(name, value)
-    if not math.isfinite(x):
-        raise InputError(f"`{name}` must be finite; got {x!r}")
-    return x
-
-
-def _real_array(name: str, value: Any) -> np.ndarray:
-    """A float64 copy of ``value``; strings, booleans and objects raise InputTypeError."""
-    if isinstance(value, (str, bytes, bool, np.bool_)):
-        raise InputTypeError(f"`{name}` must be a real number or an array of them; got {value!r}")
-    try:
-        arr = np.array(value, dtype=float)  # np.array copies: the caller's array is never touched
-    except (TypeError, ValueError):
-        raise InputTypeError(
-            f"`{name}` must be a real number or an array of them; got {value!r}"
-        ) from None
-    if np.asarray(value).dtype.kind in "bUS":
-        raise InputTypeError(f"`{name}` must be a real number or an array of them; got {value!r}")
-    return arr
-
-
-def _first_bad(arr: np.ndarray, bad: np.ndarray) -> str:
-    """'-0.5' for a scalar, '-0.5 (at index 3)' for an array: the first offending value."""
-    if arr.ndim == 0:
-        return repr(float(arr))
-    index = tuple(int(i) for i in np.argwhere(bad)[0])
-    where = index[0] if len(index) == 1 else index
-    return f"{float(arr[index])!r} (at index {where})"
-
-
 def _redshift(value: Any, name: str = "z", *, positive: bool = False) -> np.ndarray:
     """Check redshifts: finite and >= 0 (or > 0 where z = 0 has no meaning)."""
     z = _real_array(name, value)
@@ -141,10 +106,6 @@ def _redshift(value: Any, name: str = "z", *, positive: bool = False) -> np.ndar
         rule = "finite and > 0" if positive else "finite and >= 0"
         raise InputError(f"`{name}` must be {rule}; got {_first_bad(z, bad)}")
     return z
-
-
-def _out(values: np.ndarray, scalar: bool) -> float | np.ndarray:
-    return float(values) if scalar else np.asarray(values, dtype=float)
 
 
 def _resolve(cosmo: Any) -> FLRW:

@@ -44,6 +44,12 @@ from typing import Any, ClassVar
 import numpy as np
 from scipy import special
 
+from countscale._checks import as_generator as _generator
+from countscale._checks import as_output as _out
+from countscale._checks import finite_scalar as _finite_scalar
+from countscale._checks import first_bad as _first_bad
+from countscale._checks import real_array as _real_array
+from countscale._checks import real_scalar as _real_scalar
 from countscale.errors import InputError, InputTypeError
 
 __all__ = [
@@ -72,66 +78,12 @@ _TAIL_EPS = 1e-18
 # --------------------------------------------------------------------------------------------
 # Input checks
 # --------------------------------------------------------------------------------------------
-def _real_scalar(name: str, value: Any) -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise InputTypeError(f"`{name}` must be a real number; got {value!r}")
-    return float(value)
-
-
-def _finite_scalar(name: str, value: Any) -> float:
-    x = _real_scalar(name, value)
-    if not math.isfinite(x):
-        raise InputError(f"`{name}` must be finite; got {x!r}")
-    return x
-
-
-def _real_array(name: str, value: Any) -> np.ndarray:
-    if isinstance(value, (str, bytes, bool, np.bool_)):
-        raise InputTypeError(f"`{name}` must be a real number or an array of them; got {value!r}")
-    try:
-        arr = np.array(value, dtype=float)  # a copy: the caller's array is never modified
-    except (TypeError, ValueError):
-        raise InputTypeError(
-            f"`{name}` must be a real number or an array of them; got {value!r}"
-        ) from None
-    if np.asarray(value).dtype.kind in "bUS":
-        raise InputTypeError(f"`{name}` must be a real number or an array of them; got {value!r}")
-    return arr
-
-
-def _first_bad(arr: np.ndarray, bad: np.ndarray) -> str:
-    if arr.ndim == 0:
-        return repr(float(arr))
-    index = tuple(int(i) for i in np.argwhere(bad)[0])
-    where = index[0] if len(index) == 1 else index
-    return f"{float(arr[index])!r} (at index {where})"
-
-
 def _finite_array(name: str, value: Any) -> np.ndarray:
     arr = _real_array(name, value)
     bad = ~np.isfinite(arr)
     if bad.any():
         raise InputError(f"`{name}` must be finite; got {_first_bad(arr, bad)}")
     return arr
-
-
-def _out(values: np.ndarray, scalar: bool) -> float | np.ndarray:
-    return float(values) if scalar else np.asarray(values, dtype=float)
-
-
-def _generator(rng: Any) -> np.random.Generator:
-    """An int seed (>= 0), a Generator, or None (fresh entropy; not reproducible)."""
-    if isinstance(rng, np.random.Generator):
-        return rng
-    if rng is None:
-        return np.random.default_rng()
-    if isinstance(rng, numbers.Integral) and not isinstance(rng, bool):
-        if rng < 0:
-            raise InputError(f"`rng` seed must be >= 0; got {int(rng)!r}")
-        return np.random.default_rng(int(rng))
-    raise InputTypeError(
-        f"`rng` must be an int seed, a numpy.random.Generator or None; got {rng!r}"
-    )
 
 
 # --------------------------------------------------------------------------------------------

@@ -473,7 +473,8 @@ def test_per_region_fit_names_the_region_with_too_few_rows():
         ({"plateau": "yes"}, InputTypeError, r"`plateau` must be True or False; got 'yes'"),
         ({"n_bootstrap": 3}, InputError, r"`n_bootstrap` must be an integer >= 10; got 3"),
         ({"bin_width": 0.1}, InputError, r"`bin_width` applies to the monotone model only"),
-        ({"rng": "seed"}, InputTypeError, r"`rng` must be an int seed or a numpy Generator"),
+        ({"rng": "seed"}, InputTypeError,
+         r"`rng` must be an int seed, a numpy.random.Generator or None; got 'seed'"),
         ({"rng": -1}, InputError, r"`rng` seed must be >= 0; got -1"),
     ],
 )

@@ -1348,7 +1348,8 @@ BAD_INPUTS = [
     (lambda: _fit(model=3), InputTypeError, r"`model` must be a model name or a CountModel"),
     (lambda: _fit(forward="bins"), InputTypeError, r"`forward` must be a ForwardModel; got str"),
     (lambda: _fit(n_bootstrap=-1), InputError, r"`n_bootstrap` must be an integer >= 0"),
-    (lambda: _fit(rng="seed"), InputTypeError, r"`rng` must be an int seed or a numpy Generator"),
+    (lambda: _fit(rng="seed"), InputTypeError,
+     r"`rng` must be an int seed, a numpy.random.Generator or None; got 'seed'"),
     # ---- regions
     (lambda: _fit(region_counts=[[40, 60, 90, 130], [0, 0, 0, 0], [0, 0, 0, 1]],
                   region_effective_area_deg2=[1, 1, 1]), InputError,
