@@ -514,3 +514,31 @@ def test_bad_files(tmp_path):
     with pytest.raises(InputError, match=r"bad.csv: column 'radius_arcsec' must be > 0; "
                                          r"row 1 is -1.0"):
         Footprint.read_circles(bad_radius)
+
+
+def test_occupancy_footprint_counts_cells_with_enough_sources():
+    # Cells of order 6 holding >= 2 positions: checked against healpy's ang2pix + bincount.
+    rng = np.random.default_rng(21)
+    ra = rng.uniform(30, 50, 3000)
+    dec = rng.uniform(-10, 10, 3000)
+    fp = Footprint.from_positions(ra, dec, order=6, min_count=2)
+    pix = hp.ang2pix(64, ra, dec, nest=True, lonlat=True)
+    counts = np.bincount(pix, minlength=hp.nside2npix(64))
+    expected = (counts >= 2).sum() * hp.nside2pixarea(64, degrees=True)
+    assert fp.area_deg2 == pytest.approx(expected, rel=1e-12)
+    # The edge pixels of an occupancy map carry the thresholded-map boundary uncertainty.
+    assert fp.area_uncertainty_deg2 > 0
+    with pytest.raises(InputError, match=r"`min_count` must be an integer >= 1; got 0"):
+        Footprint.from_positions(ra, dec, order=6, min_count=0)
+
+
+def test_weight_at_gives_the_finest_cell_coverage():
+    # A cap of 1 arcmin at order 12 (51 arcsec cells): the centre cell is fully covered and
+    # a point 2 arcmin away is outside; edge cells hold fractions strictly between 0 and 1.
+    cap = Footprint.cap(80, 20, 1 / 60, max_order=12)
+    assert cap.weight_at(80, 20)[0] == 1.0
+    assert cap.weight_at(80, 20 + 2 / 60)[0] == 0.0
+    cells, frac = cap.coverage_cells(12)
+    assert np.any((frac > 0) & (frac < 1))
+    ra, dec = hp.pix2ang(2**12, cells, nest=True, lonlat=True)
+    assert np.allclose(cap.weight_at(ra, dec), frac)
