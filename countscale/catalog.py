@@ -16,6 +16,9 @@ Checking before reading
 Reading
     :meth:`CatalogSource.iter_chunks` yields :class:`CatalogChunk` objects: plain numpy arrays
     per logical column (``ra``, ``dec``, ``mag``, ...), the file name and the row offset.
+    :func:`iter_file_chunks` reads one checked file, or some row groups of a Parquet file
+    (for engines that share files out among workers); :func:`check_chunk_rows` is the chunk
+    size check every reader applies.
 Validation
     :func:`validate_chunk` with :class:`ValidationRules` and, when ids are mapped, a
     :class:`SeenIds` registry; :func:`iter_valid_chunks` does both for a whole source.
@@ -67,6 +70,7 @@ from __future__ import annotations
 
 import difflib
 import glob
+import itertools
 import json
 import os
 import re
@@ -100,6 +104,8 @@ __all__ = [
     "SeenIds",
     "ValidChunk",
     "ValidationRules",
+    "check_chunk_rows",
+    "iter_file_chunks",
     "iter_valid_chunks",
     "require_rows",
     "split_by_footprint",
@@ -205,7 +211,12 @@ def _first_line(exc: BaseException) -> str:
     return text.splitlines()[0]
 
 
-def _check_chunk_rows(chunk_rows: Any) -> int:
+def check_chunk_rows(chunk_rows: Any) -> int:
+    """``chunk_rows`` as an int, or a one-line error (integer >= 1 required).
+
+    For readers of a catalogue outside this module (the tally's engines), so every entry
+    point refuses a bad chunk size with the same message.
+    """
     if isinstance(chunk_rows, bool) or not isinstance(chunk_rows, int | np.integer):
         raise InputTypeError(f"`chunk_rows` must be an integer; got {chunk_rows!r}")
     if chunk_rows < 1:
@@ -441,17 +452,22 @@ def _arrow_to_float(array: pa.Array) -> np.ndarray:
     return array.cast(pa.float64(), safe=False).to_numpy(zero_copy_only=False)
 
 
-def _int_ids(values: np.ndarray) -> np.ndarray:
+def _int_ids(values: np.ndarray, copy: bool = True) -> np.ndarray:
     # Unsigned 64-bit ids above 2**63 do not fit int64; viewing the bits keeps every id
     # distinct, which is all duplicate detection needs.
     if values.dtype == np.uint64:
-        return values.view(np.int64).copy()
-    return values.astype(np.int64, copy=True)
+        ids = values.view(np.int64)
+        return ids.copy() if copy else ids
+    return values.astype(np.int64, copy=copy)
 
 
 def _arrow_to_id(array: pa.Array, kind: str) -> tuple[np.ndarray, np.ndarray]:
     if pa.types.is_dictionary(array.type):
         array = array.dictionary_decode()
+    if kind == "integer" and array.null_count == 0:
+        # No nulls: Arrow's buffer as it is (a read-only view, like the float columns).
+        return (_int_ids(array.to_numpy(zero_copy_only=False), copy=False),
+                np.zeros(len(array), dtype=bool))
     missing = array.is_null().to_numpy(zero_copy_only=False)
     if kind == "integer":
         return _int_ids(array.fill_null(0).to_numpy(zero_copy_only=False)), missing
@@ -912,54 +928,148 @@ class CatalogSource:
             From :meth:`check`, or while reading: a CSV cell that is not a number (naming file,
             column, value and row), a file that turns out corrupt part-way.
         """
-        chunk_rows = _check_chunk_rows(chunk_rows)
+        chunk_rows = check_chunk_rows(chunk_rows)
         summary = self.check() if check else None
         for i, path in enumerate(self.files):
             info = summary.files[i] if summary is not None else self._summarise(path)
-            reader = {"parquet": _read_parquet, "fits": _read_fits, "csv": _read_csv}[
-                info.format]
-            yield from reader(path, info, chunk_rows)
+            yield from _READERS[info.format](path, info, chunk_rows, None, True)
+
+
+def iter_file_chunks(info: FileSummary, chunk_rows: int = 1_000_000,
+                     row_groups: Sequence[int] | None = None, *,
+                     use_threads: bool = True) -> Iterator[CatalogChunk]:
+    """Read one checked file (or some row groups of a Parquet file) in chunks.
+
+    The building block of :meth:`CatalogSource.iter_chunks`, for callers that share a
+    catalogue's files out among workers (the tally's Dask engine).
+
+    Parameters
+    ----------
+    info : FileSummary
+        The file's entry in :meth:`CatalogSource.check`'s result: its path, format and column
+        mapping.
+    chunk_rows : int
+        Largest chunk.
+    row_groups : sequence of int, optional
+        Parquet only: read just these row groups, given in increasing order. Chunks never
+        span two row groups that are not adjacent, and each chunk's ``row_offset`` is still
+        its first row's position in the whole file.
+    use_threads : bool
+        Parquet: let pyarrow decode on its own thread pool (default; read alone, 10^7 rows of
+        three columns took 0.12 s against 0.16 s without). False decodes on the calling
+        thread, which is faster when the caller's threads already keep every core busy (the
+        tally of 10^7 rows on 2 cores: 0.50 against 0.55 s). Other formats ignore it.
+
+    Returns
+    -------
+    iterator of CatalogChunk
+        The arguments are checked when this is called; the file is opened and read as the
+        iterator is consumed.
+
+    Raises
+    ------
+    InputError, InputTypeError
+        Bad arguments (at the call; a row group the file does not have when reading starts),
+        and everything reading raises (see :meth:`CatalogSource.iter_chunks`).
+    """
+    if not isinstance(info, FileSummary):
+        raise InputTypeError(
+            f"`info` must be a FileSummary (from CatalogSource.check()); got "
+            f"{type(info).__name__}"
+        )
+    chunk_rows = check_chunk_rows(chunk_rows)
+    if not isinstance(use_threads, bool | np.bool_):
+        raise InputTypeError(f"`use_threads` must be true or false; got {use_threads!r}")
+    groups = None
+    if row_groups is not None:
+        if isinstance(row_groups, str | bytes) or not isinstance(row_groups, Sequence) or any(
+                isinstance(g, bool) or not isinstance(g, int | np.integer) for g in row_groups):
+            raise InputTypeError(f"`row_groups` must be a sequence of integers; got {row_groups!r}")
+        if info.format != "parquet":
+            raise InputError(
+                f"`row_groups` applies to Parquet files only; '{info.path}' is a {info.format} "
+                "file"
+            )
+        groups = [int(g) for g in row_groups]
+        if any(b <= a for a, b in itertools.pairwise(groups)):
+            raise InputError(f"`row_groups` must increase strictly; got {groups}")
+    return _READERS[info.format](Path(info.path), info, chunk_rows, groups, bool(use_threads))
 
 
 def _make_chunk(path: Path, offset: int, arrays: dict[str, np.ndarray]) -> CatalogChunk:
     return CatalogChunk(source=os.fspath(path), row_offset=offset, **arrays)
 
 
-def _read_parquet(path: Path, info: FileSummary, chunk_rows: int) -> Iterator[CatalogChunk]:
+#: Read buffer of a Parquet column chunk. Without one (pyarrow's default, 0) each column
+#: chunk of a row group is read whole before it is decoded; with 1 MiB it is streamed.
+#: Measured with pyarrow 26, 10^7 rows in row groups of 10^6 (three columns), batches of
+#: 131 072 rows: Arrow's peak 51 → 20 MB, resident memory +145 → +110 MB, read time unchanged
+#: (0.13-0.16 s); 4 MiB gave 35 MB.
+_PARQUET_BUFFER_BYTES = 1 << 20
+
+
+def _row_group_runs(pf: pq.ParquetFile, path: Path, groups: list[int] | None
+                    ) -> list[tuple[list[int] | None, int]]:
+    """(row groups to read together, offset of their first row) for each run of adjacent
+    groups; one run of the whole file (None, 0) without ``groups``."""
+    if groups is None:
+        return [(None, 0)]
+    n_groups = pf.num_row_groups
+    bad = [g for g in groups if not 0 <= g < n_groups]
+    if bad:
+        raise InputError(
+            f"`row_groups` entries must be in [0, {n_groups}) for '{path}' ({n_groups} row "
+            f"groups); got {bad[0]}"
+        )
+    starts = np.concatenate(([0], np.cumsum(
+        [pf.metadata.row_group(i).num_rows for i in range(n_groups)], dtype=np.int64)))
+    runs: list[tuple[list[int] | None, int]] = []
+    for g in groups:
+        if runs and runs[-1][0][-1] == g - 1:
+            runs[-1][0].append(g)
+        else:
+            runs.append(([g], int(starts[g])))
+    return runs
+
+
+def _read_parquet(path: Path, info: FileSummary, chunk_rows: int,
+                  row_groups: list[int] | None, use_threads: bool) -> Iterator[CatalogChunk]:
     mapping = dict(info.mapping)
     kinds = dict(info.columns)
-    offset = 0
     # pre_buffer=False: with pyarrow's default (True) iter_batches reads ahead through the
     # whole file, and Arrow memory grows with the file (measured with pyarrow 26: 4.2 MB for
     # 10^5 rows, 11.9 MB for 3x10^5, four float64 columns, row groups of 5000); without it
     # memory stays at about one row group (0.53 MB for both).
-    pf = pq.ParquetFile(path, pre_buffer=False)
+    pf = pq.ParquetFile(path, pre_buffer=False, buffer_size=_PARQUET_BUFFER_BYTES)
     try:
-        batches = pf.iter_batches(batch_size=chunk_rows, columns=list(mapping.values()))
-        while True:
-            try:
-                batch = next(batches)
-            except StopIteration:
-                break
-            except (pa.ArrowException, OSError) as exc:
-                raise InputError(
-                    f"`paths`: '{path}' could not be read after row {offset} "
-                    f"({_first_line(exc)})"
-                ) from exc
-            arrays: dict[str, np.ndarray] = {}
-            for logical, name in mapping.items():
-                column = batch.column(name)
-                if logical == "id":
-                    arrays["id"], arrays["id_missing"] = _arrow_to_id(column, kinds[name])
-                else:
-                    arrays[logical] = _arrow_to_float(column)
-            yield _make_chunk(path, offset, arrays)
-            offset += batch.num_rows
+        for groups, offset in _row_group_runs(pf, path, row_groups):
+            batches = pf.iter_batches(batch_size=chunk_rows, row_groups=groups,
+                                      columns=list(mapping.values()), use_threads=use_threads)
+            while True:
+                try:
+                    batch = next(batches)
+                except StopIteration:
+                    break
+                except (pa.ArrowException, OSError) as exc:
+                    raise InputError(
+                        f"`paths`: '{path}' could not be read after row {offset} "
+                        f"({_first_line(exc)})"
+                    ) from exc
+                arrays: dict[str, np.ndarray] = {}
+                for logical, name in mapping.items():
+                    column = batch.column(name)
+                    if logical == "id":
+                        arrays["id"], arrays["id_missing"] = _arrow_to_id(column, kinds[name])
+                    else:
+                        arrays[logical] = _arrow_to_float(column)
+                yield _make_chunk(path, offset, arrays)
+                offset += batch.num_rows
     finally:
         pf.close()
 
 
-def _read_fits(path: Path, info: FileSummary, chunk_rows: int) -> Iterator[CatalogChunk]:
+def _read_fits(path: Path, info: FileSummary, chunk_rows: int, row_groups: None = None,
+               use_threads: bool = True) -> Iterator[CatalogChunk]:
     mapping = dict(info.mapping)
     kinds = dict(info.columns)
     gz = path.name.lower().endswith(".gz")
@@ -988,7 +1098,8 @@ def _read_fits(path: Path, info: FileSummary, chunk_rows: int) -> Iterator[Catal
         del data
 
 
-def _read_csv(path: Path, info: FileSummary, chunk_rows: int) -> Iterator[CatalogChunk]:
+def _read_csv(path: Path, info: FileSummary, chunk_rows: int, row_groups: None = None,
+              use_threads: bool = True) -> Iterator[CatalogChunk]:
     mapping = dict(info.mapping)
     kinds = dict(info.columns)
     dtype = {mapping["id"]: str} if "id" in mapping else None
@@ -1018,6 +1129,9 @@ def _read_csv(path: Path, info: FileSummary, chunk_rows: int) -> Iterator[Catalo
             offset += len(frame)
 
 
+_READERS = {"parquet": _read_parquet, "fits": _read_fits, "csv": _read_csv}
+
+
 # --------------------------------------------------------------------------------------------
 # Validation
 # --------------------------------------------------------------------------------------------
@@ -1045,7 +1159,11 @@ class SeenIds:
 
     Integer and float ids are kept as a few sorted numpy arrays ("runs"); a new chunk's ids
     become a run, and runs of similar size are merged, so the total work is O(N log N) and a
-    lookup is a binary search in each of O(log N) runs.
+    lookup is a binary search in each of O(log N) runs. Ids that increase through the file
+    (the usual case) need no sort and no search: runs whose range misses the chunk's are
+    skipped, and runs in order are joined without sorting. Measured in chunks of 131 072 ids,
+    10^7 ids: 12 ns per id increasing, 19 ns shuffled within chunks, 190 ns shuffled across the
+    whole catalogue.
 
     Memory, per distinct kept id: numeric ids 8 bytes (8 GB for 10^9 sources) plus a transient
     buffer while the largest runs merge (measured peak ≈ 15 bytes per id over 2×10^5 ids in
@@ -1069,8 +1187,19 @@ class SeenIds:
         return int(sum(r.nbytes for r in self._runs))
 
     def _contains(self, values: np.ndarray) -> np.ndarray:
+        """Which of ``values`` (sorted, distinct) are in a run.
+
+        Sorted queries make ``searchsorted`` walk each run in order rather than jump about
+        it (with the sort below, ``keep_first`` of 10^7 ids shuffled across the catalogue
+        went from 1.2 to 0.19 µs per id); runs whose range misses ``values``' range are
+        skipped (ids that grow through the file then cost no search at all).
+        """
         found = np.zeros(values.shape, dtype=bool)
+        lo, hi = values[0], values[-1]
         for run in self._runs:
+            # NaN ends (float ids) fail both tests, so such a run is searched: never wrong.
+            if run[-1] < lo or run[0] > hi:
+                continue
             idx = np.searchsorted(run, values)
             idx[idx == run.size] = run.size - 1
             found |= run[idx] == values
@@ -1102,28 +1231,50 @@ class SeenIds:
             )
         if text:
             seen = self._text
-            first = np.empty(ids.size, dtype=bool)
-            for i, value in enumerate(ids.tolist()):
-                first[i] = value not in seen
-                seen.add(value)
-            return first
-        unique, first_index = np.unique(ids, return_index=True)
-        first = np.zeros(ids.size, dtype=bool)
-        first[first_index] = True
+            # set.add returns None: `not seen.add(v)` adds v and is True (a first occurrence).
+            return np.array([v not in seen and not seen.add(v) for v in ids.tolist()],
+                            dtype=bool)
+        # Three cases, cheapest first. np.unique(return_index=True) needs a stable argsort
+        # (measured 95 ns per id in chunks of 131 072) where a plain sort takes 6.
+        increasing = ids.size == 1 or bool(np.all(ids[1:] > ids[:-1]))
+        first_index = None
+        if increasing:
+            # The usual order of ids in a file: distinct and already sorted.
+            unique = ids.copy()
+        else:
+            unique = np.sort(ids)
+            # Repeats within the chunk, or NaN (which np.unique counts once): the general way.
+            if bool(np.any(unique[1:] == unique[:-1])) or (
+                    unique.dtype.kind == "f" and np.isnan(unique[-1])):
+                unique, first_index = np.unique(ids, return_index=True)
+        if first_index is None:
+            first = np.ones(ids.size, dtype=bool)
+        else:
+            first = np.zeros(ids.size, dtype=bool)
+            first[first_index] = True
         if self._runs:
-            first &= ~self._contains(ids)
-            unique = unique[~self._contains(unique)]
+            found = self._contains(unique)
+            if found.any():
+                if first_index is not None:
+                    first[first_index[found]] = False
+                elif increasing:
+                    first = ~found
+                else:  # distinct ids: each one found is not a first occurrence
+                    first = ~np.isin(ids, unique[found])
+                unique = unique[~found]
         if unique.size:
             self._runs.append(unique)
             # Merge runs of comparable size (a binary-counter schedule): O(log N) runs.
             while len(self._runs) > 1 and self._runs[-2].size <= 2 * self._runs[-1].size:
                 b = self._runs.pop()
                 a = self._runs.pop()
+                in_order = bool(a[-1] < b[0])
                 merged = np.concatenate([a, b])
                 del a, b  # the two runs are freed before sorting, not after
-                # numpy's stable sort is timsort: two sorted runs merge in linear time,
-                # in place with a buffer of half the array.
-                merged.sort(kind="stable")
+                if not in_order:
+                    # numpy's stable sort is timsort: two sorted runs merge in linear time,
+                    # in place with a buffer of half the array.
+                    merged.sort(kind="stable")
                 self._runs.append(merged)
         return first
 
@@ -1132,8 +1283,149 @@ def _empty_counts() -> dict[str, int]:
     return dict.fromkeys(REJECTION_REASONS, 0)
 
 
+def _clean_limit(sentinels: Sequence[Any]) -> float:
+    """A bound below which ``|mag|`` is finite and matches no sentinel.
+
+    A value flagged by the exact test has ``|mag - s| <= 1e-6 |s|``, so ``|mag| >= (1 - 1e-6)
+    |s|``; below ``(1 - 3e-6) min |s|`` nothing can match, with a factor-of-three margin that
+    covers float64 rounding (2**-53) and a float32 tolerance (``_SENTINEL_RTOL * abs(s)`` for a
+    numpy float32 sentinel rounds to float32, relative error 2**-24). NaN compares false, so
+    the same test rejects NaN and inf. Unusual sentinels (0, non-finite, not numbers) return 0,
+    which sends every row to the exact test: slower, never different.
+    """
+    try:
+        values = [abs(float(s)) for s in sentinels]
+    except (TypeError, ValueError):
+        return 0.0
+    if not values:
+        return float("inf")
+    if not all(np.isfinite(values)):
+        return 0.0
+    return min(values) * (1.0 - 3.0 * _SENTINEL_RTOL)
+
+
+def _rule_reasons(ra: np.ndarray, dec: np.ndarray, mag: np.ndarray, z: np.ndarray | None,
+                  rules: ValidationRules) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Rules 1-5 row by row: (reason index or -1, normalised RA, wrapped), exactly as documented.
+
+    Run only on the rows the quick test in :func:`_kept_by_rules` could not clear.
+    """
+    reason = np.full(ra.shape[0], -1, dtype=np.int8)  # index into REJECTION_REASONS
+
+    def reject(code: int, failing: np.ndarray) -> None:
+        reason[(reason < 0) & failing] = code
+
+    with np.errstate(invalid="ignore"):
+        finite = np.isfinite(ra) & np.isfinite(dec)
+        reject(0, ~finite)
+        reject(1, finite & ((dec < -90.0) | (dec > 90.0)))
+        wrapped = finite & (ra >= -180.0) & (ra < 0.0)
+        ra_norm = np.where(wrapped, ra + 360.0, ra)
+        # A tiny negative RA (-1e-14) + 360 rounds to exactly 360.0 in float64: that is RA 0.
+        ra_norm[wrapped & (ra_norm >= 360.0)] = 0.0
+        reject(2, finite & ((ra_norm < 0.0) | (ra_norm >= 360.0)))
+        bad_mag = ~np.isfinite(mag)
+        for s in rules.sentinels:
+            bad_mag |= np.abs(mag - s) <= _SENTINEL_RTOL * abs(s)
+        reject(3, bad_mag)
+        if z is not None:
+            bad_z = z < 0.0
+            if rules.require_redshift:
+                bad_z |= ~np.isfinite(z)
+            reject(4, bad_z)
+    return reason, ra_norm, wrapped
+
+
+def _kept_by_rules(chunk: CatalogChunk, rules: ValidationRules
+                   ) -> tuple[np.ndarray | None, np.ndarray, np.ndarray, Any]:
+    """Rules 1-5 for a whole chunk: (keep mask or None when every row passes, normalised RA,
+    rows rejected per reason, and None or (wrapped, where): the wrapped flags of the rows
+    ``where`` selects, the only rows that can be wrapped).
+
+    A quick test in a few passes clears the rows that certainly pass (Dec within ±90, RA in
+    [0, 360), ``|mag|`` below :func:`_clean_limit`, redshift not negative); comparisons with
+    NaN are false, so it also clears only finite values. The rest (usually few) go through
+    :func:`_rule_reasons`, which decides every row exactly as the documented rules do.
+    """
+    ra, dec, mag, z = chunk.ra, chunk.dec, chunk.mag, chunk.redshift
+    n = chunk.n_rows
+    with np.errstate(invalid="ignore"):
+        scratch = np.abs(dec)
+        ok = np.less_equal(scratch, 90.0)
+        test = np.greater_equal(ra, 0.0)
+        ok &= test
+        ok &= np.less(ra, 360.0, out=test)
+        ok &= np.less(np.abs(mag, out=scratch) if scratch.dtype == mag.dtype else np.abs(mag),
+                      _clean_limit(rules.sentinels), out=test)
+        if z is not None:
+            if rules.require_redshift:
+                ok &= np.greater_equal(z, 0.0, out=test)
+                ok &= np.less(z, np.inf, out=test)
+            else:
+                np.less(z, 0.0, out=test)
+                ok &= np.logical_not(test, out=test)
+    del scratch, test
+    # RA keeps the dtype the rules give it (an integer RA becomes float, as `ra + 360.0` does).
+    norm_type = np.result_type(ra.dtype, 360.0)
+    ra_norm = ra if ra.dtype == norm_type else ra.astype(norm_type)
+    counts = np.zeros(len(REJECTION_REASONS), dtype=np.int64)
+    suspect = np.flatnonzero(~ok)
+    if suspect.size == 0:
+        return None, ra_norm, counts, None
+    # Many suspects: decide every row exactly (the cleared ones pass again) without gathers.
+    where: np.ndarray | slice = suspect if 2 * suspect.size <= n else slice(None)
+
+    def part(values: np.ndarray | None) -> np.ndarray | None:
+        return None if values is None else values[where]
+
+    reason, ra_part, wrapped = _rule_reasons(part(ra), part(dec), part(mag), part(z), rules)
+    kept = reason < 0
+    ok[where] = kept
+    if wrapped.any():
+        ra_norm = ra_norm.copy()
+        ra_norm[where] = ra_part
+    counts += np.bincount(reason[~kept], minlength=len(REJECTION_REASONS))
+    return ok, ra_norm, counts, (wrapped, where)
+
+
+def _validate(chunk: CatalogChunk, rules: ValidationRules, seen_ids: SeenIds | None
+              ) -> tuple[np.ndarray | None, np.ndarray, dict[str, int], dict[str, int]]:
+    """Every rule for one chunk: (keep mask or None when every row is kept, normalised RA
+    (every row; meaningful where kept), rows rejected per reason, notes)."""
+    keep, ra_norm, counts, wrap_info = _kept_by_rules(chunk, rules)
+    notes = {NOTE_RA_WRAPPED: 0}
+    if chunk.id is not None:
+        missing = chunk.id_missing
+        if missing is not None and not missing.any():
+            missing = None
+        if keep is None and missing is None:
+            candidates = None  # every row: no gather
+            first = seen_ids.keep_first(chunk.id)
+        else:
+            mask = np.ones(chunk.n_rows, dtype=bool) if keep is None else keep
+            candidates = np.flatnonzero(mask if missing is None else mask & ~missing)
+            first = seen_ids.keep_first(chunk.id[candidates])
+        n_duplicates = first.size - int(np.count_nonzero(first))
+        if n_duplicates:
+            if keep is None:
+                keep = np.ones(chunk.n_rows, dtype=bool)
+            repeated = ~first
+            keep[repeated if candidates is None else candidates[repeated]] = False
+            counts[REJECTION_REASONS.index("duplicate_id")] += n_duplicates
+        n_missing = 0
+        if missing is not None:
+            n_missing = int(np.count_nonzero(missing if keep is None else keep & missing))
+        notes[NOTE_ID_MISSING] = n_missing
+    if wrap_info is not None:
+        wrapped, where = wrap_info
+        # Kept by rules 1-5 and not a duplicate: `keep` at those rows after the id check.
+        notes[NOTE_RA_WRAPPED] = int(np.count_nonzero(wrapped & keep[where]))
+    rejected = {r: int(c) for r, c in zip(REJECTION_REASONS, counts, strict=True)}
+    return keep, ra_norm, rejected, notes
+
+
 def validate_chunk(chunk: CatalogChunk, rules: ValidationRules,
-                   seen_ids: SeenIds | None = None
+                   seen_ids: SeenIds | None = None, *, copy: bool = True
                    ) -> tuple[ValidChunk, dict[str, int], dict[str, int]]:
     """Keep or reject every row of a chunk, with a named reason.
 
@@ -1144,6 +1436,11 @@ def validate_chunk(chunk: CatalogChunk, rules: ValidationRules,
     seen_ids : SeenIds, optional
         Required when the chunk carries ids: the same registry must be passed for every chunk
         of the catalogue so duplicates are found across chunks and files (it is updated).
+    copy : bool
+        True (default): the kept rows' arrays are new arrays. False: when every row of the
+        chunk is kept and its RA needs no normalising, they may be the chunk's own arrays
+        (views, read-only if those are), which saves a copy per column; for callers that
+        only read them, like the tally.
 
     Returns
     -------
@@ -1159,6 +1456,11 @@ def validate_chunk(chunk: CatalogChunk, rules: ValidationRules,
     -----
     ``len(valid) + sum(rejected.values()) == len(chunk)`` always. The caller's arrays are not
     modified.
+
+    Most rows pass every rule; a quick test (Dec within ±90, RA in [0, 360), ``|mag|``
+    clear of every sentinel, redshift not negative: about ten passes over the columns) clears
+    them, and only the others are taken through the rules one by one, in the documented order.
+    The result is the same as applying the rules to every row.
     """
     if not isinstance(chunk, CatalogChunk):
         raise InputTypeError(f"`chunk` must be a CatalogChunk; got {type(chunk).__name__}")
@@ -1171,57 +1473,28 @@ def validate_chunk(chunk: CatalogChunk, rules: ValidationRules,
         )
     if rules.require_redshift and chunk.redshift is None:
         raise InputError("`rules.require_redshift` is true but the chunk has no redshift")
+    if not isinstance(copy, bool | np.bool_):
+        raise InputTypeError(f"`copy` must be true or false; got {copy!r}")
 
-    n = chunk.n_rows
-    reason = np.full(n, -1, dtype=np.int8)  # index into REJECTION_REASONS; -1 = kept
+    keep, ra_norm, rejected, notes = _validate(chunk, rules, seen_ids)
+    if keep is None:
+        def pick(values: np.ndarray | None) -> np.ndarray | None:
+            if values is None:
+                return None
+            return values.copy() if copy else values
 
-    def reject(code: int, failing: np.ndarray) -> None:
-        reason[(reason < 0) & failing] = code
+        row_in_file = np.arange(chunk.row_offset, chunk.row_offset + chunk.n_rows,
+                                dtype=np.int64)
+        ra = ra_norm.copy() if copy and ra_norm is chunk.ra else ra_norm
+    else:
+        def pick(values: np.ndarray | None) -> np.ndarray | None:
+            return None if values is None else values[keep]
 
-    ra, dec, mag = chunk.ra, chunk.dec, chunk.mag
-    with np.errstate(invalid="ignore"):
-        finite = np.isfinite(ra) & np.isfinite(dec)
-        reject(0, ~finite)
-        reject(1, finite & ((dec < -90.0) | (dec > 90.0)))
-        wrapped = finite & (ra >= -180.0) & (ra < 0.0)
-        ra_norm = np.where(wrapped, ra + 360.0, ra)
-        # A tiny negative RA (-1e-14) + 360 rounds to exactly 360.0 in float64: that is RA 0.
-        ra_norm[wrapped & (ra_norm >= 360.0)] = 0.0
-        reject(2, finite & ((ra_norm < 0.0) | (ra_norm >= 360.0)))
-        bad_mag = ~np.isfinite(mag)
-        for s in rules.sentinels:
-            bad_mag |= np.abs(mag - s) <= _SENTINEL_RTOL * abs(s)
-        reject(3, bad_mag)
-        if chunk.redshift is not None:
-            z = chunk.redshift
-            bad_z = z < 0.0
-            if rules.require_redshift:
-                bad_z |= ~np.isfinite(z)
-            reject(4, bad_z)
-
-    notes = {NOTE_RA_WRAPPED: 0}
-    keep = reason < 0
-    if chunk.id is not None:
-        missing = (chunk.id_missing if chunk.id_missing is not None
-                   else np.zeros(n, dtype=bool))
-        candidates = np.flatnonzero(keep & ~missing)
-        first = seen_ids.keep_first(chunk.id[candidates])
-        reason[candidates[~first]] = 5
-        keep = reason < 0
-        notes[NOTE_ID_MISSING] = int(np.count_nonzero(keep & missing))
-    notes[NOTE_RA_WRAPPED] = int(np.count_nonzero(keep & wrapped))
-
-    counts = np.bincount(reason[reason >= 0], minlength=len(REJECTION_REASONS))
-    rejected = {r: int(c) for r, c in zip(REJECTION_REASONS, counts, strict=True)}
-
-    def pick(values: np.ndarray | None) -> np.ndarray | None:
-        return None if values is None else values[keep]
-
+        row_in_file = chunk.row_offset + np.flatnonzero(keep).astype(np.int64)
+        ra = ra_norm[keep]
     valid = ValidChunk(
-        source=chunk.source,
-        row_in_file=chunk.row_offset + np.flatnonzero(keep).astype(np.int64),
-        ra=ra_norm[keep], dec=dec[keep], mag=mag[keep],
-        redshift=pick(chunk.redshift), mag_error=pick(chunk.mag_error),
+        source=chunk.source, row_in_file=row_in_file, ra=ra, dec=pick(chunk.dec),
+        mag=pick(chunk.mag), redshift=pick(chunk.redshift), mag_error=pick(chunk.mag_error),
         stellar_mass=pick(chunk.stellar_mass), id=pick(chunk.id), weight=pick(chunk.weight),
     )
     return valid, rejected, notes

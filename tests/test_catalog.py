@@ -42,6 +42,8 @@ from countscale.catalog import (
     LedgerError,
     SeenIds,
     ValidationRules,
+    check_chunk_rows,
+    iter_file_chunks,
     iter_valid_chunks,
     require_rows,
     split_by_footprint,
@@ -923,3 +925,257 @@ def test_no_stray_warnings_on_clean_input(tmp_path):
         warnings.simplefilter("error")
         _, ledger = read_everything(source_for(paths), 8)
     assert ledger.rows_read == 90
+
+
+# --------------------------------------------------------------------------------------------
+# One file at a time: iter_file_chunks and check_chunk_rows
+# --------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("name", ["cat.parquet", "cat.fits", "cat.csv"])
+def test_iter_file_chunks_reads_what_the_writer_wrote(tmp_path, name):
+    frame = clean_table(700, rng=71)
+    path = write(frame, tmp_path / name, row_group_size=128)
+    info = source_for([path]).check().files[0]
+    for use_threads in (True, False):
+        chunks = list(iter_file_chunks(info, 100, use_threads=use_threads))
+        assert [c.row_offset for c in chunks] == list(range(0, 700, 100))
+        assert all(c.source == path for c in chunks)
+        np.testing.assert_array_equal(np.concatenate([c.ra for c in chunks]), frame.RA)
+        np.testing.assert_array_equal(np.concatenate([c.mag for c in chunks]), frame.MAG_R)
+        np.testing.assert_array_equal(np.concatenate([c.id for c in chunks]), frame.OBJID)
+
+
+def test_iter_file_chunks_reads_chosen_row_groups_at_their_file_rows(tmp_path):
+    frame = clean_table(1000, rng=72)
+    path = write(frame, tmp_path / "cat.parquet", row_group_size=100)  # 10 row groups
+    info = source_for([path]).check().files[0]
+    chunks = list(iter_file_chunks(info, 64, row_groups=[1, 2, 5, 9]))
+    rows = np.concatenate([c.row_offset + np.arange(c.n_rows) for c in chunks])
+    expected = np.r_[100:300, 500:600, 900:1000]
+    np.testing.assert_array_equal(rows, expected)
+    np.testing.assert_array_equal(np.concatenate([c.ra for c in chunks]), frame.RA[expected])
+    np.testing.assert_array_equal(np.concatenate([c.id for c in chunks]), expected)
+    # A chunk never joins row groups that are not neighbours (its rows would not be
+    # consecutive in the file).
+    for c in chunks:
+        last = c.row_offset + c.n_rows - 1
+        assert (c.row_offset < 300) == (last < 300) and (c.row_offset < 600) == (last < 600)
+    assert list(iter_file_chunks(info, 64, row_groups=[])) == []
+
+
+@pytest.mark.parametrize(("target", "kwargs", "error", "message"), [
+    ("parquet", {"info": "cat.parquet"}, InputTypeError,
+     r"^`info` must be a FileSummary \(from CatalogSource.check\(\)\); got str$"),
+    ("parquet", {"chunk_rows": 0}, InputError, r"^`chunk_rows` must be >= 1; got 0$"),
+    ("parquet", {"use_threads": "yes"}, InputTypeError,
+     r"^`use_threads` must be true or false; got 'yes'$"),
+    ("parquet", {"row_groups": "12"}, InputTypeError,
+     r"^`row_groups` must be a sequence of integers; got '12'$"),
+    ("parquet", {"row_groups": [1.5]}, InputTypeError,
+     r"^`row_groups` must be a sequence of integers; got \[1.5\]$"),
+    ("parquet", {"row_groups": [True]}, InputTypeError,
+     r"^`row_groups` must be a sequence of integers; got \[True\]$"),
+    ("parquet", {"row_groups": [2, 1]}, InputError,
+     r"^`row_groups` must increase strictly; got \[2, 1\]$"),
+    ("parquet", {"row_groups": [0, 0]}, InputError,
+     r"^`row_groups` must increase strictly; got \[0, 0\]$"),
+    ("fits", {"row_groups": [0]}, InputError,
+     r"^`row_groups` applies to Parquet files only; '.*cat\.fits' is a fits file$"),
+])
+def test_iter_file_chunks_bad_arguments(tmp_path, target, kwargs, error, message):
+    path = write(clean_table(50, rng=73), tmp_path / f"cat.{target}", row_group_size=10)
+    arguments = {"info": source_for([path]).check().files[0], "chunk_rows": 10}
+    arguments.update(kwargs)
+    with pytest.raises(error, match=message):
+        iter_file_chunks(**arguments)  # refused at the call, before any reading
+
+
+def test_iter_file_chunks_row_group_the_file_does_not_have(tmp_path):
+    path = write(clean_table(50, rng=74), tmp_path / "cat.parquet", row_group_size=10)
+    chunks = iter_file_chunks(source_for([path]).check().files[0], 10, row_groups=[3, 5])
+    with pytest.raises(InputError, match=r"^`row_groups` entries must be in \[0, 5\) for "
+                                         r"'.*cat\.parquet' \(5 row groups\); got 5$"):
+        next(chunks)
+
+
+@pytest.mark.parametrize(("chunk_rows", "error", "message"), [
+    (0, InputError, r"^`chunk_rows` must be >= 1; got 0$"),
+    (-3, InputError, r"^`chunk_rows` must be >= 1; got -3$"),
+    (2.5, InputTypeError, r"^`chunk_rows` must be an integer; got 2.5$"),
+    ("10", InputTypeError, r"^`chunk_rows` must be an integer; got '10'$"),
+    (True, InputTypeError, r"^`chunk_rows` must be an integer; got True$"),
+])
+def test_check_chunk_rows(chunk_rows, error, message):
+    value = check_chunk_rows(np.int64(7))
+    assert value == 7 and type(value) is int
+    with pytest.raises(error, match=message):
+        check_chunk_rows(chunk_rows)
+
+
+# --------------------------------------------------------------------------------------------
+# validate_chunk: copies, and the quick test's boundaries against the documented rules
+# --------------------------------------------------------------------------------------------
+
+
+def _columns_of(valid):
+    return {k: getattr(valid, k) for k in ("row_in_file", "ra", "dec", "mag", "redshift", "id")
+            if getattr(valid, k) is not None}
+
+
+def test_validate_chunk_copy_false_shares_memory_only_when_every_row_is_kept():
+    rng = np.random.default_rng(75)
+    ra, dec, mag, z = (rng.uniform(0, 360, 50), rng.uniform(-80, 80, 50),
+                       rng.uniform(18, 25, 50), rng.uniform(0, 2, 50))
+    clean = CatalogChunk("mem", 10, ra=ra, dec=dec, mag=mag, redshift=z)
+    copied, rejected, _ = validate_chunk(clean, ValidationRules())
+    shared, rejected_shared, _ = validate_chunk(clean, ValidationRules(), copy=False)
+    assert rejected == rejected_shared and sum(rejected.values()) == 0
+    for name, values in _columns_of(copied).items():
+        np.testing.assert_array_equal(values, _columns_of(shared)[name])
+    for name in ("ra", "dec", "mag", "redshift"):
+        assert not np.shares_memory(getattr(copied, name), getattr(clean, name)), name
+        assert np.shares_memory(getattr(shared, name), getattr(clean, name)), name
+    np.testing.assert_array_equal(shared.row_in_file, np.arange(10, 60))
+    # One rejected row, or one RA to wrap: the kept rows are new arrays either way.
+    for bad in ({"mag": np.r_[mag[:-1], 99.0]}, {"ra": np.r_[-5.0, ra[1:]]}):
+        chunk = CatalogChunk("mem", 0, **{"ra": ra, "dec": dec, "mag": mag, **bad})
+        a, ra_, na = validate_chunk(chunk, ValidationRules())
+        b, rb, nb = validate_chunk(chunk, ValidationRules(), copy=False)
+        assert (ra_, na) == (rb, nb)
+        for name, values in _columns_of(a).items():
+            np.testing.assert_array_equal(values, _columns_of(b)[name])
+        assert not np.shares_memory(b.ra, chunk.ra)
+    with pytest.raises(InputTypeError, match=r"^`copy` must be true or false; got 'no'$"):
+        validate_chunk(clean, ValidationRules(), copy="no")
+
+
+def documented_fate(ra, dec, mag, z, sentinels, require_redshift):
+    """Rejection reason (or None) and normalised RA of one row, from the module docstring's
+    rules, in plain Python floats (IEEE double, as numpy's float64)."""
+    if not (math.isfinite(ra) and math.isfinite(dec)):
+        return "ra_dec_not_finite", ra
+    if dec < -90.0 or dec > 90.0:
+        return "dec_out_of_range", ra
+    ra_norm = ra + 360.0 if -180.0 <= ra < 0.0 else ra
+    if -180.0 <= ra < 0.0 and ra_norm >= 360.0:
+        ra_norm = 0.0  # the documented "tiny negative RA is RA 0"
+    if not 0.0 <= ra_norm < 360.0:
+        return "ra_out_of_range", ra_norm
+    if not math.isfinite(mag) or any(abs(mag - s) <= 1e-6 * abs(s) for s in sentinels):
+        return "mag_missing", ra_norm
+    if z is not None and (z < 0.0 or (require_redshift and not math.isfinite(z))):
+        return "redshift_invalid", ra_norm
+    return None, ra_norm
+
+
+def _around(x):
+    return [x, float(np.nextafter(x, -np.inf)), float(np.nextafter(x, np.inf))]
+
+
+# Values on and just either side of every boundary of the rules and of the quick test
+# (|mag| < (1 - 3e-6) min |sentinel|), plus the special floats.
+RA_EDGES = [*_around(0.0), -0.0, *_around(360.0), *_around(-180.0), -1e-14, 400.0, 123.4,
+            math.nan, math.inf, -math.inf]
+DEC_EDGES = [*_around(90.0), *_around(-90.0), 0.0, -0.0, 45.0, math.nan, -math.inf]
+MAG_EDGES = [x for s in (99.0, -99.0, 99.99, 30.0) for k in (1.0, 2.0, 3.0, 4.0)
+             for x in (*_around(s * (1 - k * 1e-6)), *_around(s * (1 + k * 1e-6)))] + [
+    99.0, -99.0, 99.99, float(np.float32(99.99)), 20.0, 0.0, -0.0, math.nan, math.inf]
+Z_EDGES = [*_around(0.0), -0.0, 1.0, math.nan, math.inf, -math.inf]
+
+
+# ValidationRules takes any floats (CatalogSource refuses non-finite ones): an infinite
+# sentinel flags every finite magnitude (|mag - inf| <= 1e-6 * inf), a NaN one none.
+SENTINEL_SETS = [DEFAULT_SENTINELS, (30.0,), (), (0.0,), (99.0, 1e-300), (math.inf,),
+                 (math.nan, 99.0)]
+
+
+@pytest.mark.parametrize("sentinels", SENTINEL_SETS)
+@pytest.mark.parametrize("require_redshift", [False, True])
+@pytest.mark.parametrize("n_clean", [0, 2000])
+def test_every_boundary_value_follows_the_documented_rules(sentinels, require_redshift,
+                                                           n_clean):
+    # Each boundary value of one column, the other columns clean, all in one chunk; with
+    # n_clean clean rows too, the rows the quick test does not clear are few and go through
+    # the rules on their own (without, most rows are suspect and all take the rules).
+    clean = (123.4, 45.0, 20.0, 1.0)
+    rows = [tuple(v if i == k else clean[i] for i in range(4))
+            for k, values in enumerate((RA_EDGES, DEC_EDGES, MAG_EDGES, Z_EDGES))
+            for v in values] + [clean] * n_clean
+    ra, dec, mag, z = (np.array(c, dtype=np.float64) for c in zip(*rows, strict=True))
+    chunk = CatalogChunk("mem", 0, ra=ra, dec=dec, mag=mag, redshift=z)
+    rules = ValidationRules(sentinels=sentinels, require_redshift=require_redshift)
+    fates = [documented_fate(*row, sentinels, require_redshift) for row in rows]
+    for copy in (True, False):
+        valid, rejected, _ = validate_chunk(chunk, rules, copy=copy)
+        kept = [i for i, (reason, _) in enumerate(fates) if reason is None]
+        np.testing.assert_array_equal(valid.row_in_file, kept)
+        assert valid.ra.tolist() == [fates[i][1] for i in kept]
+        for reason in REJECTION_REASONS:
+            assert rejected[reason] == sum(1 for r, _ in fates if r == reason), reason
+
+
+@settings(max_examples=150, deadline=None)
+@given(rows=st.lists(st.tuples(st.sampled_from(RA_EDGES), st.sampled_from(DEC_EDGES),
+                               st.sampled_from(MAG_EDGES), st.sampled_from(Z_EDGES)),
+                     min_size=1, max_size=60).map(lambda r: r + [(1.0, 2.0, 20.0, 0.5)] * 80),
+       sentinels=st.sampled_from(SENTINEL_SETS),
+       require_redshift=st.booleans(), with_z=st.booleans())
+def test_mixed_boundary_rows_follow_the_documented_rules(rows, sentinels, require_redshift,
+                                                         with_z):
+    require_redshift = require_redshift and with_z
+    ra, dec, mag, z = (np.array(c, dtype=np.float64) for c in zip(*rows, strict=True))
+    chunk = CatalogChunk("mem", 0, ra=ra, dec=dec, mag=mag, redshift=z if with_z else None)
+    rules = ValidationRules(sentinels=sentinels, require_redshift=require_redshift)
+    fates = [documented_fate(*row[:3], row[3] if with_z else None, sentinels,
+                             require_redshift) for row in rows]
+    expected = dict.fromkeys(REJECTION_REASONS, 0)
+    for reason, _ in fates:
+        if reason is not None:
+            expected[reason] += 1
+    kept_ra = [r for reason, r in fates if reason is None]
+    n_wrapped = sum(1 for (reason, _), row in zip(fates, rows, strict=True)
+                    if reason is None and row[0] < 0.0)
+    for copy in (True, False):
+        valid, rejected, notes = validate_chunk(chunk, rules, copy=copy)
+        assert rejected == expected
+        assert valid.ra.tolist() == kept_ra
+        assert notes[NOTE_RA_WRAPPED] == n_wrapped
+
+
+@settings(max_examples=60, deadline=None)
+@given(chunks=st.lists(st.one_of(
+    st.lists(st.integers(-10**12, 10**12), unique=True).map(sorted),  # increasing (usual)
+    st.lists(st.integers(-10**12, 10**12), unique=True),              # distinct, any order
+    st.lists(st.integers(-30, 30)),                                   # repeats in a chunk
+), max_size=10))
+def test_seen_ids_every_path_keeps_exactly_the_first_occurrences(chunks):
+    seen, reference = SeenIds(), set()
+    for values in chunks:
+        expected = []
+        for v in values:
+            expected.append(v not in reference)
+            reference.add(v)
+        got = seen.keep_first(np.array(values, dtype=np.int64))
+        np.testing.assert_array_equal(got, np.array(expected, dtype=bool))
+    assert len(seen) == len(reference)
+    assert seen.nbytes == 8 * len(reference)
+
+
+@settings(max_examples=40, deadline=None)
+@given(chunks=st.lists(st.one_of(
+    st.lists(st.sampled_from([0.0, -0.0, 1.5, -2.25, 1e300, 7.0])),
+    st.lists(st.text(alphabet="ab", max_size=3)),
+), max_size=8), text=st.booleans())
+def test_seen_ids_float_and_text_ids_keep_first_occurrences(chunks, text):
+    # Float ids compare as numbers (-0.0 is 0.0); text ids as strings.
+    chunks = [c for c in chunks if all(isinstance(v, str) == text for v in c)]
+    seen, reference = SeenIds(), set()
+    for values in chunks:
+        expected = []
+        for v in values:
+            expected.append(v not in reference)
+            reference.add(v)
+        ids = np.array(values, dtype=object if text else np.float64)
+        np.testing.assert_array_equal(seen.keep_first(ids), np.array(expected, dtype=bool))
+    assert len(seen) == len(reference)

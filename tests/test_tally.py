@@ -149,6 +149,37 @@ def test_region_areas_sum_to_the_closed_form_box_area(tmp_path):
     assert result.footprint_summary["area_deg2"] == result.area_deg2
 
 
+def test_regions_finer_than_the_shortcut_table(tmp_path):
+    # Regions of order 12, finer than the inside/outside table (order 10): the region comes
+    # from the pixel at order 12. Reference: healpy pixels and searchsorted bins
+    # (oracle_histogram), and Regions.label for the per-source column.
+    df = frame(20_000, 26)
+    path = write(df, tmp_path / "cat.parquet")
+    fp = box(max_order=13)
+    regions = fp.split(6, order=12)
+    edges = [18.0, 19.5, 21.0, 22.5, 24.0]
+    result = tally(source(path), fp, regions=regions, mag_bins=edges, columns=("region",))
+    ra, dec, mag = df.RA.to_numpy(), df.DEC.to_numpy(), df.MAG.to_numpy()
+    inside = fp.contains(ra, dec)
+    np.testing.assert_array_equal(
+        result.region_counts,
+        oracle_histogram(ra[inside], dec[inside], mag[inside], regions, np.array(edges)))
+    np.testing.assert_array_equal(result.columns["region"], regions.label(ra[inside],
+                                                                          dec[inside]))
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_footprint_summary_and_area_are_the_footprints_own(tmp_path, threads):
+    # With threads > 1 the summary is worked out beside the counting; it must be the very
+    # dict (and area) the footprint gives.
+    path = write(frame(3000, 27), tmp_path / "cat.parquet")
+    fp = box(max_order=14) - Footprint.circles([155.0], [5.0], [1800.0], max_order=14)
+    result = tally(source(path), fp, n_regions=3, threads=threads)
+    assert result.footprint_summary == fp.summary()
+    assert result.area_deg2 == fp.area_deg2
+    assert result.area_uncertainty_deg2 == fp.area_uncertainty_deg2 > 0
+
+
 def test_nest_parent_is_a_two_bit_shift_per_order():
     # The tally takes regions and the shortcut table from one pixel per source; healpy's NEST
     # scheme (Górski et al. 2005, §4) makes a cell's parent its index >> 2 per order.
