@@ -45,6 +45,7 @@ from __future__ import annotations
 
 import difflib
 from dataclasses import dataclass
+from functools import cached_property
 from pathlib import Path
 
 import healpy as hp
@@ -416,7 +417,8 @@ class Footprint:
     """Sky coverage as a step function over HEALPix NEST cells at `max_order`.
 
     Build footprints with the class methods (`cap`, `box`, `read_healpix_map`, ...) rather
-    than this constructor. See the module docstring for the representation.
+    than this constructor. See the module docstring for the representation. The arrays are
+    read-only, so measures (area, cells) are computed once and cached.
     """
 
     max_order: int
@@ -922,7 +924,7 @@ class Footprint:
     def _lengths(self):
         return np.diff(self.edges).astype(float)
 
-    @property
+    @cached_property
     def area_sr(self):
         """Covered area in steradians (partial cells count for their covered fraction)."""
         if len(self.weight) == 0:
@@ -941,7 +943,7 @@ class Footprint:
         """Covered fraction of the whole sky."""
         return self.area_sr / (4.0 * np.pi)
 
-    @property
+    @cached_property
     def area_uncertainty_deg2(self):
         """Standard error of the area from how well the boundary cells are known."""
         if self.sigma is None:
@@ -949,7 +951,7 @@ class Footprint:
         var = float(np.dot(self._lengths, self.sigma.astype(float) ** 2))
         return np.sqrt(var) * cell_area_sr(self.max_order) * _SR_TO_DEG2
 
-    @property
+    @cached_property
     def n_cells(self):
         """Number of cells of the multi-order (MOC) decomposition of the covered sky."""
         starts, ends = self._intervals(min_weight=None)
