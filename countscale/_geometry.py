@@ -237,7 +237,10 @@ class Circles(Shape):
         return out
 
     def _part_contains(self, part, xyz):
-        return _angle_between(xyz, self.centres[part]) <= self.radius_rad[part]
+        # chord <= 2 sin(r/2) is the same test as angle <= r, without a cross product.
+        diff = xyz - self.centres[part]
+        chord2 = np.einsum("ij,ij->i", diff, diff)
+        return chord2 <= (2.0 * np.sin(np.minimum(self.radius_rad[part], np.pi) / 2.0)) ** 2
 
     def _boundary_distance(self, part, xyz):
         return np.abs(_angle_between(xyz, self.centres[part]) - self.radius_rad[part])
@@ -717,16 +720,21 @@ def _subsampled_fraction(shape, part, cells, order):
     return units / scale, np.sqrt(crossing / 12.0) / scale
 
 
-def point_test_fraction(test, cells, order, depth=SUB_ORDERS):
-    """Covered fraction of `cells` from `test` at one jittered point per sub-cell.
+def point_test_fraction(test, cells, order, depth=SUB_ORDERS, pairs=None):
+    """Covered fraction of `cells` from a point test at one jittered point per sub-cell.
 
     Used where two boundaries meet in one cell (overlapping holes, a shape minus a shape that
     shares its edge): the fractions of the two cannot be combined without knowing where in
     the cell each lies, but the combined exact point test can be sampled. Each of the
     4**depth sub-cells gets one point uniform inside it (stratified sampling): sub-cell
     centres would alias with the iso-latitude rows of HEALPix centres and bias long edges.
-    The generator is seeded from the cells, so the result is reproducible. Returns the
-    fraction and its standard error: sqrt(n_crossed / 6) / 4**depth, with about
+    The generator is seeded from the cells, so the result is reproducible.
+
+    `test` has ``contains_vec(xyz)``; or, with `pairs` = (cell_index, part) arrays, `test` is
+    a multi-part shape and a point is inside when one of its cell's listed parts holds it
+    (``test._part_contains``), which avoids searching all parts.
+
+    Returns the fraction and its standard error: sqrt(n_crossed / 6) / 4**depth, with about
     2 x 1.3 x 2**depth sub-cells crossed by two boundaries and variance 1/6 in each.
     """
     depth = min(depth, HEALPIX_MAX_ORDER - order)
@@ -736,12 +744,26 @@ def point_test_fraction(test, cells, order, depth=SUB_ORDERS):
     frac = np.empty(len(cells))
     step = max(1, 2_000_000 // per_cell)
     offsets = np.arange(per_cell, dtype=np.int64)
+    if pairs is not None:
+        pair_cell, pair_part = pairs
+        order_pairs = np.argsort(pair_cell, kind="stable")
+        pair_cell, pair_part = pair_cell[order_pairs], pair_part[order_pairs]
     for lo in range(0, len(cells), step):
         block = cells[lo : lo + step]
         sub = ((block[:, None] << (2 * depth)) + offsets).reshape(-1)
         fine = (sub << (2 * jitter_levels)) + rng.integers(0, 4**jitter_levels, size=len(sub))
         xyz = np.stack(hp.pix2vec(2**HEALPIX_MAX_ORDER, fine, nest=True), axis=-1)
-        frac[lo : lo + step] = test.contains_vec(xyz).reshape(len(block), per_cell).mean(axis=1)
+        if pairs is None:
+            inside = test.contains_vec(xyz).reshape(len(block), per_cell)
+        else:
+            first, last = np.searchsorted(pair_cell, [lo, lo + len(block)])
+            local = pair_cell[first:last] - lo
+            points = xyz.reshape(len(block), per_cell, 3)[local].reshape(-1, 3)
+            parts = np.repeat(pair_part[first:last], per_cell)
+            hit = test._part_contains(parts, points).reshape(len(local), per_cell)
+            inside = np.zeros((len(block), per_cell), dtype=bool)
+            np.logical_or.at(inside, local, hit)
+        frac[lo : lo + step] = inside.mean(axis=1)
     sigma = np.full(len(cells), np.sqrt(2 * 1.3 * 2**depth / 6.0) / per_cell)
     return frac, sigma
 
@@ -755,7 +777,7 @@ class Raster:
 
     `starts`, `ends` are half-open intervals of NEST indices at `max_order`, possibly
     overlapping (parts of a union); `cells`, `fraction`, `sigma` are boundary cells (possibly
-    repeated across parts).
+    repeated across parts), `parts` the part each boundary cell belongs to.
     """
 
     max_order: int
@@ -764,15 +786,17 @@ class Raster:
     cells: np.ndarray
     fraction: np.ndarray
     sigma: np.ndarray
+    parts: np.ndarray
 
 
 def rasterise(shape, max_order):
     """Cells covered by `shape` down to `max_order` (see `Raster`)."""
     parts_per_batch = max(1, _BATCH_PAIRS // 200)
-    starts, ends, cells_out, frac_out, sigma_out = [], [], [], [], []
+    starts, ends, cells_out, frac_out, sigma_out, parts_out = [], [], [], [], [], []
     for lo in range(0, max(shape.n_parts, 1), parts_per_batch):
         part_ids = np.arange(lo, min(lo + parts_per_batch, shape.n_parts))
-        _refine(shape, part_ids, max_order, starts, ends, cells_out, frac_out, sigma_out)
+        _refine(shape, part_ids, max_order, starts, ends, cells_out, frac_out, sigma_out,
+                parts_out)
         # Merge each batch's whole cells at once: interior cells of a disc run together in
         # NEST order, so this keeps memory near the size of the final footprint.
         if len(starts) > 1:
@@ -788,6 +812,7 @@ def rasterise(shape, max_order):
         cat(cells_out) if cells_out else empty_i,
         cat(frac_out) if frac_out else empty_f,
         cat(sigma_out) if sigma_out else empty_f,
+        cat(parts_out) if parts_out else np.zeros(0, dtype=np.int32),
     )
 
 
@@ -808,7 +833,8 @@ def merge_intervals(starts, ends):
     return out_starts, out_ends
 
 
-def _refine(shape, part_ids, max_order, starts, ends, cells_out, frac_out, sigma_out):
+def _refine(shape, part_ids, max_order, starts, ends, cells_out, frac_out, sigma_out,
+            parts_out):
     cells = np.tile(np.arange(12, dtype=np.int64), len(part_ids))
     part = np.repeat(part_ids, 12)
     order = 0
@@ -842,5 +868,6 @@ def _refine(shape, part_ids, max_order, starts, ends, cells_out, frac_out, sigma
         ends.append(cells[whole] + 1)
     some = (frac > 0.0) & ~whole
     cells_out.append(cells[some])
+    parts_out.append(part[some].astype(np.int32))
     frac_out.append(frac[some].astype(np.float32))
     sigma_out.append(sigma[some].astype(np.float32))

@@ -542,3 +542,12 @@ def test_weight_at_gives_the_finest_cell_coverage():
     assert np.any((frac > 0) & (frac < 1))
     ra, dec = hp.pix2ang(2**12, cells, nest=True, lonlat=True)
     assert np.allclose(cap.weight_at(ra, dec), frac)
+
+
+@settings(max_examples=50, deadline=None)
+@given(a=st.lists(st.integers(0, 200), max_size=60), b=st.lists(st.integers(0, 200), max_size=60))
+def test_sorted_union_matches_numpy(a, b):
+    from countscale.footprint import _sorted_union
+
+    a, b = np.unique(np.array(a, dtype=np.int64)), np.unique(np.array(b, dtype=np.int64))
+    assert np.array_equal(_sorted_union(a, b), np.union1d(a, b))

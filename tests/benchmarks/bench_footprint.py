@@ -101,6 +101,36 @@ def run_baseline(n_holes, n_points):
     }
 
 
+def run_montecarlo(n_holes, n_points):
+    """Independent check of the area: uniform points in the box, holes by a k-d tree."""
+    from scipy.spatial import cKDTree
+
+    ra, dec, radius = holes(n_holes)
+    rng = np.random.default_rng(17)
+    n = 20_000_000
+    s_lo, s_hi = np.sin(np.radians(DEC_RANGE))
+    box_area = (180 / np.pi) * (RA_RANGE[1] - RA_RANGE[0]) * (s_hi - s_lo)  # closed form
+
+    def unit(r, d):
+        r, d = np.radians(r), np.radians(d)
+        return np.stack([np.cos(d) * np.cos(r), np.cos(d) * np.sin(r), np.sin(d)], axis=1)
+
+    tree = cKDTree(unit(ra, dec))
+    chord = 2 * np.sin(np.radians(radius / 3600.0) / 2)
+    inside, done = 0, 0
+    while done < n:
+        m = min(2_000_000, n - done)
+        p = unit(rng.uniform(*RA_RANGE, m), np.degrees(np.arcsin(rng.uniform(s_lo, s_hi, m))))
+        dist, idx = tree.query(p, k=8, distance_upper_bound=chord.max())
+        found = idx < len(chord)
+        limit = chord[np.where(found, idx, 0)]
+        inside += int(np.any(found & (dist <= limit), axis=1).sum())
+        done += m
+    frac = inside / n
+    area = box_area * (1 - frac)
+    return {"area_deg2": area, "sigma_deg2": box_area * np.sqrt(frac * (1 - frac) / n)}
+
+
 def child(which, n_holes, n_points):
     cmd = [sys.executable, __file__, "--child", which, "--holes", str(n_holes),
            "--points", str(n_points)]
@@ -112,14 +142,16 @@ def main():
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--holes", type=int, default=100_000)
     parser.add_argument("--points", type=int, default=3_000_000)
-    parser.add_argument("--child", choices=["countscale", "baseline"])
+    parser.add_argument("--child", choices=["countscale", "baseline", "montecarlo"])
     args = parser.parse_args()
     if args.child:
-        run = run_countscale if args.child == "countscale" else run_baseline
+        run = {"countscale": run_countscale, "baseline": run_baseline,
+               "montecarlo": run_montecarlo}[args.child]
         print(json.dumps(run(args.holes, args.points)))
         return
     ours = child("countscale", args.holes, args.points)
     base = child("baseline", args.holes, args.points)
+    mc = child("montecarlo", args.holes, args.points)
     print(f"footprint: box {RA_RANGE} x {DEC_RANGE} minus {args.holes} holes 5-120 arcsec, "
           f"order 16 (baseline: dense healpy map, nside {BASELINE_NSIDE})")
     print(f"{'':22}{'countscale':>14}{'baseline':>14}{'ratio':>10}")
@@ -128,6 +160,10 @@ def main():
         print(f"{label:22}{ours[key]:14.6g}{base[key]:14.6g}{ours[key] / base[key]:10.3f}")
     print(f"area uncertainty (countscale): {ours['area_uncertainty_deg2']:.3g} deg2; "
           f"segments stored: {ours['segments']}")
+    print(f"independent Monte Carlo area (2e7 points, k-d tree holes): {mc['area_deg2']:.4f} "
+          f"+- {mc['sigma_deg2']:.4f} deg2; countscale - MC = "
+          f"{ours['area_deg2'] - mc['area_deg2']:+.4f}, baseline - MC = "
+          f"{base['area_deg2'] - mc['area_deg2']:+.4f}")
     print(f"targets: build <= 5 s ({ours['build_s']:.1f} s), peak <= 1024 MB "
           f"({ours['peak_rss_mb']:.0f} MB), contains >= 3e6/s "
           f"({ours['contains_per_s']:.3g}/s)")
