@@ -91,10 +91,8 @@ def footprint_figure(footprint, path, title=None, zoom_pixels=700):
         zoom.text(0.5, 0.5, "empty footprint", ha="center", va="center")
     if title:
         fig.suptitle(title)
-    fig.tight_layout()
-    with atomic_path(path, suffix=".png") as tmp:
-        fig.savefig(tmp, dpi=110, format="png")
-    plt.close(fig)
+    fig.tight_layout(rect=(0, 0.02, 1, 0.96))
+    _save(fig, path)
 
 
 def completeness_figure(completeness, path, title=None):
@@ -195,7 +193,8 @@ def counts_figure(counts, path, title=None):
         axis.axvspan(fit_lo, fit_hi, color="tab:green", alpha=0.07, lw=0)
     ax.set_yscale("log")
     positive = raw[shown]
-    ax.set_ylim(0.5 * positive.min(), 3 * max(positive.max(), np.nanmax(corr[ok])))
+    # Head room above the data for the legend.
+    ax.set_ylim(0.5 * positive.min(), 300 * max(positive.max(), np.nanmax(corr[ok])))
     ax.set_ylabel("sources per deg² per mag")
     ax.grid(alpha=0.3, which="both")
     ax.legend(fontsize=7.5, loc="upper left")
@@ -206,7 +205,7 @@ def counts_figure(counts, path, title=None):
     res.axhline(0, color="k", lw=0.8)
     res.plot(mid[used], pull[used], "o", color="tab:red", ms=3.5)
     res.plot(mid[~used & shown], pull[~used & shown], "o", mfc="none", mec="grey", ms=3)
-    res.set_ylabel("(N − μ) / √μ")
+    res.set_ylabel(f"(N − μ) / √μ\n{counts['model'].replace('_', ' ')}", fontsize=9)
     res.set_xlabel("magnitude")
     res.grid(alpha=0.3)
     fig.tight_layout()
