@@ -164,7 +164,9 @@ def load_footprint(spec, threshold=None, nest=None):
 
         runfile = load_runfile(path).require("footprint", needed_by="countscale area")
         section = runfile.footprint
-        positions = _catalog_positions(runfile) if "catalog" in runfile.present else None
+        from countscale.pipeline import catalog_positions
+
+        positions = catalog_positions(runfile) if "catalog" in runfile.present else None
         footprint = Footprint.from_runfile_section(section, catalog_positions=positions)
         kind = (f"run file [footprint]: {len(section.include)} include, "
                 f"{len(section.exclude)} exclude")
@@ -193,22 +195,6 @@ def _is_moc(path):
     except OSError:
         return False  # let the map reader give its one-line message
     return False
-
-
-def _catalog_positions(runfile):
-    def positions():
-        import numpy as np
-
-        from countscale.catalog import CatalogSource, iter_valid_chunks
-
-        source = CatalogSource.from_config(runfile.catalog, runfile.base_dir)
-        ra, dec = [], []
-        for valid, _, _ in iter_valid_chunks(source, runfile.engine.chunk_rows):
-            ra.append(valid.ra)
-            dec.append(valid.dec)
-        return np.concatenate(ra), np.concatenate(dec)
-
-    return positions
 
 
 def _cmd_area(args):

@@ -285,12 +285,6 @@ def _segment_index(edges, cells):
     return out
 
 
-def _lookup(edges, weight, sigma, cells):
-    """Weight and sigma of the segments holding `cells` (0 outside)."""
-    idx = _segment_index(edges, cells)
-    return _take(weight, idx), (None if sigma is None else _take(sigma, idx))
-
-
 def _operand(edges, weight, sigma, starts, flag_boundary):
     """Weight, sigma and (optionally) boundary flag of one operand at sorted `starts`.
 
@@ -1004,8 +998,7 @@ class Footprint:
 
     # -- positions --------------------------------------------------------------------
     def _weight_of_cells(self, cells):
-        w, _ = _lookup(self.edges, self.weight, None, cells)
-        return w
+        return _take(self.weight, _segment_index(self.edges, cells))
 
     def weight_at(self, ra, dec):
         """Coverage fraction of the finest cell at each position (float ndarray)."""

@@ -150,7 +150,7 @@ class RunResult:
 # --------------------------------------------------------------------------------------------
 
 
-def _catalog_positions(runfile: Any) -> Callable[[], tuple[np.ndarray, np.ndarray]]:
+def catalog_positions(runfile: Any) -> Callable[[], tuple[np.ndarray, np.ndarray]]:
     """Lazy (ra, dec) of every valid row, for ``occupancy`` footprint items only."""
 
     def positions() -> tuple[np.ndarray, np.ndarray]:
@@ -189,7 +189,7 @@ def _stage_tally(ctx: RunContext) -> Any:
     runfile = ctx.runfile
     source = CatalogSource.from_config(runfile.catalog,
                                        where=runfile.location("catalog"))
-    positions = _catalog_positions(runfile)
+    positions = catalog_positions(runfile)
     footprint = Footprint.from_runfile_section(runfile.footprint, catalog_positions=positions)
     if footprint.area_sr <= 0:
         raise InputError(f"{runfile.location('footprint')}: the footprint is empty (area 0)")

@@ -851,7 +851,6 @@ class _Unit:
     index: int
     info: _catalog.FileSummary
     row_groups: tuple[int, ...] | None
-    row_offset: int
     n_rows: int | None
 
 
@@ -859,7 +858,7 @@ def _plan_units(summary: _catalog.CatalogSummary) -> list[_Unit]:
     units: list[_Unit] = []
     for info in summary.files:
         if info.format != "parquet":
-            units.append(_Unit(len(units), info, None, 0, info.n_rows))
+            units.append(_Unit(len(units), info, None, info.n_rows))
             continue
         pf = pq.ParquetFile(info.path)
         try:
@@ -872,10 +871,10 @@ def _plan_units(summary: _catalog.CatalogSummary) -> list[_Unit]:
             group.append(i)
             offset += size
             if offset - start >= _TASK_ROWS or i == len(sizes) - 1:
-                units.append(_Unit(len(units), info, tuple(group), start, offset - start))
+                units.append(_Unit(len(units), info, tuple(group), offset - start))
                 group, start = [], offset
         if not sizes:
-            units.append(_Unit(len(units), info, (), 0, 0))
+            units.append(_Unit(len(units), info, (), 0))
     return units
 
 
