@@ -197,6 +197,11 @@ def _normalise(text: str) -> str:
     ):
         out = out.replace(a, b)
     out = re.sub(r"\s*\^\s*", "^", out)
+    out = re.sub(
+        r"\b(?:ten|10) to the (?:power of )?(?P<e>\d+|[a-z]+(?:-[a-z]+)?)(?:th|st|nd|rd)?\b",
+        _power_words,
+        out,
+    )
     # Spaces between digit groups: "30 000" -> "30000" when later groups have three digits.
     out = re.sub(r"\b\d{1,3}(?: \d{3})+\b(?!\.\d)", lambda m: m.group(0).replace(" ", ""), out)
 
@@ -214,6 +219,17 @@ def _normalise(text: str) -> str:
         r"\d[\d,]*\d(?:\.\d+)?", lambda m: commas(m) if "," in m.group(0) else m.group(0), out
     )
     return out
+
+
+def _power_words(match: re.Match[str]) -> str:
+    """'ten to the power of twelve' -> '10^12' (the exponent in digits or words)."""
+    exponent = match.group("e")
+    if not exponent.isdigit():
+        parts = exponent.split("-")
+        if not all(p in _UNITS for p in parts):
+            return match.group(0)
+        exponent = str(sum(_UNITS[p] for p in parts))
+    return f"10^{exponent}"
 
 
 _TOKEN = re.compile(
@@ -289,7 +305,12 @@ def _scan_number(tokens: list[str], i: int) -> _Span | None:
         j = i + 2
         mult = 1.0
         while j < n and (tokens[j] in _PLURALS or tokens[j] in _SCALES):
-            if j + 1 < n and tokens[j + 1] == "of" and tokens[j] in _PLURALS:
+            if (
+                j + 2 < n
+                and tokens[j + 1] == "of"
+                and tokens[j] in _PLURALS
+                and (tokens[j + 2] in _PLURALS or tokens[j + 2] in _SCALES)
+            ):
                 plo, phi = _PLURALS[tokens[j]]
                 lo, hi = lo * plo, hi * phi
                 j += 2
@@ -320,6 +341,11 @@ def _scan_number(tokens: list[str], i: int) -> _Span | None:
     seen_word = bool(words)
     pending = list(words)
     while True:
+        if tokens[i : i + 3] == ["and", "a", "half"] and (seen_word or first_value is not None):
+            # "one and a half trillion", "2 and a half billion"
+            current += 0.5
+            i += 3
+            continue
         if pending:
             word = pending.pop(0)
         elif (
