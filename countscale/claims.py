@@ -896,7 +896,7 @@ SOURCES = {
         "song2016",
         "Song et al. 2016, ApJ 825, 5 (Table 3; abstract for slope errors)",
         "stellar mass functions at z = 4, 5, 6",
-        "published (via a public transcription)",
+        "published (Table 3 read in a public copy)",
     ),
     "conselice2016": Source(
         "conselice2016",
