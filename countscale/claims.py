@@ -740,11 +740,7 @@ def parse_claim(
                 raise InputError(
                     f"a count must be > 0; got a range with {min(lo_v, hi_v)!r} in {text!r}"
                 )
-            low, high = (
-                min(lo_v, first.low * (lo_v / first.value if first.value else 1.0)),
-                max(hi_v, second.high),
-            )
-            low, high = min(lo_v, hi_v), max(hi_v, second.high, lo_v)
+            low, high = min(lo_v, hi_v), max(lo_v, hi_v)
             value = math.sqrt(low * high)
             stop = second.stop
     if value <= 0 or low <= 0:
@@ -835,13 +831,14 @@ def parse_claim(
 def _scale_of(tokens: list[str], span: _Span) -> float:
     """The product of the scale words and powers in a span (what a bare first number borrows)."""
     scale = 1.0
-    for token in tokens[span.start : span.stop]:
+    for k in range(span.start, span.stop):
+        token = tokens[k]
         for part in _word_parts(token):
             if part in _SCALES:
                 scale *= _SCALES[part]
             elif part == "hundred":
                 scale *= 100.0
-        if re.fullmatch(r"10\^[+-]?\d+", token) and tokens.index(token) > span.start:
+        if k > span.start and re.fullmatch(r"10\^[+-]?\d+", token):
             scale *= _digit_value(token)
     return scale
 
