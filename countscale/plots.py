@@ -4,6 +4,13 @@ Topics
 ------
 footprint_figure
     Whole-sky view of where a footprint lies, and a zoom that shows its edges and holes.
+completeness_figure, counts_figure
+    The completeness curve and the number counts of a run, drawn from ``results.json`` blocks.
+
+Each figure function writes its PNG and returns a list of notes: one sentence for each part
+of the figure left empty and why (no bin complete enough to correct, ...), so that the report
+can say it beside the figure. A figure with nothing to show is still drawn, with the reason
+written on it.
 """
 
 from __future__ import annotations
@@ -33,7 +40,8 @@ def footprint_figure(footprint, path, title=None, zoom_pixels=700):
     """Write a two-panel PNG: the footprint on the whole sky, and a zoom on it.
 
     The zoom samples the coverage fraction on a regular RA/Dec grid of `zoom_pixels` across,
-    so holes larger than a grid step show; its caption gives the step.
+    so holes larger than a grid step show; its caption gives the step. Returns notes on
+    what is left empty (see the module docstring).
     """
     import healpy as hp
 
@@ -93,6 +101,7 @@ def footprint_figure(footprint, path, title=None, zoom_pixels=700):
         fig.suptitle(title)
     fig.tight_layout(rect=(0, 0.02, 1, 0.96))
     _save(fig, path)
+    return [] if len(ra_c) else ["the footprint is empty: there is nothing to draw"]
 
 
 def completeness_figure(completeness, path, title=None):
@@ -104,6 +113,11 @@ def completeness_figure(completeness, path, title=None):
         The ``completeness`` block of ``results.json``.
     path : path
         PNG to write.
+
+    Returns
+    -------
+    list of str
+        Notes on parts of the figure left empty (none today: a fit needs injections).
     """
     plt = _pyplot()
     rec, curve = completeness["recovery"], completeness["curve"]
@@ -139,6 +153,7 @@ def completeness_figure(completeness, path, title=None):
     ax.set_title(title or "Detection completeness", fontsize=11)
     fig.tight_layout()
     _save(fig, path)
+    return []
 
 
 def counts_figure(counts, path, title=None):
@@ -150,6 +165,12 @@ def counts_figure(counts, path, title=None):
         The ``counts`` block of ``results.json``.
     path : path
         PNG to write.
+
+    Returns
+    -------
+    list of str
+        Notes on parts left empty: no corrected densities when no bin with sources is at
+        least 50 % complete, no points when no bin holds a source.
     """
     plt = _pyplot()
     diff = counts["differential"]
@@ -169,11 +190,21 @@ def counts_figure(counts, path, title=None):
     # Corrected points only where at least half the sources are detected: deeper, the
     # correction is mostly the model's own extrapolation.
     ok = shown & np.isfinite(corr) & (np.asarray(diff["completeness"]) >= 0.5)
-    yerr = np.abs(np.stack([corr - band[:, 0], band[:, 1] - corr]))[:, ok]
-    error_kind = "Poisson + clustering" if diff["corrected_interval_68_full"] else "Poisson"
-    ax.errorbar(mid[ok], corr[ok], yerr=yerr, fmt="o", ms=3.5, color="k", lw=0.9,
-                label=f"corrected for completeness and scatter (68 %, {error_kind}; "
-                      "shown where completeness ≥ 0.5)")
+    notes = []
+    if not shown.any():
+        notes.append("no bin holds a source: there are no counts to show")
+    elif not ok.any():
+        notes.append("no bin with sources is at least 50 % complete, so no corrected "
+                     "densities are shown (only raw counts and the fitted model)")
+    if ok.any():
+        yerr = np.abs(np.stack([corr - band[:, 0], band[:, 1] - corr]))[:, ok]
+        error_kind = "Poisson + clustering" if diff["corrected_interval_68_full"] else "Poisson"
+        ax.errorbar(mid[ok], corr[ok], yerr=yerr, fmt="o", ms=3.5, color="k", lw=0.9,
+                    label=f"corrected for completeness and scatter (68 %, {error_kind}; "
+                          "shown where completeness ≥ 0.5)")
+    for k, note in enumerate(notes):
+        ax.text(0.98, 0.04 + 0.06 * k, note, transform=ax.transAxes, ha="right",
+                va="bottom", fontsize=8, color="tab:red", wrap=True)
     curves = counts["model_curves"]
     grid = np.asarray(curves["mag"])
     styles = {"power_law": "-", "broken_power_law": "--", "double_power_law": ":"}
@@ -192,9 +223,18 @@ def counts_figure(counts, path, title=None):
     for axis in (ax, res):
         axis.axvspan(fit_lo, fit_hi, color="tab:green", alpha=0.07, lw=0)
     ax.set_yscale("log")
+    # Head room above the data for the legend; the model curves set the scale when no bin
+    # holds a source.
     positive = raw[shown]
-    # Head room above the data for the legend.
-    ax.set_ylim(0.5 * positive.min(), 300 * max(positive.max(), np.nanmax(corr[ok])))
+    if positive.size:
+        top = max(positive.max(), corr[ok].max()) if ok.any() else positive.max()
+        ax.set_ylim(0.5 * positive.min(), 300 * top)
+    else:
+        model = np.concatenate([np.asarray(v, dtype=float) for k, v in curves.items()
+                                if k != "mag"])
+        model = model[np.isfinite(model) & (model > 0)]
+        if model.size:
+            ax.set_ylim(0.5 * model.min(), 300 * model.max())
     ax.set_ylabel("sources per deg² per mag")
     ax.grid(alpha=0.3, which="both")
     ax.legend(fontsize=7.5, loc="upper left")
@@ -210,6 +250,7 @@ def counts_figure(counts, path, title=None):
     res.grid(alpha=0.3)
     fig.tight_layout()
     _save(fig, path)
+    return notes
 
 
 def _save(fig, path):

@@ -122,7 +122,7 @@ def test_run_writes_results_with_ledger_footprint_and_counts(tmp_path):
     assert sum(regions["area_deg2"]) == pytest.approx(data["footprint"]["area_deg2"], rel=1e-12)
     assert data["footprint"]["area_deg2"] == pytest.approx(result.tally.area_deg2)
     assert data["run"] == {"runfile": str(runfile.resolve()), "engine": "local", "seed": 5,
-                           "stages": ["tally"], "sections_not_run": []}
+                           "stages": ["tally"], "sections_not_run": [], "warnings": []}
     assert data["survey"] == {"name": "Fictional test field"}
     markdown = (out / "report.md").read_text()
     assert "## Row ledger" in markdown and f"| in footprint | {inside.sum():,d} |" in markdown
@@ -301,7 +301,8 @@ def test_missing_sections_and_bad_arguments(tmp_path):
         with pytest.raises(error, match=message):
             run_survey(runfile, **kwargs)
     (tmp_path / "afile").write_text("x")
-    with pytest.raises(InputError, match=r"`out_dir` '.*afile' exists and is not a folder"):
+    with pytest.raises(InputError,
+                       match=r"`out_dir` \(--out\) '.*afile' exists and is not a folder"):
         run_survey(runfile, out_dir=tmp_path / "afile")
     with pytest.raises(InputTypeError, match=r"`runfile` must be a path or a RunFile; got int"):
         run_survey(7)
@@ -315,9 +316,12 @@ max_order = 8
 include = [ {cap = {ra = 155, dec = 5, radius = 0.3}} ]
 """
     runfile, _ = make_survey(tmp_path, n=20_000, footprint=tiny)
-    with pytest.warns(UserWarning, match="footprint too small for 24 regions"):
-        result = run_survey(runfile, out_dir=tmp_path / "a", seed=1, progress=False)
+    # The warning goes into the results (and the report), one line, not onto stderr.
+    result = run_survey(runfile, out_dir=tmp_path / "a", seed=1, progress=False)
     assert result.results["tally"]["regions"]["n_regions"] == 1
+    [line] = result.results["run"]["warnings"]
+    assert line.startswith("tally: footprint too small for 24 regions")
+    assert "footprint too small for 24 regions" in (tmp_path / "a" / "report.md").read_text()
     runfile, _ = make_survey(tmp_path, n=20_000, footprint=tiny,
                              extra="\n[variance]\nregions = 24\n")
     with pytest.raises(InputError, match=r"survey.toml: \[variance\] 'regions': cannot split"):

@@ -324,12 +324,15 @@ def corrupted(tmp_path):
     df.loc[50:59, "RA"] = 400.0                  # 10 ra_out_of_range
     df.loc[60:99, "MAG"] = 99.0                  # 40 mag_missing (sentinel)
     df.loc[100:104, "Z"] = -0.5                  # 5 redshift_invalid
+    df.loc[110:117, "MAG"] = -999.0              # 8 mag_implausible
+    df.loc[118:119, "MAG"] = 1e30                # 2 mag_implausible
     df.loc[200:224, "OBJID"] = df.loc[300:324, "OBJID"].to_numpy()  # 25 duplicate_id later
     df.loc[400:414, "RA"] = -10.0                # 15 wrapped to RA 350 and kept
     a = write(df.iloc[:3500], tmp_path / "a.parquet", row_group_size=1000)
     b = write(df.iloc[3500:], tmp_path / "b.fits")
     expected = {"ra_dec_not_finite": 30, "dec_out_of_range": 20, "ra_out_of_range": 10,
-                "mag_missing": 40, "redshift_invalid": 5, "duplicate_id": 25}
+                "mag_missing": 40, "mag_implausible": 10, "redshift_invalid": 5,
+                "duplicate_id": 25}
     return [a, b], expected, df
 
 
@@ -628,6 +631,7 @@ def duplicate_catalogue(tmp_path):
     b.loc[200:249, "OBJID"] = b.loc[300:349, "OBJID"].to_numpy()  # duplicates within b
     b.loc[0:9, "RA"] = -5.0                                       # wrapped duplicates
     b.loc[50:54, "MAG"] = 99.0                                    # invalid duplicates
+    b.loc[55:57, "MAG"] = -999.0                                  # implausible duplicates
     c = frame(1500, rng, id_start=20_000)
     c.loc[0:49, "OBJID"] = b.loc[500:549, "OBJID"].to_numpy()     # duplicates of b
     c.loc[50:59, "OBJID"] = a.loc[2990:2999, "OBJID"].to_numpy()  # duplicates of a's last group
@@ -650,7 +654,8 @@ def duplicate_catalogue(tmp_path):
 def oracle_ledger(rows, footprint):
     """Row by row, in catalogue order, from the documented rules of countscale.catalog."""
     rejected = dict.fromkeys(["ra_dec_not_finite", "dec_out_of_range", "ra_out_of_range",
-                              "mag_missing", "redshift_invalid", "duplicate_id"], 0)
+                              "mag_missing", "mag_implausible", "redshift_invalid",
+                              "duplicate_id"], 0)
     seen, n_in, n_out, wrapped, missing = set(), 0, 0, 0, 0
     for ra, dec, mag, z, objid in rows[["RA", "DEC", "MAG", "Z", "OBJID"]].itertuples(
             index=False):
@@ -666,6 +671,9 @@ def oracle_ledger(rows, footprint):
             continue
         if not math.isfinite(mag) or mag in (99.0, -99.0, 99.99):
             rejected["mag_missing"] += 1
+            continue
+        if not -30.0 <= mag <= 40.0:  # the documented default plausible range
+            rejected["mag_implausible"] += 1
             continue
         if z < 0:
             rejected["redshift_invalid"] += 1
