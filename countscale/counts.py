@@ -2376,13 +2376,13 @@ class CountsFit:
         for name in model.param_names:
             lines.append(f"  {name:13s} {self.estimates_[name].format()}")
         if self.p_value_ is None:
-            p_text = "not computed"
+            p_text = "p not computed"
         elif self.p_value_is_bound_:
-            p_text = f"< {format_p_bound(self.p_value_)} (no redraw as extreme)"
+            p_text = f"p < {format_p_bound(self.p_value_)}, no redraw as extreme"
         else:
-            p_text = f"{self.p_value_:.3g} +/- {self.p_value_error_:.2g}"
+            p_text = f"p = {self.p_value_:.3g} +/- {self.p_value_error_:.2g}"
         lines.append(
-            f"  deviance {self.deviance_:.4g} on {self.dof_} dof (bootstrap p = {p_text}); "
+            f"  deviance {self.deviance_:.4g} on {self.dof_} dof (bootstrap {p_text}); "
             f"AIC {self.aic_:.6g}, BIC {self.bic_:.6g}"
         )
         return "\n".join(lines)

@@ -275,11 +275,17 @@ def _check_depth_map(runfile: Any, depth: Any, footprint: Any) -> tuple[float, f
         ordering = "NEST" if depth.nest else "RING"
         raise InputError(
             f"{where}: {label} must give a depth for the whole footprint; "
-            f"got none for {missing_deg2:.4g} deg² ({100 * fraction:.3g} % of the footprint; "
+            f"got none for {_deg2(missing_deg2)} deg² ({100 * fraction:.3g} % of the "
+            "footprint; "
             f"map read as nside {depth.nside}, {ordering}): extend the map, restrict "
             "[footprint] to it, or check the map's NSIDE and ORDERING keywords"
         )
     return missing_deg2, fraction
+
+
+def _deg2(area: float) -> str:
+    """An area for a message: 4 significant figures, or whole deg² with separators."""
+    return f"{area:,.0f}" if area >= 1e4 else f"{area:.4g}"
 
 
 def _depth_offsets(table: Any, depth: Any, footprint: Any) -> tuple[np.ndarray, float]:

@@ -202,9 +202,12 @@ def counts_figure(counts, path, title=None):
         ax.errorbar(mid[ok], corr[ok], yerr=yerr, fmt="o", ms=3.5, color="k", lw=0.9,
                     label=f"corrected for completeness and scatter (68 %, {error_kind}; "
                           "shown where completeness ≥ 0.5)")
-    for k, note in enumerate(notes):
-        ax.text(0.98, 0.04 + 0.06 * k, note, transform=ax.transAxes, ha="right",
-                va="bottom", fontsize=8, color="tab:red", wrap=True)
+    if notes:
+        import textwrap
+
+        ax.text(0.5, 0.5, "\n".join(textwrap.fill(n, 60) for n in notes),
+                transform=ax.transAxes, ha="center", va="center", fontsize=9, color="tab:red",
+                bbox={"facecolor": "white", "edgecolor": "tab:red", "alpha": 0.85})
     curves = counts["model_curves"]
     grid = np.asarray(curves["mag"])
     styles = {"power_law": "-", "broken_power_law": "--", "double_power_law": ":"}

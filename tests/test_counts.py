@@ -62,6 +62,7 @@ from countscale.counts import (
     compare_models,
     differential_counts,
     fit_counts,
+    format_p_bound,
     integral_counts,
     jackknife_covariance,
     poisson_interval,
@@ -754,6 +755,43 @@ def test_break_on_its_limit_warns():
         fit = CountsFit(BrokenPowerLaw(reference_mag=22.0), forward, fit_range_mag=(18.0, 24.0),
                         n_bootstrap=0).fit(counts)
     assert fit.params_["m_break"] == 23.5
+
+
+def test_a_p_value_no_redraw_reaches_is_reported_as_a_bound():
+    # Strongly curved counts fitted by a straight power law: no parametric-bootstrap redraw is
+    # as far from the model as the data, so the estimate (1 + 0) / (B + 1) is only an upper
+    # bound on p (Davison & Hinkley 1997, sec. 4.2; from memory) and must read "p < ...".
+    forward = ForwardModel(EDGES, 1.0)
+    counts = np.random.default_rng(7).poisson(
+        forward.expected_counts(BrokenPowerLaw(4.0, 0.7, 0.1, 21.5, reference_mag=22.0)))
+    fit = CountsFit(PowerLaw(reference_mag=22.0), forward, n_bootstrap=50).fit(counts, rng=1)
+    assert fit.p_value_is_bound_ is True
+    assert fit.p_value_ == 1.0 / 51.0
+    data = fit.to_json()
+    assert (data["p_value_is_bound"], data["n_bootstrap"]) == (True, 50)
+    assert "bootstrap p < 0.02, no redraw as extreme" in fit.summary()
+    # An informative case is an estimate, not a bound.
+    fair = CountsFit(PowerLaw(reference_mag=22.0), forward, n_bootstrap=50).fit(
+        np.random.default_rng(8).poisson(forward.expected_counts(MODELS["power_law"])), rng=1)
+    assert fair.p_value_is_bound_ is False
+    assert CountsFit(PowerLaw(reference_mag=22.0), forward, n_bootstrap=0).fit(
+        counts).to_json()["p_value_is_bound"] is None
+
+
+@pytest.mark.parametrize(("bound", "text"), [
+    (1 / 201, "0.005"), (1 / 51, "0.02"), (1 / 61, "0.017"), (1 / 1001, "0.001"), (0.5, "0.5"),
+    (1.0, "1"),
+])
+def test_a_p_value_bound_is_rounded_up(bound, text):
+    # The text never states a bound below the true one: "p < 0.0049" for 1/201 would claim
+    # more than 200 redraws can show.
+    assert format_p_bound(bound) == text
+    assert float(text) >= bound
+
+
+def test_a_p_value_bound_outside_0_1_is_refused():
+    with pytest.raises(InputError, match=r"^`bound` must be in \(0, 1\]; got 0.0$"):
+        format_p_bound(0.0)
 
 
 def test_bootstrap_p_value_states_its_monte_carlo_error():

@@ -7,6 +7,7 @@ galaxy count slopes 0.33-0.50 (McCracken et al. 2001, A&A; REFERENCES.md §6).
 """
 
 import json
+import math
 from pathlib import Path
 
 import healpy as hp
@@ -81,6 +82,31 @@ def test_scatter_relation_recovers_a_sky_limited_law():
         ct.scatter_from_errors([1.0, 2.0, 3.0, 4.0], [0.1, 0.1, 0.1, -1.0])
 
 
+def test_scatter_relation_is_robust_to_wild_rows():
+    # The input law (sky-limited errors, sigma = 0.2 x 10^(0.4 (m - 23))) is the truth; a few
+    # wild rows must not move the relation away from it.
+    rng = np.random.default_rng(5)
+    mag = rng.uniform(18, 24, 50_000)
+    error = 0.2 * 10 ** (0.4 * (mag - 23.0)) * rng.lognormal(0, 0.05, mag.size)
+    # 20 rows at 1e30 with error 0.8: an integer bin number overflowed for them, and a
+    # running maximum carried their 0.8 to every magnitude. 25 rows at 15 with error 0.8: a
+    # sparse bright bin with wild errors, pooled with its crowded neighbours.
+    wild_mag = np.r_[np.full(20, 1e30), np.full(25, 15.0)]
+    relation = ct.scatter_from_errors(np.r_[mag, wild_mag], np.r_[error, np.full(45, 0.8)])
+    m = np.array([19.0, 21.0, 23.0])
+    assert relation(m) == pytest.approx(0.2 * 10 ** (0.4 * (m - 23.0)), rel=0.06)
+    assert np.all(np.diff(relation.sigma_mag) >= 0)
+    # Placeholder magnitudes (5 % of the rows at -999): the pipeline keeps to the magnitudes
+    # near its bins, and the relation is again the law.
+    placeholder = np.r_[mag, np.full(2500, -999.0)]
+    relation = ct.scatter_from_errors(placeholder, np.r_[error, np.full(2500, 0.8)],
+                                      mag_range=(17.0, 25.0))
+    assert relation(m) == pytest.approx(0.2 * 10 ** (0.4 * (m - 23.0)), rel=0.06)
+    with pytest.raises(ct.InputError, match=r"^`mag_error` has 0 usable values \(finite, > 0, "
+                                            r"at magnitudes in \[30, 31\]\); at least 20"):
+        ct.scatter_from_errors(mag, error, mag_range=(30.0, 31.0))
+
+
 @pytest.fixture(scope="module")
 def demo_run(tmp_path_factory):
     if not (DEMO / "survey.toml").is_file():
@@ -134,3 +160,69 @@ def test_demo_report_has_sections_and_figures(demo_run):
         assert set(block) == {"median", "interval_68", "interval_95", "unit", "budget"}
         if block["budget"]:
             assert sum(block["budget"].values()) == pytest.approx(1.0, abs=0.01)
+
+
+def test_a_plain_injection_table_recovers_the_mock_completeness_and_slope(tmp_path):
+    # The most common injection table holds only `mag` and `recovered`. A mock whose truth is
+    # known: stars of one class uniform in static Euclidean space (infinite scale height),
+    # whose counts have slope d log10 N / dm = 0.6 exactly (textbook, from N(>S) ~ S^-3/2),
+    # detected by a logistic of m50 = 21.5, width 0.2, the same in every tile; sky-limited
+    # errors. The run fits the plain table and applies the (uniform) depth map without
+    # moving injections, and says so.
+    from countscale.mock import DiskStars, Injections, Measurement, MockSpec, make_mock
+    from countscale.pipeline import run_survey
+
+    footprint = Footprint.box((212.0, 215.0), (28.0, 31.0), max_order=12)
+    spec = MockSpec(
+        stars=DiskStars(abs_mag=(4.0,), density_pc3=(2e-6,), scale_height_pc=math.inf),
+        measurement=Measurement(m50=21.5, width=0.2, depth_nside=32),
+        injections=Injections(n=4000, mag_range=(19.0, 24.0)),
+        mag_limits=(21.0,),
+    )
+    mock = make_mock(spec, rng=1, footprint=footprint)
+    catalogue = mock.catalogue
+    catalogue[["id", "ra", "dec", "mag", "mag_err"]].to_parquet(tmp_path / "cat.parquet")
+    mock.injections[["mag", "recovered"]].to_csv(tmp_path / "injections.csv", index=False)
+    depth = np.where(np.isnan(mock.depth.m50_mag), hp.UNSEEN, mock.depth.m50_mag)
+    hp.write_map(tmp_path / "depth.fits", depth, dtype=np.float64)
+    (tmp_path / "survey.toml").write_text("""\
+[survey]
+name = "Plain injection table (fictional)"
+[catalog]
+paths = ["cat.parquet"]
+ra = "ra"
+dec = "dec"
+mag = "mag"
+mag_error = "mag_err"
+id = "id"
+[footprint]
+max_order = 12
+include = [{box = {ra = [212.0, 215.0], dec = [28.0, 31.0]}}]
+[completeness]
+injections = "injections.csv"
+depth_map = "depth.fits"
+[counts]
+bins = {start = 15.0, stop = 23.0, width = 0.25}
+fit_range = [16.0, 21.0]
+[output]
+formats = ["json", "markdown"]
+""")
+    result = run_survey(tmp_path / "survey.toml", out_dir=tmp_path / "out", seed=3,
+                        progress=False)
+    comp = result.results["completeness"]
+    assert comp["positions"] is False
+    assert comp["n_injections_fitted"] == 4000
+    assert comp["depth_map"]["shifted_injections"] is False
+    assert any("no positions" in note for note in comp["notes"])
+    assert "no positions" in (tmp_path / "out" / "report.md").read_text()
+    for name, true in (("m50", 21.5), ("width", 0.2)):
+        est = comp[name]
+        sigma = 0.5 * (est["interval_68"][1] - est["interval_68"][0])
+        assert abs(est["median"] - true) < 3 * sigma, (name, est)
+    slope = result.results["counts"]["fit"]["slope"]
+    sigma = 0.5 * (slope["interval_68"][1] - slope["interval_68"][0])
+    assert abs(slope["median"] - 0.6) < 3 * sigma, slope
+    assert sigma < 0.02  # a real test of the slope, not a wide interval
+    # N(<21) over the footprint against the stars drawn there (true magnitudes).
+    lo, hi = result.results["counts"]["integral_counts"]["total"]["interval_95"]
+    assert lo <= mock.truth.n_true_footprint["stars"][0] <= hi
