@@ -24,7 +24,8 @@ Validation
     :class:`SeenIds` registry; :func:`iter_valid_chunks` does both for a whole source.
 Ledger
     :class:`Ledger` — rows read, in / outside the footprint, rejected per reason, notes;
-    mergeable across workers, JSON in the DESIGN §4 shape. :func:`split_by_footprint` gives the
+    mergeable across workers, JSON as ``results.json`` holds it (see docs/reference.md).
+    :func:`split_by_footprint` gives the
     inside mask; :func:`require_rows` fails clearly when no row is left.
 
 Formats
@@ -1705,7 +1706,7 @@ class Ledger:
         return self
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready dict with the DESIGN §4 keys plus ``notes``.
+        """JSON-ready dict: the ledger keys of ``results.json`` plus ``notes``.
 
         Every reason of ``REJECTION_REASONS`` appears (0 when nothing was rejected for it),
         in precedence order, followed by any other reason present.

@@ -96,11 +96,11 @@ __all__ = [
     "scatter_from_errors",
 ]
 
-#: Fewest sources in a fit before it warns (DESIGN.md section 5: "fewer than 20 sources in a
-#: fit" is doubtful; common figure, no source).
+#: Fewest sources in a fit before it warns (fewer than 20 sources in a fit is doubtful;
+#: common figure, no source).
 MIN_SOURCES = 20
 
-#: Completeness below which a bin used in a fit triggers a warning (DESIGN.md section 5).
+#: Completeness below which a bin used in a fit triggers a warning (common figure, no source).
 LOW_COMPLETENESS = 0.5
 
 #: ln 10, for converting d log10 n / dm into an exponential rate.
@@ -121,7 +121,8 @@ _TAIL_TRANSITIONS = 40.0
 _DENSITY_UNIT = "deg^-2 mag^-1"
 _CUMULATIVE_UNIT = "deg^-2"
 
-#: Budget labels (DESIGN.md section 4): the clustering part of the jackknife variance is the
+#: Budget labels of the Estimate JSON (docs/reference.md): the clustering part of the
+#: jackknife variance is the
 #: sample ("cosmic") variance of the counts between regions.
 _POISSON = "poisson"
 _CLUSTERING = "cosmic_variance"
@@ -496,7 +497,7 @@ class PowerLaw(CountModel):
     Notes
     -----
     N(<m) = n(m) / (slope ln 10) for slope > 0 (integrate the exponential). Uniform sources in
-    static Euclidean space have slope 0.6 (N(>S) ~ S^-3/2; textbook, REFERENCES.md section 6).
+    static Euclidean space have slope 0.6 (N(>S) ~ S^-3/2; textbook result).
 
     Examples
     --------
@@ -914,7 +915,7 @@ def combine_covariances(cov_poisson, cov_jackknife):
     is itself uncertain (relative scatter of a variance ~ sqrt(2 / (K - 1))) and can fall below
     the Poisson variance, which is a floor: clustering can only add variance to counts
     (Poisson plus a positive sample-variance term; e.g. Trenti & Stiavelli 2008, ApJ 676,
-    767, REFERENCES.md section 7). So the clustering excess ``C_J - C_P`` is kept only along the
+    767). So the clustering excess ``C_J - C_P`` is kept only along the
     directions where it is positive. In one dimension this is ``max(var_P, var_J)``.
     """
     c_p = np.array(cov_poisson, dtype=float, copy=True)
@@ -2336,7 +2337,7 @@ class CountsFit:
         )
 
     def to_json(self):
-        """Fit summary with DESIGN.md section 4 names and Estimate JSON values."""
+        """Fit summary with the ``results.json`` names and Estimate JSON values."""
         model = self._fitted("model_")
         out = {
             "model": model.name,

@@ -33,8 +33,9 @@ Galaxies
 Stars
     Classes of one absolute magnitude each, with midplane densities n_k, in an exponential
     disk of scale height h_z seen from the midplane; along galactic latitude b a class seen to
-    distance R gives N(b) = n_k (h_z / sin|b|)^3 gamma(3, R sin|b| / h_z) per sr (REFERENCES.md
-    section 8; Bahcall & Soneira 1980, ApJS 44, 73 for disk models). An infinite scale height
+    distance R gives N(b) = n_k (h_z / sin|b|)^3 gamma(3, R sin|b| / h_z) per sr (the cone
+    integral, lower incomplete gamma; Bahcall & Soneira 1980, ApJS 44, 73 for disk models).
+    An infinite scale height
     is a uniform (static Euclidean) population.
 Positions
     Poisson-uniform over the footprint, or the galaxies modulated by one lognormal field
@@ -401,7 +402,8 @@ class DiskStars:
     -----
     Density n_k exp(-|Z| / h_z) with Z = r sin b; the number per sr of class k closer than R is
     n_k integral_0^R r^2 exp(-r sin|b| / h_z) dr = n_k (h_z / sin|b|)^3 gamma(3, R sin|b| / h_z)
-    (REFERENCES.md section 8). A class is seen to R = 10^((m - M_k) / 5 + 1) pc (no extinction).
+    (lower incomplete gamma, DLMF 8.2.1). A class is seen to R = 10^((m - M_k) / 5 + 1) pc
+    (no extinction).
     """
 
     abs_mag: tuple[float, ...] = _DEFAULT_STAR_ABS_MAG

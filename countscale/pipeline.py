@@ -350,12 +350,15 @@ def _stage_completeness(ctx: RunContext) -> StageResult:
             depth_info = {"reference_m50": reference,
                           "n_injections_outside_depth_map": int((~usable).sum())}
         else:
+            cover = ctx.footprint.to_healpix(depth_raw.nside, nest=depth_raw.nest) > 0
+            spread = float(np.nanstd(depth_raw.m50_mag[cover]))
             notes.append(
                 "the injection table has no positions, so injections could not be moved to a "
                 "common depth before the fit: the fitted curve spans every tile's depth, and "
-                "the depth map then shifts it tile by tile, so the curve's width (and the "
-                "spread of completeness near m50) is overstated by the spread of depth "
-                "between tiles"
+                "the depth map then shifts it tile by tile, so the curve's width is "
+                "overstated by the spread of depth between tiles "
+                f"({spread:.3g} mag rms over the footprint"
+                + (", so here by nothing)" if spread == 0 else ")")
             )
     fit = cm.fit_completeness(fit_table, model=section.model, plateau=section.plateau,
                               rng=ctx.rng)
@@ -600,7 +603,9 @@ def _stage_counts(ctx: RunContext) -> StageResult:
 
     fits = {}
     fit_lo = float(fit_range[0])
-    reference = 0.5 * round(fit_range[0] + fit_range[1])
+    reference = section.reference_mag
+    if reference is None:  # the middle of the fit range, rounded to 0.5 mag
+        reference = 0.5 * round(fit_range[0] + fit_range[1])
     models = _count_models()
     fitters = {}
     for name in (section.model, *[m for m in models if m != section.model]):
@@ -609,7 +614,8 @@ def _stage_counts(ctx: RunContext) -> StageResult:
         settings = {"reference_mag": reference, "m_bright": fit_lo}
         if name != "power_law":
             settings["m_break"] = 0.5 * (fit_range[0] + fit_range[1])
-        fitters[name] = ct.CountsFit(models[name](**settings), forward, fit_range_mag=fit_range)
+        fitters[name] = ct.CountsFit(models[name](**settings), forward, fit_range_mag=fit_range,
+                                     n_bootstrap=section.n_bootstrap)
     # One step per refit: each jackknife region and each bootstrap redraw, for every model.
     n_regions = 0 if region_counts is None else region_counts.shape[0]
     refits = {name: fitter.n_bootstrap + n_regions for name, fitter in fitters.items()}

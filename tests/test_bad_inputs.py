@@ -60,6 +60,7 @@ depth_map = "depth.fits"
 [counts]
 bins = {start = 14.0, stop = 24.0, width = 0.2}
 fit_range = [18.0, 21.8]
+n_bootstrap = 20
 
 [output]
 formats = ["json", "markdown"]

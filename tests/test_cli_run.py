@@ -121,6 +121,7 @@ def test_counts_stage_shows_progress_on_a_terminal(tmp_path, capsys, monkeypatch
         [counts]
         bins = {start = 18, stop = 24, width = 0.5}
         fit_range = [18, 24]
+        n_bootstrap = 10
         """))
     terminal = _Terminal()
     monkeypatch.setattr(sys, "stderr", terminal)

@@ -1,7 +1,7 @@
 """Tests for countscale.pipeline (run_survey) and countscale.report (the report folder).
 
 Outside references used here:
-- closed-form sky geometry (REFERENCES.md §1): a point is in the run file's RA/Dec box minus a
+- closed-form sky geometry: a point is in the run file's RA/Dec box minus a
   cap when its RA/Dec are within the box and its great-circle distance from the cap's centre
   (astropy.coordinates.SkyCoord.separation) exceeds the radius;
 - numpy.histogram for the counts per magnitude bin;

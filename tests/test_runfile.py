@@ -81,6 +81,7 @@ FULL = textwrap.dedent(
     model = "broken_power_law"
     fit_range = [19.0, 25.5]
     reference_mag = 22.0
+    n_bootstrap = 50
 
     [luminosity_function]
     methods = ["sty", "vmax"]
@@ -219,6 +220,7 @@ def test_full_runfile_round_trip(full_file: Path) -> None:
     assert counts.model == "broken_power_law"
     assert counts.fit_range == (19.0, 25.5)
     assert counts.reference_mag == 22.0
+    assert counts.n_bootstrap == 50
 
     lf = rf.luminosity_function
     assert lf.methods == ("sty", "vmax")
@@ -317,6 +319,7 @@ def test_defaults_inside_sections_and_items(tmp_path: Path) -> None:
     assert rf.counts.model == "power_law"
     assert rf.counts.bins == {"start": 18.0, "stop": 26.0, "width": 0.5}
     assert (rf.counts.fit_range, rf.counts.reference_mag) == (None, None)
+    assert rf.counts.n_bootstrap == 200
     lf = rf.luminosity_function
     assert lf.methods == ("vmax", "sty", "swml")
     assert lf.kcorrection is None
@@ -933,6 +936,12 @@ BAD = [
         "[counts]\nbins = {start = 18, stop = 26, width = 0}\n",
         InputError,
         exact(f"{F}: [counts] 'bins.width' must be a number > 0; got 0"),
+    ),
+    (
+        "counts-n-bootstrap-negative",
+        "[counts]\nbins = {start = 18, stop = 26, width = 0.5}\nn_bootstrap = -1\n",
+        InputError,
+        exact(f"{F}: [counts] 'n_bootstrap' must be an integer in [0, 100000]; got -1"),
     ),
     (
         "bins-too-many",
