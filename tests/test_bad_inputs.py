@@ -395,3 +395,15 @@ def test_a_failing_figure_is_reported_and_results_are_written(small_demo, baseli
     text = (tmp_path / "report.md").read_text()
     assert "About the number counts figure: not drawn: ValueError" in text
     assert "![number counts]" not in text
+
+
+def test_a_p_value_that_is_a_bound_is_printed_as_one(baseline):
+    # No redraw as extreme as the data: p = 1 / (B + 1) bounds the p-value from above.
+    results = json.loads(json.dumps(baseline))
+    results["counts"]["fit"].update(p_value=1 / 201, p_value_is_bound=True, n_bootstrap=200)
+    text = report.render_markdown(results)
+    assert ("parametric-bootstrap p < 0.005 (none of 200 bootstrap redraws was as extreme)"
+            in text)
+    assert "p = 0.00498" not in text
+    results["counts"]["fit"].update(p_value=0.31, p_value_is_bound=False)
+    assert "parametric-bootstrap p = 0.31;" in report.render_markdown(results)
