@@ -138,16 +138,21 @@ def test_counts_bins_and_variance_regions_from_the_run_file(tmp_path):
         regions = 6
         """)
     runfile, _df = make_survey(tmp_path, extra=extra)
-    result = run_survey(runfile, out_dir=tmp_path / "out", seed=1, progress=False)
+    # The catalogue is unclustered: the jackknife finds no clustering excess, and the
+    # variance stage says so beside the analytic value.
+    with pytest.warns(UserWarning, match="the jackknife finds no clustering excess"):
+        result = run_survey(runfile, out_dir=tmp_path / "out", seed=1, progress=False)
     tally_part = result.results["tally"]
     np.testing.assert_allclose(tally_part["mag_bins"]["edges"], 18.0 + 0.5 * np.arange(13))
     assert tally_part["mag_bins"]["grid"] == "given"
     assert tally_part["regions"]["n_regions"] == 6
-    # The counts stage ran on these bins; no stage reads [variance] beyond its regions yet.
-    assert result.stages == ("tally", "counts")
+    # The counts stage ran on these bins, after the variance stage (its jackknife over the
+    # 6 regions, and the analytic value from the catalogue's redshifts).
+    assert result.stages == ("tally", "variance", "counts")
+    assert result.results["variance"]["jackknife"]["n_regions"] == 6
     assert result.results["counts"]["differential"]["mag_lo"][0] == 18.0
-    assert result.results["run"]["sections_not_run"] == ["variance"]
-    assert "## Not run" in (tmp_path / "out" / "report.md").read_text()
+    assert result.results["run"]["sections_not_run"] == []
+    assert "## Not run" not in (tmp_path / "out" / "report.md").read_text()
 
 
 def test_same_seed_same_results_json(tmp_path):
