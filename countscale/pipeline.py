@@ -496,7 +496,14 @@ def _stage_variance(ctx: RunContext) -> StageResult:
         else:
             data["warnings"].append(f"{tally_result.n_regions} regions: too few for a "
                                     "jackknife (at least 3)")
-    if "analytic" in section.methods:
+    analytic = "analytic" in section.methods
+    if analytic and runfile.catalog.population == "stars":
+        analytic = False
+        data["warnings"].append(
+            "no analytic cosmic variance for stars: it describes galaxies tracing the "
+            "large-scale structure; stars' field-to-field scatter is the Galaxy's structure "
+            "(galactic latitude), so the counts' errors use the jackknife")
+    if analytic:
         cosmology = run_cosmology(runfile)
         power = vr.linear_power(cosmology, sigma8=section.sigma8, n_s=section.n_s,
                                 wiggles=section.wiggles)
