@@ -335,7 +335,7 @@ def run_cosmology(runfile: Any) -> Any:
 #: Magnitude limits either side of the headline one at which the variance stage also reports
 #: the analytic cosmic variance (mag), and the areas of its figure's curve (deg^2).
 _VARIANCE_MAG_OFFSETS = np.arange(-3.0, 0.01, 0.5)
-_CURVE_AREAS_DEG2 = np.geomspace(0.01, 41252.96, 43)
+_CURVE_AREAS_DEG2 = np.geomspace(1e-3, 41252.96, 47)
 
 
 def _variance_mag_limit(ctx: RunContext) -> tuple[float, str]:
@@ -544,7 +544,8 @@ def _stage_variance(ctx: RunContext) -> StageResult:
         }
         data["poisson_over_cosmic_variance"] = poisson / sigma if sigma > 0 else None
         data["total_fraction"] = math.hypot(poisson, sigma)
-        curve = vr.caps_curve(spectrum, _CURVE_AREAS_DEG2, density_per_deg2=density)
+        areas = _CURVE_AREAS_DEG2[_CURVE_AREAS_DEG2 * density >= 1.0]  # at least one source
+        curve = vr.caps_curve(cv.spectrum(m_limit, lmax=2e5), areas, density_per_deg2=density)
         curve["layout"] = "one circular field of each area"
         curve["footprint"] = {"area_deg2": area, "cosmic_variance": sigma,
                               "poisson": poisson}

@@ -86,7 +86,7 @@ class CosmicVariance:
     def spectrum(self, m_limit, lmax=None):
         """Limber C_ell of sources brighter than ``m_limit`` (cached per limit)."""
         m_limit = check_real(m_limit, "m_limit")
-        top = max(self.mask.lmax, 3000.0) if lmax is None else float(lmax)
+        top = max(self.mask.lmax if lmax is None else float(lmax), 3000.0)
         key = round(m_limit, 9)
         cached = self._spectra.get(key)
         if cached is None or cached.lmax < top:
