@@ -148,15 +148,31 @@ def render_markdown(results: Mapping[str, Any]) -> str:
     if "counts" in results:
         out += ["", *_counts_markdown(results["counts"])]
         out += _figure_markdown(results, "counts", "number counts")
-    if run.get("warnings"):
+    other = _other_warnings(results)
+    if other:
         out += ["", "## Warnings", "", "Raised while the stages ran (stage: message):", ""]
-        out += [f"- {line}" for line in run["warnings"]]
+        out += [f"- {line}" for line in other]
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         out += ["", "## Not run", "", f"The run file has {listed}; this version of countscale "
                 "has no stage that fits or reports them yet (the tally used `[counts].bins` "
                 "and `[variance].regions` where given)."]
     return "\n".join(out) + "\n"
+
+
+def _other_warnings(results: Mapping[str, Any]) -> list[str]:
+    """The run's warnings (``"stage: message"``) that its stage's block does not already show
+    among its own ``warnings`` or ``notes``."""
+    out = []
+    for line in results.get("run", {}).get("warnings", []):
+        stage, _, message = line.partition(": ")
+        block = results.get(stage)
+        shown = ()
+        if isinstance(block, Mapping):
+            shown = (*block.get("warnings", ()), *block.get("notes", ()))
+        if message not in shown:
+            out.append(line)
+    return out
 
 
 def _figure_markdown(results: Mapping[str, Any], name: str, alt: str) -> list[str]:
@@ -419,8 +435,9 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
         lines += [f"                note: {note}" for note in results["counts"].get("notes", [])]
     for name, notes in results.get("figure_notes", {}).items():
         lines += [f"figure {name:<9}{note}" for note in notes]
-    if run.get("warnings"):
-        lines += ["", "warnings        " + "\n                ".join(run["warnings"])]
+    other = _other_warnings(results)
+    if other:
+        lines += ["", "warnings        " + "\n                ".join(other)]
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         lines += ["", f"not run yet     {listed}",

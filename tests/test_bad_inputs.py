@@ -407,3 +407,19 @@ def test_a_p_value_that_is_a_bound_is_printed_as_one(baseline):
     assert "p = 0.00498" not in text
     results["counts"]["fit"].update(p_value=0.31, p_value_is_bound=False)
     assert "parametric-bootstrap p = 0.31;" in report.render_markdown(results)
+
+
+def test_report_lists_each_warning_once(baseline):
+    # A warning a stage already shows in its own block (its warnings or notes) is not repeated
+    # under "Warnings"; one it does not show is listed there, one line.
+    results = json.loads(json.dumps(baseline))
+    note = "comparison model double_power_law not fitted: the data do not constrain it"
+    results["counts"]["notes"] = [note]
+    results["run"]["warnings"] = ["tally: footprint too small for 24 regions; using one",
+                                  f"counts: {note}"]
+    text = report.render_markdown(results)
+    assert text.count(note) == 1
+    assert "## Warnings" in text
+    assert "- tally: footprint too small for 24 regions; using one" in text
+    assert f"- counts: {note}" not in text
+    assert "tally: footprint too small" in report.render_text(results)
