@@ -793,6 +793,28 @@ def _ledger_story(tally_result: Any) -> str:
     return "; ".join(parts)
 
 
+#: Share of the catalogue's rows without a usable magnitude above which the counts say that
+#: their densities leave those rows out (a few bad rows are the ledger's business alone).
+_NOTABLE_MAGNITUDE_LOSS = 0.01
+
+
+def _rows_without_magnitude_note(ledger: Any) -> str | None:
+    """A note for the counts when many rows were rejected for their magnitude, else None.
+
+    Such rows are rejected before the footprint test, so whether they lie in the footprint is
+    not known; if they are real sources there, every density is low by up to their share.
+    """
+    reasons = ("mag_missing", "mag_implausible")
+    lost = {r: int(ledger.rows_rejected.get(r, 0)) for r in reasons}
+    n_lost = sum(lost.values())
+    if not ledger.rows_read or n_lost / ledger.rows_read <= _NOTABLE_MAGNITUDE_LOSS:
+        return None
+    listed = ", ".join(f"{r} {n:,d}" for r, n in lost.items() if n)
+    return (f"{100 * n_lost / ledger.rows_read:.2g} % of the catalogue's rows ({n_lost:,d}: "
+            f"{listed}) have no usable magnitude and are not counted; if they are sources in "
+            "the footprint, every density and N(<m) here is low by up to that share")
+
+
 def _whole_bins(edges: np.ndarray, fit_range: tuple[float, float]) -> tuple[float, float] | None:
     """The bins lying wholly inside ``fit_range``, as (first edge, last edge); None if none."""
     lo, hi = fit_range
@@ -869,6 +891,9 @@ def _stage_counts(ctx: RunContext) -> StageResult:
             f"[{edges[0]:g}, {edges[-1]:g}]; got {n_binned:,d} ({_ledger_story(tally_result)})"
         )
     notes = []
+    no_magnitude = _rows_without_magnitude_note(tally_result.ledger)
+    if no_magnitude:
+        notes.append(no_magnitude)
     if completeness is not None:
         effective, per_region = completeness["total"], list(completeness["per_region"])
     else:

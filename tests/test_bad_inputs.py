@@ -196,6 +196,33 @@ def without_paths(block):
     return block
 
 
+def every_20th_magnitude(value):
+    def change(folder):
+        table = pq.read_table(folder / "catalog.parquet")
+        mag = table.column("mag_r").to_numpy().copy()
+        mag[::20] = value
+        table = table.set_column(table.schema.get_field_index("mag_r"), "mag_r",
+                                 pa.array(mag, type=table.schema.field("mag_r").type))
+        pq.write_table(table, folder / "catalog.parquet")
+    return change
+
+
+def rows_without_magnitude_are_named(share):
+    def check(results, baseline, folder):
+        ledger = results["ledger"]
+        n_bad = ledger["rows_rejected"]["mag_implausible"]
+        assert n_bad == pytest.approx(share * ledger["rows_read"], abs=1)
+        [note] = [n for n in results["counts"]["notes"] if "no usable magnitude" in n]
+        n_missing = ledger["rows_rejected"]["mag_missing"]  # the demo's own sentinel rows
+        assert (f"({n_bad + n_missing:,d}: mag_missing {n_missing:,d}, mag_implausible "
+                f"{n_bad:,d})") in note
+        assert "low by up to that share" in note
+        assert "no usable magnitude" in (folder / "out" / "report.md").read_text()
+        # The clean survey carries no such note.
+        assert not any("no usable magnitude" in n for n in baseline["counts"]["notes"])
+    return check
+
+
 def fit_range_snapped_and_warnings_reported(results, baseline, folder):
     counts = results["counts"]
     assert counts["fit"]["fit_range"] == [18.2, 23.0]
@@ -216,6 +243,10 @@ CASES = [
     ("absurd-magnitudes",
      both(append_rows(inside_rows(20, 1e30, 0.8)), append_rows(inside_rows(30, -999.0, 0.8))),
      same_numbers_as_the_clean_survey(50)),
+    #    5 % of the rows with the placeholder -999: rejected by name, and the counts say
+    #    beside N(<m) that the densities leave those rows out.
+    ("placeholder-magnitudes-5-percent", every_20th_magnitude(-999.0),
+     rows_without_magnitude_are_named(0.05)),
     # 2. Depth-map values that are no magnitude.
     ("depth-map-minus-99", edit_depth(values=lambda v: np.where(np.arange(v.size) == 0, -99, v)),
      F + r"\[completeness\] 'depth_map': depth map 'depth\.fits' must hold m50 values in the "
