@@ -26,6 +26,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import stats
 
 from countscale.errors import InputError, InputTypeError
 
@@ -62,6 +63,10 @@ class Contamination:
         Galaxies per bin (sources − stars) and their standard error (Poisson).
     fraction, fraction_err : ndarray
         Stars / sources and its standard error; NaN in empty bins.
+    fraction_interval_68 : ndarray, shape (n, 2)
+        A 68 % interval of the fraction: Clopper-Pearson (exact binomial; Clopper & Pearson
+        1934, Biometrika 26, 404) for a classifier, so a bin of 4 stars out of 4 sources is
+        not "1 ± 0"; fraction ± error clipped to [0, 1] for a subtraction.
     """
 
     method: str
@@ -73,6 +78,7 @@ class Contamination:
     n_galaxies_err: np.ndarray
     fraction: np.ndarray
     fraction_err: np.ndarray
+    fraction_interval_68: np.ndarray
 
     def to_json(self) -> dict:
         def listed(values: np.ndarray) -> list:
@@ -88,6 +94,7 @@ class Contamination:
             "n_galaxies_err": listed(self.n_galaxies_err),
             "fraction": listed(self.fraction),
             "fraction_err": listed(self.fraction_err),
+            "fraction_interval_68": [listed(row) for row in self.fraction_interval_68],
         }
 
 
@@ -114,8 +121,14 @@ def from_classifier(galaxy_counts, star_counts, mag_edges) -> Contamination:
     with np.errstate(invalid="ignore", divide="ignore"):
         fraction = np.where(total > 0, stars / total, np.nan)
         error = np.where(total > 0, np.sqrt(fraction * (1 - fraction) / total), np.nan)
+    # Clopper-Pearson bounds from the beta distribution's quantiles (scipy.stats.beta).
+    tail = 0.5 * (1.0 - 0.6826894921370859)  # 68.27 %: the normal one-sigma probability
+    with np.errstate(invalid="ignore"):
+        lo = np.where(stars > 0, stats.beta.ppf(tail, stars, kept + 1), 0.0)
+        hi = np.where(kept > 0, stats.beta.ppf(1 - tail, stars + 1, kept), 1.0)
+    interval = np.where((total > 0)[:, None], np.stack([lo, hi], axis=1), np.nan)
     return Contamination("classifier", edges, total, stars, np.zeros_like(stars), kept,
-                         np.sqrt(kept), fraction, error)
+                         np.sqrt(kept), fraction, error, interval)
 
 
 def subtract_stars(observed_counts, star_counts, mag_edges) -> Contamination:
@@ -143,5 +156,6 @@ def subtract_stars(observed_counts, star_counts, mag_edges) -> Contamination:
         error = np.where((observed > 0) & (stars > 0),
                          fraction * np.sqrt(1.0 / np.maximum(stars, 1) + 1.0 / observed),
                          np.where(observed > 0, 1.0 / observed, np.nan))
+    interval = np.clip(np.stack([fraction - error, fraction + error], axis=1), 0.0, 1.0)
     return Contamination("star_catalog", edges, observed, stars, np.sqrt(stars), galaxies,
-                         np.sqrt(observed + stars), fraction, error)
+                         np.sqrt(observed + stars), fraction, error, interval)

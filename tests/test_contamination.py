@@ -78,6 +78,11 @@ def test_a_perfect_flag_gives_the_galaxy_only_counts_exactly(mixed):
     ok = (stars + galaxies) > 0
     np.testing.assert_allclose(cont.fraction_err[ok],
                                np.sqrt(truth * (1 - truth) / (stars + galaxies))[ok])
+    # Its 68 % interval: Clopper-Pearson, as scipy.stats.binomtest gives it.
+    for i in np.flatnonzero(ok)[::4]:
+        ci = stats.binomtest(int(stars[i]), int(stars[i] + galaxies[i])).proportion_ci(
+            confidence_level=0.6826894921370859, method="exact")
+        np.testing.assert_allclose(cont.fraction_interval_68[i], [ci.low, ci.high], atol=1e-9)
     # Stars are most of the sources at bright magnitudes, few at the faint end.
     assert cont.fraction[0] > 0.8 and cont.fraction[-1] < 0.2
 
