@@ -40,6 +40,15 @@ What the validated values look like
   ``Table(kind="redshift", redshift=(a, b))``.
 * ``[cosmology]`` holds either ``name`` (default ``"Planck18"``) with ``H0 = Om0 = None``, or
   ``H0`` and ``Om0`` with ``name = None``.
+* ``[totals].target_sky`` is a tuple of :class:`FootprintItem` (any kind but ``occupancy``), or
+  None for the whole sky; :func:`countscale.skymodel.target_sky_footprint` builds it.
+* ``[extinction]`` has ``map`` (a path) and exactly one of ``coefficient`` (R) and ``band`` (a
+  name of :data:`countscale.extinction.COEFFICIENTS`).
+* ``[sky_model].covariate_sets`` is a tuple of tuples of names (None: the defaults for the
+  population), checked against the galactic basis, the ``maps`` (tables with ``name``,
+  ``path``, ``nest``, ``transform``) and ``ebv`` when there is an ``[extinction]`` section.
+* ``[catalog]`` may name a ``classifier`` column and a ``classifier_threshold`` (None: 0.5);
+  ``[contamination]`` (galaxies only, not with a classifier) names a ``star_catalog``.
 
 Errors
 ------
