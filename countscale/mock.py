@@ -33,9 +33,14 @@ Galaxies
 Stars
     Classes of one absolute magnitude each, with midplane densities n_k, in an exponential
     disk of scale height h_z seen from the midplane; along galactic latitude b a class seen to
-    distance R gives N(b) = n_k (h_z / sin|b|)^3 gamma(3, R sin|b| / h_z) per sr (REFERENCES.md
-    section 8; Bahcall & Soneira 1980, ApJS 44, 73 for disk models). An infinite scale height
-    is a uniform (static Euclidean) population.
+    distance R gives N(b) = n_k (h_z / sin|b|)^3 gamma(3, R sin|b| / h_z) per sr (the integral of
+    r^2 exp(-r sin|b| / h_z); Bahcall & Soneira 1980, ApJS 44, 73 for disk models). An
+    infinite scale height is a uniform (static Euclidean) population. A finite radial scale
+    length L adds a gradient exp(X / L) toward the galactic centre: the same integral with
+    sin|b| / h_z replaced by sin|b| / h_z - cos b cos l / L (any sign).
+Dust
+    An optional E(B-V) map dims every source by R E(B-V) before detection (a foreground
+    screen); the truth stays in intrinsic magnitudes.
 Positions
     Poisson-uniform over the footprint, or the galaxies modulated by one lognormal field
     1 + delta on HEALPix (Coles & Jones 1991, MNRAS 248, 1; from memory), the same at every

@@ -1014,7 +1014,7 @@ def _check_engine(table: Table, where: _Where) -> Table:
 
 
 # --------------------------------------------------------------------------------------------
-# The schema: every section and key of a run file (DESIGN.md section 4)
+# The schema: every section and key of a run file (the user-visible contract)
 # --------------------------------------------------------------------------------------------
 
 SECTIONS: dict[str, Section] = {
