@@ -808,13 +808,19 @@ _DRAW_BLOCK = 128
 
 
 def _log_integral(design: np.ndarray, log_area: np.ndarray, betas: np.ndarray) -> np.ndarray:
-    """ln sum_c exp(design_c . beta + ln a_c) for each row of ``betas`` (n_draws,)."""
+    """ln sum_c exp(design_c . beta + ln a_c) for each row of ``betas`` (n_draws,).
+
+    One row (a best fit) is summed in float64; many rows (Monte Carlo draws) in float32, 1.5x
+    faster here and accurate to about 1e-6 in ln, far below the spread of any draws.
+    """
     if design.shape[0] == 0:
         return np.full(betas.shape[0], -np.inf)
-    columns = np.ascontiguousarray(design.T)
+    dtype = np.float64 if betas.shape[0] == 1 else np.float32
+    columns = np.ascontiguousarray(design.T, dtype=dtype)
+    log_area = log_area.astype(dtype)
     out = np.empty(betas.shape[0])
     for start in range(0, betas.shape[0], _DRAW_BLOCK):
-        block = betas[start:start + _DRAW_BLOCK]
+        block = betas[start:start + _DRAW_BLOCK].astype(dtype)
         # A log-sum-exp in three passes over a (draws x cells) block, rows contiguous
         # (measured 2x faster than scipy.special.logsumexp over cells x draws).
         terms = block @ columns
@@ -822,7 +828,8 @@ def _log_integral(design: np.ndarray, log_area: np.ndarray, betas: np.ndarray) -
         peak = terms.max(axis=1, keepdims=True)
         terms -= peak
         np.exp(terms, out=terms)
-        out[start:start + block.shape[0]] = np.log(terms.sum(axis=1)) + peak[:, 0]
+        out[start:start + block.shape[0]] = (np.log(terms.sum(axis=1, dtype=np.float64))
+                                             + peak[:, 0])
     return out
 
 
