@@ -538,7 +538,7 @@ def _stage_contamination(ctx: RunContext) -> StageResult:
     edges = tally_result.mag_edges
     if runfile.catalog.classifier is not None:
         result = cn.from_classifier(tally_result.counts, tally_result.excluded_counts, edges)
-        notes = [f"sources with [catalog] classifier >= {tally_result_threshold(runfile):g} "
+        notes = [f"sources with [catalog] classifier >= {_classifier_threshold(runfile):g} "
                  "are stars: the tally left them out of every count and fit "
                  f"(ledger reason {tally_result.excluded_reason})"]
         return StageResult({**result.to_json(), "notes": notes}, {"contamination": result})
@@ -568,7 +568,7 @@ def _stage_contamination(ctx: RunContext) -> StageResult:
     return StageResult(data, {"contamination": result, "star_tally": stars})
 
 
-def tally_result_threshold(runfile: Any) -> float:
+def _classifier_threshold(runfile: Any) -> float:
     from countscale.catalog import DEFAULT_CLASSIFIER_THRESHOLD
 
     value = runfile.catalog.classifier_threshold

@@ -243,15 +243,21 @@ def _contamination_markdown(cont: Mapping[str, Any]) -> list[str]:
     return out
 
 
+def _target_item_text(item: Mapping[str, Any]) -> str:
+    kind = item["kind"]
+    if kind == "galactic_latitude_above":
+        return f"|b| ≥ {item['b_deg']:g}°"
+    if kind == "galactic_latitude_below":
+        return f"|b| < {item['b_deg']:g}°"
+    params = ", ".join(f"{k} {v}" for k, v in item.items() if k != "kind")
+    return f"{kind} ({params})"
+
+
 def _sky_model_markdown(sky: Mapping[str, Any]) -> list[str]:
     target = sky["target_sky"]
     items = target["items"]
-    if isinstance(items, str):
-        target_text = items
-    else:
-        target_text = " ∪ ".join(
-            ", ".join(f"{k} {v}" for k, v in item.items() if k != "kind") + f" ({item['kind']})"
-            for item in items)
+    target_text = items if isinstance(items, str) else " ∪ ".join(
+        _target_item_text(item) for item in items)
     total, naive = sky["total"], sky["naive"]
     units = sky["units"]
     outside = sky["fraction_outside_observed_range"]
