@@ -119,7 +119,7 @@ __all__ = [
 #: Logical columns, required ones first. ``id`` may be integer, float or text; the others
 #: must be numeric.
 REQUIRED_COLUMNS = ("ra", "dec", "mag")
-OPTIONAL_COLUMNS = ("redshift", "mag_error", "stellar_mass", "id", "weight")
+OPTIONAL_COLUMNS = ("redshift", "mag_error", "stellar_mass", "id", "weight", "redshift_error")
 LOGICAL_COLUMNS = REQUIRED_COLUMNS + OPTIONAL_COLUMNS
 
 #: Rejection reasons in precedence order (the first failing rule wins).
@@ -510,8 +510,9 @@ class CatalogChunk:
         Degrees, as stored (not yet validated or normalised).
     mag : float64 ndarray, shape (n,)
         AB magnitudes as stored; sentinels not yet removed.
-    redshift, mag_error, stellar_mass, weight : float64 ndarray, shape (n,), or None
-        None when the column is not mapped. ``stellar_mass`` is in the file's own unit.
+    redshift, mag_error, stellar_mass, weight, redshift_error : float64 ndarray (n,) or None
+        None when the column is not mapped. ``stellar_mass`` is in the file's own unit;
+        ``redshift_error`` is the 1-sigma error of a (photometric) redshift.
     id : ndarray, shape (n,), or None
         int64, float64 or object (str) ids; None when no id column is mapped.
     id_missing : bool ndarray, shape (n,), or None
@@ -534,6 +535,7 @@ class CatalogChunk:
     id: np.ndarray | None = None
     id_missing: np.ndarray | None = None
     weight: np.ndarray | None = None
+    redshift_error: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         n = np.shape(self.ra)[0] if np.ndim(self.ra) == 1 else None
@@ -577,6 +579,7 @@ class ValidChunk:
     stellar_mass: np.ndarray | None = None
     id: np.ndarray | None = None
     weight: np.ndarray | None = None
+    redshift_error: np.ndarray | None = None
 
     @property
     def n_rows(self) -> int:
@@ -640,9 +643,9 @@ class CatalogSource:
         a glob matching nothing is an error. Plain paths are checked by :meth:`check`.
     ra, dec, mag : str
         Names of the right ascension (deg), declination (deg) and magnitude (AB) columns.
-    redshift, mag_error, stellar_mass, id, weight : str, optional
-        Optional columns. With ``id``, later rows repeating a kept id are rejected as
-        ``duplicate_id``.
+    redshift, mag_error, stellar_mass, id, weight, redshift_error : str, optional
+        Optional columns (``redshift_error``: 1-sigma errors of photometric redshifts).
+        With ``id``, later rows repeating a kept id are rejected as ``duplicate_id``.
     population : {"galaxies", "stars"}
     sentinels : sequence of float
         Magnitudes meaning "no measurement", besides NaN/inf. Default ``DEFAULT_SENTINELS``.
@@ -667,6 +670,7 @@ class CatalogSource:
     population: str = "galaxies"
     sentinels: tuple[float, ...] = DEFAULT_SENTINELS
     require_redshift: bool = False
+    redshift_error: str | None = None
     files: tuple[Path, ...] = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
@@ -1496,6 +1500,7 @@ def validate_chunk(chunk: CatalogChunk, rules: ValidationRules,
         source=chunk.source, row_in_file=row_in_file, ra=ra, dec=pick(chunk.dec),
         mag=pick(chunk.mag), redshift=pick(chunk.redshift), mag_error=pick(chunk.mag_error),
         stellar_mass=pick(chunk.stellar_mass), id=pick(chunk.id), weight=pick(chunk.weight),
+        redshift_error=pick(chunk.redshift_error),
     )
     return valid, rejected, notes
 

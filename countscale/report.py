@@ -147,6 +147,10 @@ def render_markdown(results: Mapping[str, Any]) -> str:
         out += ["", *_counts_markdown(results["counts"])]
         if "counts" in figures:
             out += ["", f"![number counts]({figures['counts']})"]
+    if "luminosity_function" in results:
+        out += ["", *_luminosity_function_markdown(results["luminosity_function"])]
+        if "luminosity_function" in figures:
+            out += ["", f"![luminosity function]({figures['luminosity_function']})"]
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         out += ["", "## Not run", "", f"The run file has {listed}; this version of countscale "
@@ -240,6 +244,72 @@ def _counts_markdown(counts: Mapping[str, Any]) -> list[str]:
     return out
 
 
+_LF_LABELS = {
+    "m_star": "M* [mag]", "alpha": "α", "phi_star": "φ* [Mpc⁻³]",
+    "log10_mass_star": "log10 M* [Msun]", "alpha_1": "α₁", "alpha_2": "α₂",
+    "phi_star_1": "φ*₁ [Mpc⁻³ dex⁻¹]", "phi_star_2": "φ*₂ [Mpc⁻³ dex⁻¹]",
+    "Q": "Q [mag per unit z]", "P": "P",
+    "luminosity_density_mag": "luminosity density [mag Mpc⁻³]",
+    "mass_density_msun_mpc3": "stellar mass density [Msun Mpc⁻³]",
+    "number_density_mpc3": "number density [Mpc⁻³]",
+}
+
+
+def _luminosity_function_markdown(lf: Mapping[str, Any]) -> list[str]:
+    sel, sample = lf["selection"], lf["sample"]
+    what = "Luminosity function" if lf["quantity"] == "luminosity" else "Stellar-mass function"
+    z_lo, z_hi = sel["redshift_range"]
+    out = [
+        f"## {what}",
+        "",
+        f"{sample['n_used']:,d} galaxies with {sel['mag_limits'][0]:g} ≤ m ≤ "
+        f"{sel['mag_limits'][1]:g} and {z_lo:g} ≤ z ≤ {z_hi:g}, over "
+        f"{sel['area_sr']:.5g} sr ({sel['volume_mpc3']:.4g} Mpc³ comoving), in "
+        f"{sel['cosmology']} (H0 = {sel['H0']:g}; densities per Mpc³ with that H0). "
+        f"Left out: {sample['n_outside_mag_limits']:,d} outside the apparent limits, "
+        f"{sample['n_no_redshift']:,d} without a redshift, "
+        f"{sample['n_outside_redshift_range']:,d} outside the redshift range"
+        + (f", {sample['n_no_stellar_mass']:,d} without a stellar mass, "
+           f"{sample['n_outside_mass_limits']:,d} outside the mass-completeness limits"
+           if lf["quantity"] == "stellar_mass" else "") + ".",
+    ]
+    sty = lf.get("sty")
+    if sty is not None:
+        evo = sty["evolution"]
+        fitted = ", ".join(evo["fitted"]) or "none"
+        count_error = ("jackknife over regions" if sty["normalisation"]["n_regions"] >= 3
+                       else "Poisson")
+        out += [
+            "",
+            f"STY maximum likelihood ({sty['model'].replace('_', ' ')}; evolution Q = "
+            f"{evo['Q']:.3g}, P = {evo['P']:.3g}; fitted: {fitted}). Intervals are 68 %; the "
+            "shape's errors come from the likelihood's curvature, the normalisation's also "
+            f"from the count ({count_error}) and the shape.",
+            "",
+            "| parameter | value | budget |",
+            "|---|---|---|",
+        ]
+        for name, value in sty.items():
+            if isinstance(value, Mapping) and "median" in value:
+                budget = ", ".join(f"{k} {v:.0%}" for k, v in value.get("budget", {}).items())
+                label = _LF_LABELS.get(name, name)
+                if name == "number_density_mpc3":
+                    label += f" (brighter than {sty['number_density_limit']:.4g})" \
+                        if lf["quantity"] == "luminosity" else \
+                        f" (above {sty['number_density_limit']:.4g} dex)"
+                out.append(f"| {label} | {_estimate(value)} | {budget} |")
+    for key, name in (("vmax", "1/Vmax"), ("swml", "SWML")):
+        block = lf.get(key)
+        if block is None:
+            continue
+        x = block[lf["x_name"]]
+        out += ["", f"{name}: {len(x)} bins from {block['bin_lower'][0]:g} to "
+                    f"{block['bin_upper'][-1]:g}; errors: {block['error_kind']}."]
+    for note in lf.get("notes", []):
+        out += ["", f"Note: {note.rstrip('.')}."]
+    return out
+
+
 def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] = ()) -> str:
     """The plain-text summary ``countscale run`` prints."""
     run, ledger, fp, tally = (results["run"], results["ledger"], results["footprint"],
@@ -282,6 +352,21 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
             f"N(<{integral['m_limit']:g}) = {_estimate(integral['per_deg2'])}",
         ]
         lines += [f"                note: {note}" for note in results["counts"].get("notes", [])]
+    if "luminosity_function" in results:
+        lf = results["luminosity_function"]
+        sty = lf.get("sty")
+        head = "luminosity fn" if lf["quantity"] == "luminosity" else "mass function"
+        line = f"{head:<16}{lf['sample']['n_used']:,d} galaxies"
+        if sty is not None:
+            params = [f"{k} {_estimate(v)}" for k, v in sty.items()
+                      if isinstance(v, Mapping) and "median" in v
+                      and not k.endswith(("density_mag", "_mpc3"))]
+            line += ": STY " + "; ".join(params)
+        lines += ["", line]
+        shown = [name for key, name in (("vmax", "1/Vmax"), ("swml", "SWML")) if key in lf]
+        if shown:
+            lines.append(f"                {' and '.join(shown)} in "
+                         f"{len(lf[('vmax' if 'vmax' in lf else 'swml')]['phi'])} bins")
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         lines += ["", f"not run yet     {listed}",
@@ -299,7 +384,7 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
 
 
 FIGURE_NAMES = {"footprint": "footprint.png", "completeness": "completeness.png",
-                "counts": "counts.png"}
+                "counts": "counts.png", "luminosity_function": "luminosity_function.png"}
 
 
 def figure_names(results: Mapping[str, Any], formats: Iterable[str],
@@ -314,7 +399,8 @@ def figure_names(results: Mapping[str, Any], formats: Iterable[str],
     names = []
     if footprint is not None:
         names.append("footprint")
-    names += [name for name in ("completeness", "counts") if name in results]
+    names += [name for name in ("completeness", "counts", "luminosity_function")
+              if name in results]
     return {name: FIGURE_NAMES[name] for name in names}
 
 
@@ -357,6 +443,10 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
                 results["completeness"], p, title=f"{title}: detection completeness"),
             "counts": lambda p: plots.counts_figure(
                 results["counts"], p, title=f"{title}: differential number counts"),
+            "luminosity_function": lambda p: plots.luminosity_function_figure(
+                results["luminosity_function"], p, title=f"{title}: "
+                + ("luminosity" if results["luminosity_function"]["quantity"] == "luminosity"
+                   else "stellar-mass") + " function"),
         }
         for name in figure_names(results, formats, footprint):
             figures[name] = drawers[name]

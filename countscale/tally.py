@@ -134,6 +134,10 @@ COLUMNS = {
     "weight": np.float32,
     "coverage": np.float32,
     "region": np.int32,
+    "redshift_error": np.float32,
+    # Positions, for per-source completeness from a depth map (float32: 0.1 arcsec).
+    "ra": np.float32,
+    "dec": np.float32,
 }
 
 ENGINES = ("local", "dask")
@@ -754,7 +758,7 @@ def _blocks(chunk: CatalogChunk, block_rows: int) -> Iterator[CatalogChunk]:
         yield chunk
         return
     names = ("ra", "dec", "mag", "redshift", "mag_error", "stellar_mass", "id", "id_missing",
-             "weight")
+             "weight", "redshift_error")
     for start in range(0, n, block_rows):
         stop = start + block_rows
         arrays = {k: (None if getattr(chunk, k) is None else getattr(chunk, k)[start:stop])
@@ -1126,7 +1130,9 @@ def _columns_iv(columns: Any, source: CatalogSource) -> tuple[str, ...]:
     available = [c for c in COLUMNS if c in ("coverage", "region")
                  or getattr(source, c, None) is not None]
     if columns is None:
-        return tuple(available)
+        # Positions only when asked for: they are the one per-source column most runs do
+        # not need (8 bytes per source).
+        return tuple(c for c in available if c not in ("ra", "dec"))
     if isinstance(columns, str) or not isinstance(columns, Sequence | set | frozenset):
         raise InputTypeError(f"`columns` must be a list of column names; got {columns!r}")
     out = []
@@ -1167,7 +1173,8 @@ def tally(source: CatalogSource, footprint: Footprint, *, regions: Regions | Non
         Adds a redshift axis to the histogram (needs a ``redshift`` column).
     columns : sequence of str, optional
         Per-source columns to keep for in-footprint sources (names from :data:`COLUMNS`);
-        default every one the source can give. ``()`` keeps none, so memory does not grow with
+        default every one the source can give except the positions ``ra``, ``dec`` (ask for
+        them by name). ``()`` keeps none, so memory does not grow with
         the catalogue; each kept column costs 4 bytes per in-footprint source (8 while the
         blocks are joined at the end).
     engine : {"local", "dask"}

@@ -37,15 +37,31 @@ Examples
 True
 """
 
+from countscale.lumfunc.binned import BinnedFunction, bin_edges
 from countscale.lumfunc.forms import NumberDensityForm
 from countscale.lumfunc.gamma import upper_incomplete_gamma
 from countscale.lumfunc.schechter import DoubleSchechterMass, Evolution, Schechter, SchechterMass
+from countscale.lumfunc.selection import QUANTITIES, Sample, Selection
+from countscale.lumfunc.shapes import MODELS
+from countscale.lumfunc.sty import LuminosityFunctionFitError, STYFit
+from countscale.lumfunc.swml import swml_estimate
+from countscale.lumfunc.vmax import vmax_estimate
 
 __all__ = [
+    "MODELS",
+    "QUANTITIES",
+    "BinnedFunction",
     "DoubleSchechterMass",
     "Evolution",
+    "LuminosityFunctionFitError",
     "NumberDensityForm",
+    "STYFit",
+    "Sample",
     "Schechter",
     "SchechterMass",
+    "Selection",
+    "bin_edges",
+    "swml_estimate",
     "upper_incomplete_gamma",
+    "vmax_estimate",
 ]
