@@ -42,8 +42,8 @@ Without photometric redshifts the visible range depends on z alone, so ln S is c
 selection's 2049 redshift nodes and each galaxy's ln S(z_i) is the cubic Lagrange interpolant
 in ln z (error below 1e-10); the sum over galaxies is then a fixed weighted sum over the
 nodes, prepared once. For a Schechter luminosity function with Q fixed, the sum of ln phi over
-galaxies reduces to three sums of the data. One likelihood evaluation then costs the same for
-10^3 or 10^6 galaxies.
+galaxies reduces to three sums of the data (with Q free, one of them becomes a weighted sum
+over the nodes too). One likelihood evaluation then costs the same for 10^3 or 10^6 galaxies.
 
 Errors
 ------
@@ -90,8 +90,11 @@ class LuminosityFunctionFitError(RuntimeError):
     """A fit did not converge, or its curvature is not usable (not positive definite)."""
 
 
-def node_weights(sample: Sample) -> np.ndarray:
-    """A, with sum_i w_i f(z_i) ~= sum_j A_j f(z_j) for f smooth in ln z (cubic Lagrange)."""
+def node_weights(sample: Sample, weight: np.ndarray | None = None) -> np.ndarray:
+    """A, with sum_i w_i f(z_i) ~= sum_j A_j f(z_j) for f smooth in ln z (cubic Lagrange).
+
+    ``weight`` replaces the sample's weights w_i when given.
+    """
     sel = sample.selection
     ln_z = sel._ln_z
     h = ln_z[1] - ln_z[0]
@@ -107,7 +110,7 @@ def node_weights(sample: Sample) -> np.ndarray:
         (t + 1.0) * t * (t - 1.0) / 6.0,
     )
     a = np.zeros(n_nodes)
-    w = sample.weight
+    w = sample.weight if weight is None else weight
     for k, b in enumerate(basis):
         a += np.bincount(j + k - 1, weights=w * b, minlength=n_nodes)
     return a
@@ -225,13 +228,21 @@ class STYFit:
         d_used = sel._d_nodes[used]
         z_used = sel._z[used]
         value = sample.value
-        quick = isinstance(shape, SchechterLuminosity) and not fit_q
+        # Schechter luminosity functions: sum_i w_i ln phi(x_i) needs only sum w, sum w x and
+        # sum w exp(-C x); with Q free, x = M + Q z and the last is sum_j B_j exp(-C Q z_j)
+        # over the nodes (B: node weights of w exp(-C M); exp(-C Q z) is smooth in ln z).
+        quick = isinstance(shape, SchechterLuminosity)
         if quick:
             x = sample.x(q0)
             x_ref = float(np.median(x))
             w_sum = float(w.sum())
             wx_sum = float(w @ x)
             wu_sum = float(w @ np.exp(-_C * (x - x_ref)))
+            if fit_q:
+                wm_sum, wz_sum = float(w @ value), float(w @ z)
+                b_nodes = node_weights(sample, w * np.exp(-_C * (value - x_ref)))
+                b_used = np.flatnonzero(b_nodes != 0.0)
+                b_z, b_w = sel._z[b_used], b_nodes[b_used]
 
         def nll(theta: np.ndarray) -> float:
             shape_theta = theta[:n_shape]
@@ -240,9 +251,14 @@ class STYFit:
             q = theta[n_shape] if fit_q else q0
             if quick:
                 m_star, alpha = shape_theta
+                sum_x, sum_u = wx_sum, wu_sum
+                if fit_q:
+                    sum_x = wm_sum + q * wz_sum
+                    with np.errstate(over="ignore"):
+                        sum_u = float(b_w @ np.exp(-_C * q * b_z))
                 with np.errstate(over="ignore"):
-                    data = (w_sum * math.log(_C) + (alpha + 1.0) * _C * (w_sum * m_star - wx_sum)
-                            - math.exp(min(_C * (m_star - x_ref), 700.0)) * wu_sum)
+                    data = (w_sum * math.log(_C) + (alpha + 1.0) * _C * (w_sum * m_star - sum_x)
+                            - math.exp(min(_C * (m_star - x_ref), 700.0)) * sum_u)
             else:
                 x = value + q * z if sample.quantity == "luminosity" and q else value
                 data = float(w @ shape.log_density(shape_theta, x))

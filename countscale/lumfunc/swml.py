@@ -7,10 +7,12 @@ STY's with that form (EEP 1988, MNRAS 232, 431, eqs. 2.9-2.12):
 
 H_ij being the fraction of bin j inside the range galaxy i could have at its redshift. Its
 maximum solves phi_k Delta_k = N_k / sum_i [w_i H_ik / sum_j phi_j Delta_j H_ij] (N_k the
-weighted number of galaxies in bin k), iterated from a flat start to a relative change below
-1e-10. Each iteration is O(n_galaxies): sum_j phi_j Delta_j H_ij is a difference of the
-step function's running integral at the galaxy's two limits, and the sums over galaxies of
-H_ik are difference arrays plus the two partial bins.
+weighted number of galaxies in bin k). EEP iterate that equation; here Newton's method in
+ln phi finds the same maximum (the likelihood is concave in ln phi) in a handful of steps
+instead of about a hundred, to a relative change below 1e-10. Each step is O(n_galaxies):
+sum_j phi_j Delta_j H_ij is a difference of the step function's running integral at the
+galaxy's two limits, the sums over galaxies of H_ik are difference arrays plus the two
+partial bins, and those of H_ik H_il follow from six sums per pair of end bins.
 
 The likelihood does not fix the amplitude; it is set, as for STY, by the number of galaxies:
 sum_k phi_k Delta_k V_k = sum_i w_i, with V_k the density-weighted volume over which bin k is
@@ -34,8 +36,6 @@ from countscale.lumfunc.selection import Sample
 from countscale.lumfunc.sty import LuminosityFunctionFitError, count_error
 
 __all__ = ["swml_estimate"]
-
-_CHUNK = 65536
 
 
 class _Overlaps:
@@ -77,20 +77,42 @@ class _Overlaps:
                    + np.bincount(self.j_hi, weights=u * self.f_hi, minlength=k))
         return full + partial
 
-    def dense(self, rows: slice) -> np.ndarray:
-        """H for a block of galaxies, shape (rows, k)."""
-        j = np.arange(self.k)[None, :]
-        j_lo = self.j_lo[rows, None]
-        j_hi = self.j_hi[rows, None]
-        h = ((j > j_lo) & (j < j_hi)).astype(float)
-        h += (j == j_lo) * (self.f_lo[rows, None] + self.f_same[rows, None])
-        h += (j == j_hi) * self.f_hi[rows, None]
-        return h
+    def sum_hh(self, u: np.ndarray) -> np.ndarray:
+        """sum_i u_i H_ik H_il, shape (k, k), from six sums per pair (j_lo, j_hi).
+
+        A galaxy's row of H is 1 strictly between its two end bins and f_lo, f_hi in them,
+        so grouping galaxies by their end bins needs only the sums of u, u f_lo, u f_hi,
+        u f_lo^2, u f_hi^2 and u f_lo f_hi per group: O(n) work and O(k^2) groups.
+        """
+        k = self.k
+        group = self.j_lo * k + self.j_hi
+        size = k * k
+        sums = [np.bincount(group, weights=u * f, minlength=size)
+                for f in (1.0, self.f_lo, self.f_hi, self.f_lo**2, self.f_hi**2,
+                          self.f_lo * self.f_hi, self.f_same**2)]
+        out = np.zeros((k, k))
+        for g in np.flatnonzero(sums[0]):
+            a, b = divmod(int(g), k)
+            if a == b:
+                out[a, a] += sums[6][g]
+                continue
+            s0, s_lo, s_hi, s_lolo, s_hihi, s_lohi = (v[g] for v in sums[:6])
+            inner = slice(a + 1, b)
+            out[inner, inner] += s0
+            out[a, inner] += s_lo
+            out[inner, a] += s_lo
+            out[b, inner] += s_hi
+            out[inner, b] += s_hi
+            out[a, a] += s_lolo
+            out[b, b] += s_hihi
+            out[a, b] += s_lohi
+            out[b, a] += s_lohi
+        return out
 
 
 def swml_estimate(sample: Sample, edges: Any = None, width: float | None = None,
                   Q: float | None = None, P: float | None = None, tol: float = 1e-10,
-                  max_iter: int = 20000) -> BinnedFunction:
+                  max_iter: int = 100) -> BinnedFunction:
     """SWML luminosity or mass function of a :class:`Sample`.
 
     Parameters
@@ -100,8 +122,9 @@ def swml_estimate(sample: Sample, edges: Any = None, width: float | None = None,
     Q, P : float, optional
         Evolution (default: the selection's).
     tol : float
-        Convergence: largest relative change of phi in one iteration.
+        Convergence: largest relative change of phi in one Newton step.
     max_iter : int
+        Newton steps allowed.
 
     Returns
     -------
@@ -126,23 +149,9 @@ def swml_estimate(sample: Sample, edges: Any = None, width: float | None = None,
     n = np.bincount(slot, minlength=k)
     occupied = counts > 0
 
-    phi = np.where(occupied, 1.0, 0.0) / np.diff(e)
-    phi /= (phi * np.diff(e)).sum()
-    iteration = 0
-    while True:
-        iteration += 1
-        d = overlaps.d(phi)
-        den = overlaps.sum_h(w / d) * overlaps.width
-        new = np.where(occupied, counts / np.where(den > 0, den, 1.0), 0.0)
-        new /= (new * overlaps.width).sum()
-        change = np.max(np.abs(new[occupied] - phi[occupied]) / new[occupied])
-        phi = new
-        if change < tol:
-            break
-        if iteration >= max_iter:
-            raise LuminosityFunctionFitError(
-                f"SWML did not converge in {max_iter} iterations (last relative change "
-                f"{change:.2g})")
+    # Start from 1/Vmax (same bins): Newton then needs a few steps, not a dozen.
+    start = np.bincount(slot, weights=w / sample.vmax(Q, P)[inside], minlength=k) / np.diff(e)
+    phi, iterations = _maximise(overlaps, w, counts, occupied, start, tol, max_iter)
 
     volume = _bin_volumes(sample, e, Q, P)
     w_total = float(sample.weight.sum())
@@ -166,8 +175,62 @@ def swml_estimate(sample: Sample, edges: Any = None, width: float | None = None,
                     + ("jackknife over regions" if count["jackknife"] is not None
                        else "Poisson") + ")"),
         extra={"covariance": cov, "phi_err_shape": np.sqrt(np.diag(cov_shape)),
-               "iterations": iteration, "n_outside_bins": int((~inside).sum())},
+               "iterations": iterations, "n_outside_bins": int((~inside).sum())},
     )
+
+
+def _maximise(overlaps: _Overlaps, w: np.ndarray, counts: np.ndarray, occupied: np.ndarray,
+              start: np.ndarray, tol: float, max_iter: int) -> tuple[np.ndarray, int]:
+    """Newton's method on ln L in psi = ln phi (occupied bins), where ln L is concave.
+
+    ln L(psi) = sum_k N_k psi_k - sum_i w_i ln D_i is concave (minus a log-sum-exp of
+    linear functions) and flat along psi -> psi + c (the scale), so each step solves the
+    Newton system bordered by sum(delta) = 0, with a backtracking line search. Converges in
+    a few steps from the 1/Vmax values, where EEP's fixed-point iteration takes about a
+    hundred.
+    """
+    occ = np.flatnonzero(occupied)
+    width = overlaps.width
+    phi = np.zeros(overlaps.k)
+    phi[occ] = start[occ]
+    phi /= (phi * width).sum()
+    n_occ = counts[occ]
+
+    def loglike(values: np.ndarray) -> tuple[float, np.ndarray]:
+        d = overlaps.d(values)
+        if not np.all(d > 0):
+            return -np.inf, d
+        return float(n_occ @ np.log(values[occ]) - w @ np.log(d)), d
+
+    current, d = loglike(phi)
+    size = occ.size
+    for iteration in range(1, max_iter + 1):
+        s = overlaps.sum_h(w / d)[occ]
+        a = phi[occ] * width[occ]
+        grad = n_occ - a * s
+        curvature = np.diag(a * s) - np.outer(a, a) * overlaps.sum_hh(w / d**2)[np.ix_(occ, occ)]
+        bordered = np.zeros((size + 1, size + 1))
+        bordered[:size, :size] = curvature
+        bordered[:size, size] = bordered[size, :size] = 1.0
+        try:
+            step = np.linalg.solve(bordered, np.append(grad, 0.0))[:size]
+        except np.linalg.LinAlgError:
+            raise LuminosityFunctionFitError("SWML: the Newton system is singular") from None
+        t = 1.0
+        while True:
+            trial = phi.copy()
+            trial[occ] = phi[occ] * np.exp(t * step)
+            trial /= (trial * width).sum()
+            value, d_trial = loglike(trial)
+            if value >= current - 1e-12 * abs(current) or t < 1e-6:
+                break
+            t *= 0.5
+        change = float(np.max(np.abs(np.expm1(t * step))))
+        phi, current, d = trial, value, d_trial
+        if change < tol:
+            return phi, iteration
+    raise LuminosityFunctionFitError(
+        f"SWML did not converge in {max_iter} Newton steps (last relative change {change:.2g})")
 
 
 def _bin_volumes(sample: Sample, edges: np.ndarray, Q: float | None, P: float | None
@@ -190,12 +253,7 @@ def _covariance(overlaps: _Overlaps, phi: np.ndarray, w: np.ndarray, counts: np.
     """Inverse of the information matrix bordered by the count constraint (occupied bins)."""
     width = overlaps.width
     d = overlaps.d(phi)
-    m = np.zeros((overlaps.k, overlaps.k))
-    u = w / d**2
-    for start in range(0, d.size, _CHUNK):
-        rows = slice(start, start + _CHUNK)
-        h = overlaps.dense(rows) * width[None, :]
-        m += h.T @ (h * u[rows, None])
+    m = overlaps.sum_hh(w / d**2) * np.outer(width, width)
     sel = np.flatnonzero(occupied)
     info = np.diag(counts[sel] / phi[sel] ** 2) - m[np.ix_(sel, sel)]
     grad = width[sel] * volume[sel]
