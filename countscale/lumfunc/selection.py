@@ -83,7 +83,7 @@ def _pair(name: str, value: Any, rule: str) -> tuple[float, float]:
         raise InputTypeError(f"`{name}` must be a pair {rule}; got {value!r}")
     lo, hi = (_finite_scalar(name, v) for v in value)
     if not lo < hi:
-        raise InputError(f"`{name}` must be {rule} with the first < the second; got "
+        raise InputError(f"`{name}` must be a pair {rule} with the first < the second; got "
                          f"[{lo!r}, {hi!r}]")
     return lo, hi
 
@@ -111,7 +111,7 @@ class Selection:
     --------
     >>> sel = Selection((12.0, 19.8), (0.01, 0.3), area_sr=0.012)
     >>> round(float(sel.distance_term(0.1)), 3)   # DM + K at z = 0.1 (Planck18, K = 0)
-    38.348
+    38.387
     """
 
     mag_limits: tuple[float, float]
@@ -333,7 +333,8 @@ class Sample:
         bad = ~np.isfinite(w) | (w <= 0)
         if bad.any():
             i = int(np.argmax(bad))
-            raise InputError(f"`weight` must be finite and > 0; got {w[i]!r} (at index {i})")
+            raise InputError(f"`weight` must be finite and > 0; got {float(w[i])!r} (at index "
+                             f"{i})")
         mass = None if log10_mass is None else _column("log10_mass", log10_mass, n)
         z_err = None if redshift_error is None else _column("redshift_error", redshift_error, n)
         if z_err is not None:
@@ -342,7 +343,7 @@ class Sample:
                 i = int(np.argmax(bad))
                 raise InputError(
                     f"`redshift_error` must be >= 0 where a redshift is given; got "
-                    f"{z_err[i]!r} (at index {i})"
+                    f"{float(z_err[i])!r} (at index {i})"
                 )
         regions = areas = None
         if region is not None:
@@ -617,7 +618,7 @@ def _redshift_sampling_weights(m: np.ndarray, in_mag: np.ndarray, has_z: np.ndar
         "n_without_redshift": int((in_mag & ~has_z).sum()),
         "fraction_with_redshift": float(has_z.sum() / in_mag.sum()),
         "bin_mag": SAMPLING_BIN_MAG,
-        "min_fraction": float(fraction[n_z > 0].min()),
+        "min_fraction": float(fraction[n_z > 0].min()) if (n_z > 0).any() else 0.0,
         "assumption": ("sources without a redshift are taken to be missing at random at fixed "
                        "apparent magnitude: the others are weighted by 1 / (fraction with a "
                        f"redshift) in bins of {SAMPLING_BIN_MAG} mag"),

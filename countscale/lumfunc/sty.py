@@ -32,9 +32,14 @@ Photometric redshifts
     When the sample has redshift errors, the form is convolved with a Gaussian in x of width
     sigma_x = |dg/dz| sigma_z / |s| (the error in the galaxy's luminosity that its redshift
     error causes, with g and s as in :mod:`countscale.lumfunc.selection`), evaluated with
-    16-point Gauss-Hermite quadrature, and the range visible at the photometric redshift is
+    12-point Gauss-Hermite quadrature, and the range visible at the photometric redshift is
     kept. Assumed: Gaussian redshift errors, small enough that dg/dz is constant across them;
-    the volume and the selection are those of the photometric redshift.
+    the volume and the selection are those of the photometric redshift. Measured on mocks
+    (tests/test_lumfunc.py) at 0.1 < z < 0.4: with sigma_z = 0.01 it removes the bias of M*
+    (from about -0.7 sigma to 0) but leaves alpha 0.2-0.6 sigma too steep; with sigma_z = 0.02
+    M*'s bias falls from about -3 to -0.9 sigma and alpha's only from about -2.3 to -1.9
+    sigma. It is a first-order correction for modest redshift errors, not a photometric-
+    redshift luminosity-function method.
 
 How it is fast
 --------------
@@ -50,14 +55,16 @@ Errors
 The covariance of the shape (and Q) is the inverse of the numerical Hessian of -ln L at the
 maximum, with a sandwich correction when the weights are not all 1 (the weighted likelihood
 is not a likelihood; Cov = H^-1 J H^-1 with J the weighted outer product of the per-galaxy
-scores). phi* adds the error of the count: Poisson (sum w_i^2), or the jackknife over the
-footprint's regions when there are at least three (which also holds the cosmic variance of
+scores; not with photometric redshifts, whose weights count as numbers of galaxies).
+phi* adds the error of the count: Poisson (sum w_i^2), or the jackknife over the footprint's
+regions when there are at least three (which also holds the cosmic variance of
 the count), and the shape's error through the selection volume. Small samples: see
 :mod:`countscale.lumfunc` ("Small samples").
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Sequence
 from typing import Any
@@ -79,11 +86,15 @@ __all__ = ["LuminosityFunctionFitError", "STYFit", "count_error", "node_weights"
 _LN10 = math.log(10.0)
 _C = 0.4 * _LN10
 #: Gauss-Hermite nodes for the photometric-redshift convolution.
-_N_HERMITE = 16
+_N_HERMITE = 12
 #: Every 8th node of the selection's grid is enough for phi*'s volume integral (Simpson's
 #: rule on 257 nodes uniform in ln z: relative error < 1e-9 for smooth integrands, checked in
 #: the tests against the full grid).
 _COARSE = 8
+#: Largest error in ln(selection volume) accepted from the quadratic expansion used for
+#: parameter draws, as a fraction of the count's relative error (so a twentieth of phi*'s
+#: own error at the draws farthest from the fit, far less for the rest).
+_EXPANSION_TOLERANCE = 0.05
 
 
 class LuminosityFunctionFitError(RuntimeError):
@@ -282,24 +293,28 @@ class STYFit:
         s_scale = 1.0 if sample.quantity == "luminosity" else 2.5
         sel = sample.selection
 
-        def per_galaxy_sigma(q: float) -> np.ndarray:
+        def per_galaxy(q: float) -> tuple[np.ndarray, ...]:
+            """x, the visible range and the Gauss-Hermite shifts of every galaxy at Q = q."""
             g = sample.g_nodes(q)
             slope = np.gradient(g, sel._z)
-            return np.abs(np.interp(z, sel._z, slope)) * sample.redshift_error / s_scale
+            sigma = np.abs(np.interp(z, sel._z, slope)) * sample.redshift_error / s_scale
+            lo, hi = sample.limits(z, q)
+            return sample.x(q), lo, hi, math.sqrt(2.0) * sigma[:, None] * t[None, :]
+
+        fixed = None if fit_q else per_galaxy(q0)
 
         def nll(theta: np.ndarray) -> float:
             shape_theta = theta[:n_shape]
             if not shape.valid(shape_theta):
                 return math.inf
             q = theta[n_shape] if fit_q else q0
-            x = sample.x(q)
-            lo, hi = sample.limits(z, q)
-            shift = math.sqrt(2.0) * per_galaxy_sigma(q)[:, None] * t[None, :]
+            x, lo, hi, shift = fixed if fixed is not None else per_galaxy(q)
             with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
                 log_terms = ln_a[None, :] + shape.log_density(shape_theta, x[:, None] - shift)
                 data = float(w @ np.logaddexp.reduce(log_terms, axis=1))
-                s = shape.integral(shape_theta, (lo[:, None] - shift).ravel(),
-                                   (hi[:, None] - shift).ravel()).reshape(shift.shape)
+                lo_s, hi_s = lo[:, None] - shift, hi[:, None] - shift
+                table = _TailTable(shape, shape_theta, float(lo_s.min()), float(hi_s.max()))
+                s = np.abs(table(hi_s) - table(lo_s))
                 norm = float(w @ np.log(s @ np.exp(ln_a)))
             result = -(data - norm)
             return result if math.isfinite(result) else math.inf
@@ -331,10 +346,15 @@ class STYFit:
                  else shape.start(x0, sample.weight))
         theta0 = np.append(start, q0) if fit_q else start
         steps = np.array(shape.steps + ((0.01,) if fit_q else ()))
+        photometric = sample.redshift_error is not None and bool(np.any(sample.redshift_error > 0))
+        if photometric:
+            # Start from the fit that takes the redshifts as exact (fast), then convolve.
+            exact = dataclasses.replace(sample, redshift_error=None)
+            theta0 = _minimise(self._objective(exact, shape, fit_q), theta0, steps)
         theta = _minimise(nll, theta0, steps)
         hessian = _hessian(nll, theta, steps)
         cov = _inverse_covariance(hessian, shape.names + (("Q",) if fit_q else ()))
-        if not np.allclose(sample.weight, 1.0):
+        if not np.allclose(sample.weight, 1.0) and not photometric:
             cov = self._sandwich(sample, shape, fit_q, theta, cov, steps)
 
         n_shape = len(shape.names)
@@ -483,18 +503,54 @@ class STYFit:
         shape = self.shape_
         n_shape = len(shape.names)
         w_sum = self.normalisation_["sum_of_weights"]
-        out: dict[str, list[float]] = {}
-        for row, f in zip(draws, factor, strict=True):
+        fitted_q = "Q" in self.fitted_evolution_
+        fitted_p = "P" in self.fitted_evolution_
+
+        def split(row: np.ndarray) -> tuple[np.ndarray, float, float]:
             theta = row[:n_shape]
             if not shape.valid(theta):
                 theta = self.theta_[:n_shape]
-            q = float(row[n_shape]) if "Q" in self.fitted_evolution_ else self.evolution_.Q
-            p = float(row[-1]) if "P" in self.fitted_evolution_ else self.evolution_.P
-            volume = self._volume_term(self.sample_, shape, theta, q, p)
-            values = {**shape.published(theta, w_sum * f / volume), "Q": q, "P": p}
+            q = float(row[n_shape]) if fitted_q else self.evolution_.Q
+            p = float(row[-1]) if fitted_p else self.evolution_.P
+            return theta, q, p
+
+        def ln_volume(row: np.ndarray) -> float:
+            theta, q, p = split(row)
+            return math.log(self._volume_term(self.sample_, shape, theta, q, p))
+
+        ln_v = self._ln_volume_quadratic(draws, centre, ln_volume)
+        out: dict[str, list[float]] = {}
+        for row, f, lv in zip(draws, factor, ln_v, strict=True):
+            theta, q, p = split(row)
+            values = {**shape.published(theta, w_sum * f / math.exp(lv)), "Q": q, "P": p}
             for name, value in values.items():
                 out.setdefault(name, []).append(value)
         return {name: np.asarray(values) for name, values in out.items()}
+
+    def _ln_volume_quadratic(self, draws: np.ndarray, centre: np.ndarray, ln_volume: Any
+                             ) -> np.ndarray:
+        """ln(selection volume) of every draw: a second-order expansion about the fit, checked
+        against the exact value at the 8 draws farthest from it (exact for all draws when any
+        of those is off by more than ``_EXPANSION_TOLERANCE`` of the count's relative error;
+        the expansion saves ~1000 incomplete-gamma
+        integrals per call)."""
+        steps = np.array(self.shape_.steps + ((0.01,) if "Q" in self.fitted_evolution_ else ())
+                         + ((0.01,) if "P" in self.fitted_evolution_ else ()))
+        if not hasattr(self, "_ln_volume_expansion_"):
+            from countscale._checks import numerical_gradient
+
+            self._ln_volume_expansion_ = (ln_volume(centre),
+                                          numerical_gradient(ln_volume, centre, steps),
+                                          _hessian(ln_volume, centre, steps))
+        value, grad, hess = self._ln_volume_expansion_
+        delta = draws - centre
+        approx = value + delta @ grad + 0.5 * np.einsum("ij,jk,ik->i", delta, hess, delta)
+        far = np.argsort(np.einsum("ij,ij->i", delta / steps, delta / steps))[-8:]
+        exact = np.array([ln_volume(draws[i]) for i in far])
+        tolerance = _EXPANSION_TOLERANCE * math.sqrt(self.normalisation_["count_relative_variance"])
+        if np.max(np.abs(exact - approx[far])) > tolerance:
+            return np.array([ln_volume(row) for row in draws])
+        return approx
 
     def estimates(self, n_draws: int = 1000, rng: Any = None,
                   draws: dict[str, np.ndarray] | None = None) -> dict[str, Any]:
@@ -599,7 +655,7 @@ class STYFit:
         zz = _real_array("z", z)
         bad = ~np.isfinite(zz) | (zz <= 0)
         if bad.any():
-            raise InputError(f"`z` must be finite and > 0; got {zz[bad].flat[0]!r}")
+            raise InputError(f"`z` must be finite and > 0; got {float(zz[bad].flat[0])!r}")
         m_lim = _finite_scalar("m_limit", m_limit)
         sel = self.sample_.selection
         scale = 1.0
@@ -633,6 +689,31 @@ class STYFit:
         if hasattr(self, "density_limit_"):
             out["number_density_limit"] = self.density_limit_
         return out
+
+
+class _TailTable:
+    """A form's bright tail B(x) on a uniform grid, interpolated by cubic Hermite polynomials
+    through the exact values and slopes (B' = -+ the density): relative error ~1e-10 with 4097
+    nodes over the ranges galaxies span, at the cost of a few multiplications per point."""
+
+    def __init__(self, shape: Shape, theta: np.ndarray, lo: float, hi: float,
+                 n: int = 4097) -> None:
+        form = shape.form(theta)
+        self.x = np.linspace(lo, hi, n)
+        self.h = float(self.x[1] - self.x[0])
+        self.b = form._bright_tail(self.x)
+        sign = 1.0 if form._brighter_at_larger_x else -1.0
+        self.slope = -sign * form._density(self.x)
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        u = (x - self.x[0]) / self.h
+        j = np.clip(np.floor(u).astype(np.int64), 0, self.x.size - 2)
+        t = u - j
+        t2, t3 = t * t, t * t * t
+        h00, h10 = 2 * t3 - 3 * t2 + 1, t3 - 2 * t2 + t
+        h01, h11 = -2 * t3 + 3 * t2, t3 - t2
+        return (h00 * self.b[j] + h10 * self.h * self.slope[j]
+                + h01 * self.b[j + 1] + h11 * self.h * self.slope[j + 1])
 
 
 def _minimise(nll: Any, theta0: np.ndarray, steps: np.ndarray) -> np.ndarray:
