@@ -64,12 +64,16 @@ class Stage:
     columns : tuple of str, or callable
         Per-source tally columns the stage reads, or ``columns(runfile) -> tuple`` when they
         depend on the run file.
+    also_reads : tuple of str
+        Optional sections the stage reads when present (``[cosmology]``), so a run that
+        used them does not list them as not run.
     """
 
     name: str
     sections: tuple[str, ...]
     run: Callable[[RunContext], Any]
     columns: tuple[str, ...] | Callable[[Any], tuple[str, ...]] = ()
+    also_reads: tuple[str, ...] = ()
 
 
 @dataclass
@@ -671,7 +675,7 @@ def _stage_luminosity_function(ctx: RunContext) -> StageResult:
     if swml is not None:
         swml_json = swml.to_json()
         data["swml"] = swml_json
-    data["notes"] = notes + _lf_notes(sample, fit, vmax, weight_info)
+    data["notes"] = notes + _lf_notes(sample, fit, vmax, weight_info, estimates)
     nz = None
     if fit is not None and sample.quantity == "luminosity":
         nz = fit.nz
@@ -694,7 +698,8 @@ def _plain_table(value: Any) -> Any:
     return value
 
 
-def _lf_notes(sample: Any, fit: Any, vmax: Any, weight_info: dict | None) -> list[str]:
+def _lf_notes(sample: Any, fit: Any, vmax: Any, weight_info: dict | None,
+              estimates: dict | None = None) -> list[str]:
     notes = []
     if weight_info is not None:
         notes.append(
@@ -711,7 +716,8 @@ def _lf_notes(sample: Any, fit: Any, vmax: Any, weight_info: dict | None) -> lis
     if fit is not None:
         evo = fit.evolution_
         fitted = fit.fitted_evolution_
-        fixed = [n for n in ("Q", "P") if n not in fitted]
+        names = ("Q", "P") if sample.quantity == "luminosity" else ("P",)
+        fixed = [n for n in names if n not in fitted]
         if fixed:
             notes.append("evolution " + ", ".join(f"{n} = {getattr(evo, n):g}" for n in fixed)
                          + " taken from the run file, not fitted")
@@ -719,6 +725,12 @@ def _lf_notes(sample: Any, fit: Any, vmax: Any, weight_info: dict | None) -> lis
             notes.append("P is fitted from the redshift distribution, which also feels "
                          "large-scale structure along the line of sight; its error does not "
                          "hold that")
+        density = ("luminosity_density_mag" if sample.quantity == "luminosity"
+                   else "mass_density_msun_mpc3")
+        if estimates is not None and density not in estimates:
+            notes.append(f"no {density.split('_density')[0]} density: alpha <= -2 in some "
+                         "parameter draws, where the total diverges (the number density down "
+                         "to the sample's faintest galaxy is given)")
         if sample.n < 1000:
             notes.append(f"STY on {sample.n} galaxies: with a few hundred galaxies the fitted "
                          "faint-end slope and normalisation are biased and their errors "
@@ -738,7 +750,7 @@ STAGES: list[Stage] = [
     Stage("tally", ("catalog", "footprint"), _stage_tally),
     Stage("completeness", ("completeness",), _stage_completeness),
     Stage("luminosity_function", ("luminosity_function",), _stage_luminosity_function,
-          columns=_lf_columns),
+          columns=_lf_columns, also_reads=("cosmology",)),
     Stage("counts", ("counts",), _stage_counts, columns=("mag", "mag_error")),
 ]
 
@@ -845,7 +857,7 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
         raise InputError(f"`out_dir` '{out_dir}' exists and is not a folder")
 
     to_run = [s for s in STAGES if all(name in runfile.present for name in s.sections)]
-    read = _RUN_SECTIONS.union(*(s.sections for s in STAGES))
+    read = _RUN_SECTIONS.union(*(s.sections for s in STAGES), *(s.also_reads for s in to_run))
     not_run = tuple(sorted(name for name in runfile.present if name not in read))
     columns = tuple(dict.fromkeys(c for s in to_run for c in _stage_columns(s, runfile)))
     ctx = RunContext(runfile=runfile, engine=engine, scheduler=scheduler,

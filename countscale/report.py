@@ -273,16 +273,25 @@ def _luminosity_function_markdown(lf: Mapping[str, Any]) -> list[str]:
            f"{sample['n_outside_mass_limits']:,d} outside the mass-completeness limits"
            if lf["quantity"] == "stellar_mass" else "") + ".",
     ]
+    limit = sample.get("mass_limit")
+    if limit is not None:
+        pairs = ", ".join(f"{m:.2f} at z = {z:.3g}" for z, m in zip(limit["z"],
+                                                                     limit["log10_mass"],
+                                                                     strict=True))
+        out += ["", f"Mass-completeness limit: {limit['assumption']}. log10 M_lim [Msun]: "
+                    f"{pairs}."]
     sty = lf.get("sty")
     if sty is not None:
         evo = sty["evolution"]
         fitted = ", ".join(evo["fitted"]) or "none"
+        evolution = (f"evolution Q = {evo['Q']:.3g}, P = {evo['P']:.3g}"
+                     if lf["quantity"] == "luminosity" else f"density evolution P = {evo['P']:.3g}")
         count_error = ("jackknife over regions" if sty["normalisation"]["n_regions"] >= 3
                        else "Poisson")
         out += [
             "",
-            f"STY maximum likelihood ({sty['model'].replace('_', ' ')}; evolution Q = "
-            f"{evo['Q']:.3g}, P = {evo['P']:.3g}; fitted: {fitted}). Intervals are 68 %; the "
+            f"STY maximum likelihood ({sty['model'].replace('_', ' ')}; {evolution}; fitted: "
+            f"{fitted}). Intervals are 68 %; the "
             "shape's errors come from the likelihood's curvature, the normalisation's also "
             f"from the count ({count_error}) and the shape.",
             "",

@@ -385,7 +385,7 @@ def test_mass_function_binned_estimates_and_limits(baldry_sample):
     form, sample = baldry_sample
     info = sample.describe()["mass_limit"]
     # The stated limit: a galaxy with the 95th-percentile mass-to-light ratio at r = 19.8.
-    assert info["quantile"] == 0.95 and "95%" in info["assumption"]
+    assert info["quantile"] == 0.95 and "95th percentile" in info["assumption"]
     assert np.all(np.diff(info["log10_mass"]) > 0)
     swml = swml_estimate(sample)
     vmax = vmax_estimate(sample)

@@ -78,6 +78,7 @@ def test_results_keys_report_and_figure(demo_run):
     results = demo_run.results
     assert "luminosity_function" in results["run"]["stages"]
     assert "luminosity_function" not in results["run"]["sections_not_run"]
+    assert "cosmology" not in results["run"]["sections_not_run"]  # the stage read it
     lf = results["luminosity_function"]
     assert lf["quantity"] == "luminosity" and lf["x_name"] == "mag"
     for name in ("m_star", "alpha", "phi_star", "luminosity_density_mag",
@@ -200,3 +201,15 @@ def test_a_kcorrection_table_short_of_the_redshift_range_exits_2(tmp_path, capsy
     assert "run.toml: [luminosity_function]: `kcorrection` must be defined over the redshift " \
            "range [0.01, 0.3]" in err
     assert not (tmp_path / "out" / "results.json").exists()
+
+
+def test_a_missing_density_is_explained(demo_run):
+    # When alpha <= -2 in some draws the total density diverges and is left out; the notes say
+    # why (checked on the demo's objects with the density removed).
+    from countscale.pipeline import _lf_notes
+
+    objects = demo_run.stage_results["luminosity_function"]
+    notes = _lf_notes(objects["sample"], objects["fit"], None, None, {})
+    assert any(note.startswith("no luminosity density: alpha <= -2") for note in notes)
+    full = _lf_notes(objects["sample"], objects["fit"], None, None, objects["estimates"])
+    assert not any(note.startswith("no luminosity density") for note in full)

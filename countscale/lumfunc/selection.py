@@ -564,7 +564,7 @@ class Sample:
                 **self.mass_limit,
                 "assumption": (
                     "a galaxy is counted down to the mass it would have at the faint apparent "
-                    f"limit with the {self.mass_limit['quantile']:.0%} percentile of the "
+                    f"limit with the {100 * self.mass_limit['quantile']:.0f}th percentile of the "
                     "sample's mass-to-light ratio; galaxies below that mass at their "
                     "redshift are left out"
                 ),
