@@ -127,7 +127,7 @@ def test_pulls_of_sty_with_fitted_evolution_over_seeds():
     # Q and P fitted (Lin et al. 1999 form) from wrong starting values (0, 0): every pull of
     # M*, alpha, phi*, Q, P within 3 sigma, their scatter about 1. Reduced ensemble; the
     # full one is test_pull_distribution_full.
-    pulls = _pulls(range(100, 106), 2.0)
+    pulls = _pulls(range(100, 104), 2.0)
     assert np.all(np.abs(pulls) < 3.0)
     rms = np.sqrt((pulls**2).mean(axis=0))
     assert np.all((rms > 0.3) & (rms < 1.8)), rms
@@ -424,9 +424,9 @@ def _small_samples(alpha, n_samples, size, seed):
 
 
 def test_sty_errors_at_300_galaxies_reduced():
-    # 40 samples of 300 galaxies, alpha = -1.5: alpha unbiased within its error of the mean
+    # 30 samples of 300 galaxies, alpha = -1.5: alpha unbiased within its error of the mean
     # and the quoted errors of the right size (see the docs, "Small samples").
-    lf, rows = _small_samples(-1.5, 40, 300, 31)
+    lf, rows = _small_samples(-1.5, 30, 300, 31)
     pull = (rows[:, 0] - lf.alpha) / rows[:, 1]
     assert abs(pull.mean()) < 0.5
     assert 0.6 < pull.std() < 1.5
@@ -435,11 +435,17 @@ def test_sty_errors_at_300_galaxies_reduced():
 @pytest.mark.slow
 def test_sty_small_sample_behaviour_full():
     # The numbers in the docs (countscale.lumfunc, "Small samples"): 300 samples of 300.
-    for alpha, std_range in ((-1.2, (0.85, 1.2)), (-1.5, (0.85, 1.25)), (-1.8, (1.0, 1.5))):
+    # Measured: alpha's median within 0.013 of the truth, pull widths 0.98-1.04 (alpha) and
+    # 0.97-1.10 (phi*); phi*'s mean above its median (skewed) at alpha = -1.8.
+    for alpha in (-1.2, -1.5, -1.8):
         lf, rows = _small_samples(alpha, 300, 300, 41)
         pull = (rows[:, 0] - lf.alpha) / rows[:, 1]
+        pull_phi = (rows[:, 2] - lf.phi_star) / rows[:, 3]
         assert abs(np.median(rows[:, 0]) - alpha) < 0.04
-        assert std_range[0] < pull.std() < std_range[1], (alpha, pull.std())
+        assert 0.85 < pull.std() < 1.3, (alpha, pull.std())
+        assert 0.85 < pull_phi.std() < 1.4, (alpha, pull_phi.std())
+        if alpha == -1.8:
+            assert rows[:, 2].mean() > np.median(rows[:, 2])
 
 
 # --------------------------------------------------------------------------------------------
