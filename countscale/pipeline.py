@@ -647,7 +647,7 @@ def _stage_luminosity_function(ctx: RunContext) -> StageResult:
         sty = fit.to_json(estimates)
         lo_x, hi_x = float(edges[0]), float(edges[-1])
         grid = np.linspace(lo_x, hi_x, _LF_CURVE_POINTS)
-        curves = np.array([fit._form_from_draw(draws, i).density(grid)
+        curves = np.array([fit.form_from_draws(draws, i).density(grid)
                            for i in range(_LF_DRAWS)])
         sty["curve"] = {
             x_name: grid.tolist(),

@@ -590,7 +590,7 @@ class STYFit:
         n_draws_made = len(next(iter(draws.values())))
         number, density = [], []
         for i in range(n_draws_made):
-            form = self._form_from_draw(draws, i)
+            form = self.form_from_draws(draws, i)
             number.append(float(form.number_density_above(limit)))
             if self.sample_.quantity == "luminosity":
                 if form.alpha > -2:
@@ -611,7 +611,8 @@ class STYFit:
         self.density_limit_ = limit
         return out
 
-    def _form_from_draw(self, draws: dict[str, np.ndarray], i: int) -> Any:
+    def form_from_draws(self, draws: dict[str, np.ndarray], i: int) -> Any:
+        """The form (at z = 0) of draw ``i`` of :meth:`draw_params`' output."""
         kind = type(self.form_)
         names = self.shape_.published_names
         return kind(**{name: float(draws[name][i]) for name in names})
