@@ -213,3 +213,35 @@ def test_a_missing_density_is_explained(demo_run):
     assert any(note.startswith("no luminosity density: alpha <= -2") for note in notes)
     full = _lf_notes(objects["sample"], objects["fit"], None, None, objects["estimates"])
     assert not any(note.startswith("no luminosity density") for note in full)
+
+
+def test_binned_methods_only(tmp_path):
+    # methods without "sty": no "sty" block in the results (the fit still serves the stages
+    # after it), the figure shows the binned estimates alone.
+    from countscale.lumfunc import Evolution
+    from countscale.mock import SchechterGalaxies
+    from countscale.pipeline import run_survey
+
+    spec = MockSpec(galaxies=SchechterGalaxies(m_star=-21.3, alpha=-1.1, phi_star=4.6e-3,
+                                               evolution=Evolution()),
+                    measurement=Measurement(m50=30.0, width=0.1), mag_limits=(18.5,),
+                    generation_mag_limit=18.5)
+    cat = make_mock(spec, rng=2, footprint=Footprint.cap(150.0, 20.0, 1.5, max_order=10)
+                    ).catalogue
+    cat[["ra", "dec", "mag_true", "z"]].rename(columns={"mag_true": "mag"}).to_csv(
+        tmp_path / "cat.csv", index=False)
+    run = tmp_path / "run.toml"
+    run.write_text(
+        '[survey]\nname = "Binned only"\n\n[catalog]\npaths = ["cat.csv"]\nra = "ra"\n'
+        'dec = "dec"\nmag = "mag"\nredshift = "z"\n\n[footprint]\nmax_order = 10\n'
+        "include = [{cap = {ra = 150.0, dec = 20.0, radius = 1.5}}]\n\n"
+        '[luminosity_function]\nmethods = ["vmax", "swml"]\nredshift_range = [0.01, 0.3]\n'
+        'mag_limits = [10.0, 18.5]\nbin_width = 0.5\n\n[output]\nformats = ["json", "png"]\n'
+    )
+    result = run_survey(run, out_dir=tmp_path / "out", seed=1)
+    lf = result.results["luminosity_function"]
+    assert "sty" not in lf and {"vmax", "swml"} <= set(lf)
+    steps = np.diff(lf["vmax"]["bin_lower"]) / 0.5  # bin_width = 0.5 (empty bins left out)
+    assert np.allclose(steps, np.round(steps), atol=1e-9)
+    assert result.stage_results["luminosity_function"]["fit"] is not None
+    assert (tmp_path / "out" / "luminosity_function.png").is_file()
