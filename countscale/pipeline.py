@@ -35,6 +35,7 @@ Examples
 
 from __future__ import annotations
 
+import math
 import os
 import warnings
 from collections.abc import Callable, Mapping
@@ -46,7 +47,8 @@ import numpy as np
 
 from countscale.errors import InputError, InputTypeError
 
-__all__ = ["STAGES", "RunContext", "RunResult", "Stage", "run_survey"]
+__all__ = ["STAGES", "RunContext", "RunResult", "Stage", "plan_population", "run_cosmology",
+           "run_survey"]
 
 
 @dataclass(frozen=True)
@@ -64,16 +66,16 @@ class Stage:
     columns : tuple of str, or callable
         Per-source tally columns the stage reads, or ``columns(runfile) -> tuple`` when they
         depend on the run file.
-    also_reads : tuple of str
-        Optional sections the stage reads when present (``[cosmology]``), so a run that
-        used them does not list them as not run.
+    reads : tuple of str
+        Further sections the stage reads when the file has them (``[cosmology]``); they do
+        not decide whether it runs.
     """
 
     name: str
     sections: tuple[str, ...]
     run: Callable[[RunContext], Any]
     columns: tuple[str, ...] | Callable[[Any], tuple[str, ...]] = ()
-    also_reads: tuple[str, ...] = ()
+    reads: tuple[str, ...] = ()
 
 
 @dataclass
@@ -321,35 +323,359 @@ def _stage_completeness(ctx: RunContext) -> StageResult:
                               "total": total})
 
 
-def _integral_with_bright_part(integral: Any, n_bright: int, area_deg2: float,
-                               rng: np.random.Generator) -> dict:
-    """N(<m) = sources observed brighter than the fit range + the model over the fit range.
+def run_cosmology(runfile: Any) -> Any:
+    """The run's cosmology from ``[cosmology]`` (a named realization or H0 and Om0)."""
+    from countscale.cosmology import get_cosmology
+
+    section = runfile.cosmology
+    if section.H0 is not None:
+        return get_cosmology(H0=section.H0, Om0=section.Om0)
+    return get_cosmology(section.name)
+
+
+#: Magnitude limits either side of the headline one at which the variance stage also reports
+#: the analytic cosmic variance (mag), and the areas of its figure's curve (deg^2).
+_VARIANCE_MAG_OFFSETS = np.arange(-3.0, 0.01, 0.5)
+_CURVE_AREAS_DEG2 = np.geomspace(1e-3, 41252.96, 47)
+
+
+def _variance_mag_limit(ctx: RunContext) -> tuple[float, str]:
+    """The magnitude limit of the variance stage's headline values, and where it came from."""
+    runfile = ctx.runfile
+    section = runfile.variance
+    tally_result = ctx.results["tally"]
+    if section.mag_limit is not None:
+        return float(section.mag_limit), "[variance] mag_limit"
+    edges = tally_result.mag_edges
+    if "counts" in runfile.present:
+        if runfile.counts.fit_range is not None:
+            return float(runfile.counts.fit_range[1]), "the faint end of [counts] fit_range"
+        completeness = ctx.results.get("completeness")
+        if completeness is not None:
+            from countscale import counts as ct
+
+            forward = ct.ForwardModel(edges, completeness["total"], None,
+                                      area_deg2=float(tally_result.area_deg2))
+            good = np.flatnonzero(forward.bin_completeness() >= 0.5)
+            if good.size:
+                return (float(edges[good[-1] + 1]),
+                        "the faint edge of the last magnitude bin at least 50 % complete")
+    return float(edges[-1]), "the faint edge of the magnitude bins"
+
+
+def _region_counts_brighter(tally_result: Any, completeness: Any,
+                            m_limit: float) -> tuple[np.ndarray, np.ndarray]:
+    """Per region: sources brighter than m_limit, completeness-corrected and raw.
+
+    Whole bins only (bins whose faint edge is at most m_limit), plus the sources brighter
+    than the first edge. With a completeness stage each bin's count in region k is divided by
+    the region's mean completeness over the bin, A_eff,k(m) / A_k.
+    """
+    edges = tally_result.mag_edges
+    histogram = tally_result.histogram[1:].sum(axis=2)  # (K, n_mag + 2)
+    used = np.flatnonzero(edges[1:] <= m_limit + 1e-9)
+    raw = histogram[:, 0] + histogram[:, used + 1].sum(axis=1)
+    if completeness is None:
+        return raw.astype(float), raw.astype(float)
+    areas = np.asarray(tally_result.region_area_deg2, dtype=float)
+    corrected = histogram[:, 0].astype(float)
+    for i in used:
+        grid = np.linspace(edges[i], edges[i + 1], 5)
+        for k, area_k in enumerate(completeness["per_region"]):
+            fraction = float(np.mean(np.asarray(area_k(grid), dtype=float))) / areas[k]
+            if fraction > 0:
+                corrected[k] += histogram[k, i + 1] / fraction
+    return corrected, raw.astype(float)
+
+
+def _nz_provider(ctx: RunContext,
+                 m_limit: float) -> tuple[Callable, str, list[str], list[str]]:
+    """The n(z) for each magnitude limit, its source, notes and warnings.
+
+    In order of preference: [variance] redshift_median (the user's explicit choice), the
+    luminosity-function stage's ``nz(z, m_limit)``, the catalogue's redshifts.
+    """
+    from countscale.variance import RedshiftDistribution
+
+    runfile, section = ctx.runfile, ctx.runfile.variance
+    notes: list[str] = []
+    cautions: list[str] = []
+    if section.redshift_median is not None:
+        fixed = RedshiftDistribution.from_median(section.redshift_median)
+        notes.append(f"n(z) is the parametric form with median z = "
+                     f"{section.redshift_median:g} from [variance] redshift_median, the same "
+                     "at every magnitude limit")
+        return (lambda m: fixed), fixed.source, notes, cautions
+    lf = ctx.results.get("luminosity_function")
+    lf_nz = None if lf is None else getattr(lf, "objects", {}).get("nz")
+    if lf_nz is not None:
+        def from_lf(m: float) -> Any:
+            z_max = 3.0
+            while True:
+                probe = np.linspace(0.0, z_max, 301)[1:]
+                values = np.asarray(lf_nz(probe, m), dtype=float)
+                if z_max >= 12.0 or not values.max() > 0 or values[-1] < 1e-4 * values.max():
+                    break
+                z_max *= 2.0
+            return RedshiftDistribution.from_function(
+                lambda z: lf_nz(z, m), z_max,
+                source=f"the luminosity function's n(z) for m < {m:g}")
+        notes.append("n(z) from the luminosity-function fit, integrated to each magnitude limit")
+        return from_lf, "the luminosity function's n(z)", notes, cautions
+    columns = ctx.results["tally"].columns or {}
+    if "redshift" in columns and "mag" in columns:
+        z = np.asarray(columns["redshift"], dtype=float)
+        mag = np.asarray(columns["mag"], dtype=float)
+        has_z = np.isfinite(z) & (z >= 0)
+        if has_z.any():
+            z_limit = float(mag[has_z].max())
+            if m_limit > z_limit + 0.05:
+                message = (f"the catalogue's redshifts reach only m = {z_limit:.4g}: n(z) for "
+                           f"sources brighter than {m_limit:g} is that of the sources brighter "
+                           f"than {z_limit:.4g}, which sit nearer and are less diluted by "
+                           "projection, so the cosmic variance is likely overestimated; give "
+                           "[variance] redshift_median or a [luminosity_function] section")
+                warnings.warn(message, UserWarning, stacklevel=3)
+                cautions.append(message)
+
+            def from_catalogue(m: float) -> Any:
+                chosen = has_z & (mag < m)
+                if chosen.sum() < 2:
+                    raise InputError(
+                        f"{runfile.location('catalog', 'redshift')}: fewer than 2 sources "
+                        f"brighter than m = {m:g} have a redshift; no n(z) for the cosmic "
+                        "variance")
+                return RedshiftDistribution.from_redshifts(z[chosen])
+            return from_catalogue, "the catalogue's redshifts", notes, cautions
+    raise InputError(
+        f"{runfile.location('variance')}: the analytic cosmic variance needs a redshift "
+        "distribution: give 'redshift_median', a [catalog] 'redshift' column or a "
+        "[luminosity_function] section")
+
+
+def _stage_variance(ctx: RunContext) -> StageResult:
+    """Cosmic variance of the footprint's mean density: jackknife and analytic, side by side.
+
+    Live objects: ``"sigma_cv"``, a :class:`countscale.variance.CosmicVariance` whose call
+    ``sigma_cv(m_limit)`` is the fractional cosmic variance of this footprint's mean surface
+    density of sources brighter than ``m_limit`` (``sigma_cv.sigma(m, mask=...)`` for another
+    footprint); absent when ``[variance].methods`` has no "analytic".
+    """
+    from countscale import variance as vr
+
+    runfile, section = ctx.runfile, ctx.runfile.variance
+    tally_result = ctx.results["tally"]
+    completeness = ctx.results.get("completeness")
+    area = float(tally_result.area_deg2)
+    m_limit, m_limit_source = _variance_mag_limit(ctx)
+    corrected, raw = _region_counts_brighter(tally_result, completeness, m_limit)
+    n_raw = float(raw.sum())
+    if n_raw <= 0:
+        raise InputError(f"{runfile.location('variance')}: no source brighter than m = "
+                         f"{m_limit:g} ({m_limit_source}); no density to estimate a variance for")
+    poisson = 1.0 / math.sqrt(n_raw)
+    density = float(corrected.sum()) / area
+    data: dict[str, Any] = {
+        "methods": list(section.methods),
+        "m_limit": m_limit,
+        "m_limit_source": m_limit_source,
+        "area_deg2": area,
+        "n_sources": int(n_raw),
+        "density_per_deg2": density,
+        "poisson_fraction": poisson,
+        "jackknife": None,
+        "analytic": None,
+        "comparison": None,
+        "warnings": [],
+    }
+    objects: dict[str, Any] = {}
+    jackknife = None
+    if "jackknife" in section.methods:
+        if tally_result.n_regions >= 3:
+            jackknife = vr.jackknife_density(corrected, tally_result.region_area_deg2, raw)
+            data["jackknife"] = jackknife.to_json()
+        else:
+            data["warnings"].append(f"{tally_result.n_regions} regions: too few for a "
+                                    "jackknife (at least 3)")
+    analytic = "analytic" in section.methods
+    if analytic and runfile.catalog.population == "stars":
+        analytic = False
+        data["warnings"].append(
+            "no analytic cosmic variance for stars: it describes galaxies tracing the "
+            "large-scale structure; stars' field-to-field scatter is the Galaxy's structure "
+            "(galactic latitude), so the counts' errors use the jackknife")
+    if analytic:
+        cosmology = run_cosmology(runfile)
+        power = vr.linear_power(cosmology, sigma8=section.sigma8, n_s=section.n_s,
+                                wiggles=section.wiggles)
+        mask = vr.footprint_mask_spectrum(ctx.footprint)
+        provider, nz_source, nz_notes, nz_cautions = _nz_provider(ctx, m_limit)
+        cv = vr.cosmic_variance(power, mask, provider, bias=section.bias, nz_source=nz_source)
+        sigma = cv(m_limit)
+        spectrum = cv.spectrum(m_limit)
+        nz = spectrum.nz
+        ell = np.unique(np.round(np.geomspace(1.0, mask.lmax, 60)))
+        limits = m_limit + _VARIANCE_MAG_OFFSETS
+        data["analytic"] = {
+            "sigma_cv": sigma,
+            "m_limit": m_limit,
+            "nz": nz.to_json(),
+            "bias": section.bias,
+            "power_spectrum": {
+                "model": "Eisenstein & Hu 1998, "
+                         + ("with baryon wiggles" if section.wiggles else "no-wiggle"),
+                "cosmology": str(cosmology.name),
+                "sigma8": power.sigma8,
+                "n_s": power.n_s,
+                "nonlinear_correction": None,
+            },
+            "angular_spectrum": {
+                "method": spectrum.method,
+                "ell": [float(v) for v in ell],
+                "cl": [float(v) for v in spectrum(ell)],
+            },
+            "mask": {"method": mask.method, "area_deg2": mask.area_deg2},
+            "by_mag_limit": {
+                "m_limit": [float(v) for v in limits],
+                "sigma_cv": [float(cv(v)) for v in limits],
+            },
+            "notes": [*power.notes, *nz_notes,
+                      "linear theory: no non-linear correction (an underestimate where "
+                      "small scales matter: small fields, bright nearby samples)"],
+        }
+        data["poisson_over_cosmic_variance"] = poisson / sigma if sigma > 0 else None
+        data["total_fraction"] = math.hypot(poisson, sigma)
+        areas = _CURVE_AREAS_DEG2[_CURVE_AREAS_DEG2 * density >= 1.0]  # at least one source
+        curve = vr.caps_curve(cv.spectrum(m_limit, lmax=2e5), areas, density_per_deg2=density)
+        curve["layout"] = "one circular field of each area"
+        curve["footprint"] = {"area_deg2": area, "cosmic_variance": sigma,
+                              "poisson": poisson}
+        data["area_curve"] = curve
+        objects["sigma_cv"] = cv
+        if jackknife is not None:
+            comparison = vr.compare_methods(sigma, jackknife)
+            data["comparison"] = comparison
+            if comparison["warning"]:
+                warnings.warn(comparison["warning"], UserWarning, stacklevel=2)
+                data["warnings"].append(comparison["warning"])
+        data["warnings"] += nz_cautions
+    return StageResult(data, objects)
+
+
+def _integral_with_bright_part(fit: Any, m_limit: float, n_bright: int, area_deg2: float,
+                               rng: np.random.Generator, sigma_cv: float | None = None) -> dict:
+    """N(<m): sources observed brighter than the fit range + the model over the fit range.
 
     The survey is taken as complete brighter than the fit range, so those sources are counted
-    as observed, with Poisson draws for their error; the model part keeps its own draws
-    (Poisson + clustering). Budget shares are of the variance of the total (for small
-    relative errors, the same shares as of its log10).
+    as observed, with Poisson draws for their error; the model part keeps its own draws.
+    Two quantities, each an Estimate, labelled in the result:
+
+    * this field's realised density (``per_deg2_this_field``): Poisson noise only (the fit's
+      Poisson covariance), the number of sources this footprint actually holds per deg²;
+    * the population's mean density (``per_deg2``): with ``sigma_cv`` (the analytic cosmic
+      variance of this footprint's mean density) the realised draws are multiplied by
+      lognormal factors of median 1 and rms ``sigma_cv`` (Poisson ⊕ cosmic variance; the
+      analytic term includes the scales a jackknife sees and the larger ones, so the
+      jackknife is not added as well). Without it, the fit's reported covariance (Poisson +
+      the jackknife's clustering excess, which misses modes larger than the footprint).
+
+    Budget shares are of the variance of log10 of each quantity.
     """
     from countscale.estimate import Estimate
+    from countscale.variance import lognormal_factor_draws
 
-    model_total = integral.total
-    draws = np.asarray(model_total.draws, dtype=float)
-    bright = rng.poisson(max(n_bright, 0), size=draws.size).astype(float)
-    total = draws + bright
-    var_model, var_bright = float(np.var(draws)), float(n_bright)
-    shares = {k: v * var_model for k, v in model_total.budget.items()}
-    shares["poisson"] = shares.get("poisson", 0.0) + var_bright
-    norm = sum(shares.values()) or 1.0
-    budget = {k: v / norm for k, v in shares.items()}
-    total_estimate = Estimate.from_draws(total, "sources", budget=budget)
-    per_deg2 = Estimate.from_draws(total / area_deg2, "deg^-2", budget=budget)
+    def with_bright(integral: Any) -> tuple[np.ndarray, dict]:
+        draws = np.asarray(integral.total.draws, dtype=float)
+        bright = rng.poisson(max(n_bright, 0), size=draws.size).astype(float)
+        total = draws + bright
+        var_model, var_bright = float(np.var(draws)), float(n_bright)
+        shares = {k: v * var_model for k, v in integral.total.budget.items()}
+        shares["poisson"] = shares.get("poisson", 0.0) + var_bright
+        norm = sum(shares.values()) or 1.0
+        return total, {k: v / norm for k, v in shares.items()}
+
+    field_total, _ = with_bright(fit.integral_counts(m_limit, area_deg2=area_deg2, rng=rng,
+                                                     covariance="poisson"))
+    field_budget = {"poisson": 1.0}
+    if sigma_cv is not None:
+        factors = lognormal_factor_draws(sigma_cv, field_total.size, rng)
+        population_total = field_total * factors
+        var_poisson = float(np.var(np.log10(field_total)))
+        var_cv = math.log1p(sigma_cv**2) / math.log(10.0) ** 2
+        norm = (var_poisson + var_cv) or 1.0
+        population_budget = {"poisson": var_poisson / norm, "cosmic_variance": var_cv / norm}
+        clustering = {
+            "method": "analytic",
+            "sigma_cv": float(sigma_cv),
+            "note": ("analytic cosmic variance of this footprint's mean density (variance "
+                     "stage): all scales, including those larger than the footprint"),
+        }
+    else:
+        population_total, population_budget = with_bright(
+            fit.integral_counts(m_limit, area_deg2=area_deg2, rng=rng))
+        clustering = {
+            "method": "jackknife" if fit.n_regions_ else "none",
+            "sigma_cv": None,
+            "note": ("jackknife over footprint regions: misses modes larger than the "
+                     "footprint, so the interval is too narrow for the population's mean; "
+                     "add a [variance] section for the analytic term"
+                     if fit.n_regions_ else
+                     "no clustering term: Poisson only (add a [variance] section)"),
+        }
+    population = Estimate.from_draws(population_total / area_deg2, "deg^-2",
+                                     budget=population_budget)
+    this_field = Estimate.from_draws(field_total / area_deg2, "deg^-2", budget=field_budget)
     return {
-        "m_limit": float(integral.m_limit),
+        "m_limit": float(m_limit),
         "area_deg2": float(area_deg2),
-        "per_deg2": per_deg2.to_json(),
-        "total": total_estimate.to_json(),
+        "per_deg2": population.to_json(),
+        "total": Estimate.from_draws(population_total, "sources",
+                                     budget=population_budget).to_json(),
+        "per_deg2_this_field": this_field.to_json(),
+        "total_this_field": Estimate.from_draws(field_total, "sources",
+                                                budget=field_budget).to_json(),
+        "definitions": {
+            "per_deg2": "the population's mean surface density (what extrapolation to other "
+                        "areas needs): Poisson noise and cosmic variance",
+            "total": "per_deg2 times this footprint's area: the expected number in a "
+                     "footprint of this area",
+            "per_deg2_this_field": "this footprint's realised surface density: Poisson noise "
+                                   "only (clustering made it what it is)",
+            "total_this_field": "the number of sources this footprint holds: Poisson noise "
+                                "only",
+        },
+        "cosmic_variance": clustering,
         "n_observed_brighter": int(n_bright),
-        "model_part": integral.to_json(),
+    }
+
+
+def _normalisation(fit: Any, sigma_cv: float | None) -> dict | None:
+    """log10_norm for the population's mean (Poisson ⊕ cosmic variance) and this field."""
+    from countscale.estimate import Estimate
+
+    names = fit.model_.param_names
+    if sigma_cv is None or "log10_norm" not in names:
+        return None
+    i = names.index("log10_norm")
+    value = float(fit.params_["log10_norm"])
+    var_poisson = float(fit.cov_poisson_[i, i])
+    var_cv = math.log1p(sigma_cv**2) / math.log(10.0) ** 2
+    total = var_poisson + var_cv
+    unit = fit.estimates_["log10_norm"].unit
+    return {
+        "reference_mag": float(fit.model_.reference_mag),
+        "log10_norm": Estimate.from_normal(
+            value, math.sqrt(total), unit,
+            budget={"poisson": var_poisson / total, "cosmic_variance": var_cv / total},
+        ).to_json(),
+        "log10_norm_this_field": Estimate.from_normal(
+            value, math.sqrt(var_poisson), unit, budget={"poisson": 1.0}).to_json(),
+        "definitions": {
+            "log10_norm": "the population's mean normalisation: Poisson noise and the "
+                          "analytic cosmic variance",
+            "log10_norm_this_field": "this footprint's realised normalisation: Poisson noise "
+                                     "only",
+        },
     }
 
 
@@ -419,8 +745,10 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     m_limit = float(main.fit_range_[1])
     edges = tally_result.mag_edges
     n_bright = int(tally_result.n_brighter + observed[edges[1:] <= fit_lo].sum())
-    integral = _integral_with_bright_part(
-        main.integral_counts(m_limit, area_deg2=area, rng=ctx.rng), n_bright, area, ctx.rng)
+    variance = ctx.results.get("variance")
+    cosmic = None if variance is None else getattr(variance, "objects", {}).get("sigma_cv")
+    sigma_cv = None if cosmic is None else float(cosmic(m_limit))
+    integral = _integral_with_bright_part(main, m_limit, n_bright, area, ctx.rng, sigma_cv)
     differential = main.differential_counts()
     preferred = None
     if comparison is not None:
@@ -430,8 +758,7 @@ def _stage_counts(ctx: RunContext) -> StageResult:
                 "model": best,
                 "criterion": "BIC",
                 "integral_counts": _integral_with_bright_part(
-                    fits[best].integral_counts(m_limit, area_deg2=area, rng=ctx.rng),
-                    n_bright, area, ctx.rng),
+                    fits[best], m_limit, n_bright, area, ctx.rng, sigma_cv),
             }
     grid = np.arange(tally_result.mag_edges[0], tally_result.mag_edges[-1] + 1e-9,
                      _CURVE_STEP_MAG)
@@ -449,6 +776,7 @@ def _stage_counts(ctx: RunContext) -> StageResult:
                      "the fit range"),
         },
         "preferred": preferred,
+        "normalisation": _normalisation(main, sigma_cv),
         "differential": differential.to_json(),
         "expected_counts": np.asarray(main.expected_counts_, dtype=float).tolist(),
         "scatter": None if scatter is None else scatter.to_json(),
@@ -745,12 +1073,14 @@ def _lf_notes(sample: Any, fit: Any, vmax: Any, weight_info: dict | None,
     return notes
 
 
-#: The stages, in order. Later issues append luminosity_function, variance, totals.
+#: The stages, in order (a totals stage goes last, with a later issue).
 STAGES: list[Stage] = [
     Stage("tally", ("catalog", "footprint"), _stage_tally),
     Stage("completeness", ("completeness",), _stage_completeness),
     Stage("luminosity_function", ("luminosity_function",), _stage_luminosity_function,
-          columns=_lf_columns, also_reads=("cosmology",)),
+          columns=_lf_columns, reads=("cosmology",)),
+    Stage("variance", ("variance",), _stage_variance, columns=("mag", "redshift"),
+          reads=("cosmology",)),
     Stage("counts", ("counts",), _stage_counts, columns=("mag", "mag_error")),
 ]
 
@@ -857,7 +1187,7 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
         raise InputError(f"`out_dir` '{out_dir}' exists and is not a folder")
 
     to_run = [s for s in STAGES if all(name in runfile.present for name in s.sections)]
-    read = _RUN_SECTIONS.union(*(s.sections for s in STAGES), *(s.also_reads for s in to_run))
+    read = _RUN_SECTIONS.union(*(s.sections + s.reads for s in STAGES))
     not_run = tuple(sorted(name for name in runfile.present if name not in read))
     columns = tuple(dict.fromkeys(c for s in to_run for c in _stage_columns(s, runfile)))
     ctx = RunContext(runfile=runfile, engine=engine, scheduler=scheduler,
@@ -895,3 +1225,60 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
         stages=tuple(s.name for s in to_run), sections_not_run=not_run,
         stage_results=dict(ctx.results), results=results,
     )
+
+
+# --------------------------------------------------------------------------------------------
+# A survey's population, for planning
+# --------------------------------------------------------------------------------------------
+
+
+def plan_population(runfile: Any, seed: int | None = 0, progress: bool | None = None) -> Any:
+    """The population a run file's survey measures, for :mod:`countscale.planning`.
+
+    Runs the tally, completeness, variance and counts stages in memory (no report is
+    written; the variance stage runs with ``[variance]``'s defaults when the file has no such
+    section) and returns a :class:`countscale.planning.Population`: the population's mean
+    N(<m) per deg² at the counts' faint limit, the integral-count slope d log10 N(<m) / dm
+    there (from the fitted model), the n(z) and bias of the analytic cosmic variance, and its
+    power spectrum.
+
+    Raises
+    ------
+    InputError
+        The run file has no [counts] section, or the variance stage has no n(z).
+    """
+    from countscale.planning import population
+    from countscale.runfile import RunFile, load_runfile
+
+    if not isinstance(runfile, RunFile):
+        if not isinstance(runfile, str | os.PathLike):
+            raise InputTypeError(
+                f"`runfile` must be a path or a RunFile; got {type(runfile).__name__}")
+        runfile = load_runfile(runfile)
+    runfile.require("catalog", "footprint", "counts", needed_by="countscale plan")
+    engine, scheduler = _engine_iv(runfile, None, None)
+    forced = ("variance",)
+    to_run = [s for s in STAGES if s.name in forced
+              or all(name in runfile.present for name in s.sections)]
+    to_run = [s for s in to_run if s.name in ("tally", "completeness", "luminosity_function",
+                                               "variance", "counts")]
+    columns = tuple(dict.fromkeys(c for s in to_run for c in _stage_columns(s, runfile)))
+    ctx = RunContext(runfile=runfile, engine=engine, scheduler=scheduler,
+                     rng=np.random.default_rng(_seed_iv(seed)), progress=progress,
+                     columns=columns)
+    if "analytic" not in runfile.variance.methods:
+        raise InputError(f"{runfile.location('variance', 'methods')}: planning needs the "
+                         "\"analytic\" method")
+    for stage in to_run:
+        ctx.results[stage.name] = stage.run(ctx)
+    counts = ctx.results["counts"]
+    cosmic = ctx.results["variance"]["sigma_cv"]
+    integral = counts.data["integral_counts"]
+    m_limit = float(integral["m_limit"])
+    density = float(integral["per_deg2"]["median"])
+    model = counts["fit"].model_
+    slope = float(model.density(m_limit)) / (density * math.log(10.0))
+    return population(
+        surface_density_per_deg2=density, nz=cosmic.nz(m_limit), bias=runfile.variance.bias,
+        slope=slope, mag_limit=m_limit, power=cosmic.power,
+        source=f"measured by the run file {runfile.label}")

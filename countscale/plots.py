@@ -318,3 +318,121 @@ def _save(fig, path):
     with atomic_path(path, suffix=".png") as tmp:
         fig.savefig(tmp, dpi=110, format="png")
     plt.close(fig)
+
+
+def variance_figure(variance, path, title=None):
+    """Fractional Poisson and cosmic-variance errors of the mean density against area.
+
+    Parameters
+    ----------
+    variance : mapping
+        The ``variance`` block of ``results.json`` (its ``area_curve``: circular fields with
+        the survey's own n(z), bias and surface density; ``area_curve.footprint``: the
+        survey's own footprint, with its real shape).
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    curve = variance["area_curve"]
+    area = np.asarray(curve["area_deg2"])
+    fig, ax = plt.subplots(figsize=(8, 5.5))
+    ax.loglog(area, curve["poisson"], "--", color="tab:blue", lw=1.4,
+              label="Poisson, 1/√N")
+    ax.loglog(area, curve["cosmic_variance"], "-", color="tab:red", lw=1.4,
+              label="cosmic variance (analytic, one circular field)")
+    ax.loglog(area, curve["total"], "-", color="k", lw=2.0, alpha=0.7,
+              label="Poisson ⊕ cosmic variance")
+    own = curve["footprint"]
+    ax.plot([own["area_deg2"]], [own["cosmic_variance"]], "o", color="tab:red", ms=8,
+            mec="k", label=f"this footprint's cosmic variance (its real shape): "
+                           f"{own['cosmic_variance']:.3g}")
+    ax.plot([own["area_deg2"]], [own["poisson"]], "s", color="tab:blue", ms=7, mec="k",
+            label=f"this footprint's Poisson error: {own['poisson']:.3g}")
+    jackknife = variance.get("jackknife")
+    if jackknife and jackknife.get("clustering_fraction", 0) > 0:
+        ax.plot([own["area_deg2"]], [jackknife["clustering_fraction"]], "D", mfc="none",
+                mec="tab:purple", ms=8, mew=1.5,
+                label=f"jackknife clustering excess ({jackknife['n_regions']} regions): "
+                      f"{jackknife['clustering_fraction']:.3g}")
+    cross = curve.get("crossover_area_deg2")
+    if cross:
+        ax.axvline(cross, color="grey", ls=":", lw=1)
+        ax.text(cross, 0.62, f" cosmic variance > Poisson\n above {cross:.3g} deg²",
+                transform=ax.get_xaxis_transform(), fontsize=8, color="dimgrey")
+    analytic = variance["analytic"]
+    nz = analytic["nz"]
+    ax.set_xlabel("area [deg²]")
+    ax.set_ylabel("fractional error of the mean surface density (1σ)")
+    ax.set_title(title or "Poisson and cosmic variance against area", fontsize=11)
+    ax.text(0.99, 0.99, f"m < {variance['m_limit']:g}; {variance['density_per_deg2']:.4g} per "
+            f"deg²\nn(z) median {nz['median']:.3g}; bias {analytic['bias']:g}\n"
+            f"{analytic['power_spectrum']['model']}, linear",
+            transform=ax.transAxes, ha="right", va="top", fontsize=8,
+            bbox={"fc": "white", "ec": "0.8", "alpha": 0.9})
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=7.5, loc="lower left")
+    fig.tight_layout()
+    _save(fig, path)
+
+
+def plan_figure(plan, path, title=None):
+    """Survey plan: fractional error of the surface density against area, by layout.
+
+    Parameters
+    ----------
+    plan : mapping
+        The JSON of ``countscale plan`` (``curve`` of the main layout, ``layouts``,
+        ``target_precision``, ``required_area_deg2``).
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    curve = plan["curve"]
+    area = np.array([p["area_deg2"] for p in curve])
+    fig, ax = plt.subplots(figsize=(8.5, 5.8))
+    layout = plan["layout"]
+    ax.loglog(area, [p["poisson"] for p in curve], "--", color="tab:blue", lw=1.3,
+              label="Poisson, 1/√N")
+    ax.loglog(area, [p["cosmic_variance"] for p in curve], "-", color="tab:red", lw=1.3,
+              label=f"cosmic variance, {layout['description']}")
+    ax.loglog(area, [p["total"] for p in curve], "-", color="k", lw=2.2,
+              label="total (Poisson ⊕ cosmic variance)")
+    styles = {"contiguous": ("tab:green", "-."), "strip": ("tab:purple", ":"),
+              "fields": ("tab:orange", (0, (5, 2)))}
+    for kind, entry in plan["layouts"].items():
+        other = entry.get("curve")
+        if kind == layout["kind"] or not other:
+            continue
+        color, style = styles[kind]
+        ax.loglog([p["area_deg2"] for p in other], [p["total"] for p in other], ls=style,
+                  color=color, lw=1.4, label=f"total, {entry['description']}")
+    target = plan.get("target_precision")
+    if target:
+        ax.axhline(target, color="grey", lw=1, ls=":")
+        required = plan.get("required_area_deg2")
+        if required:
+            ax.plot([required], [target], "o", color="k", ms=7)
+            right = np.log(required / area[0]) > 0.6 * np.log(area[-1] / area[0])
+            ax.annotate(f"target {target:g}: {required:,.3g} deg²", (required, target),
+                        xytext=(-8, -14) if right else (8, 8), textcoords="offset points",
+                        fontsize=8.5, ha="right" if right else "left")
+        else:
+            ax.text(area[0], target * 1.08, f"target {target:g}: not reachable (floor "
+                    f"{plan['floor_precision']:.3g})", fontsize=8.5, color="grey")
+    cross = plan.get("crossover_area_deg2")
+    if cross:
+        ax.axvline(cross, color="grey", lw=0.8, ls="--", alpha=0.6)
+        ax.text(cross, 0.62, f" cosmic variance > Poisson\n above {cross:.3g} deg²",
+                transform=ax.get_xaxis_transform(), fontsize=8, color="dimgrey")
+    pop = plan["population"]
+    ax.text(0.99, 0.99, f"{plan['quantity']}\n{pop['surface_density_per_deg2']:.4g} per deg²; "
+            f"n(z) median {pop['redshift_median']:.3g}; bias {pop['bias']:g}\nlinear theory "
+            "(an underestimate for small fields)", transform=ax.transAxes, ha="right",
+            va="top", fontsize=8, bbox={"fc": "white", "ec": "0.8", "alpha": 0.9})
+    ax.set_xlabel("total survey area [deg²]")
+    ax.set_ylabel("fractional error of the surface density (1σ)")
+    ax.set_title(title or "Survey plan: precision against area", fontsize=11)
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=7.5, loc="lower left")
+    fig.tight_layout()
+    _save(fig, path)

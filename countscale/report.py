@@ -143,14 +143,18 @@ def render_markdown(results: Mapping[str, Any]) -> str:
         out += ["", *_completeness_markdown(results["completeness"])]
         if "completeness" in figures:
             out += ["", f"![completeness]({figures['completeness']})"]
-    if "counts" in results:
-        out += ["", *_counts_markdown(results["counts"])]
-        if "counts" in figures:
-            out += ["", f"![number counts]({figures['counts']})"]
     if "luminosity_function" in results:
         out += ["", *_luminosity_function_markdown(results["luminosity_function"])]
         if "luminosity_function" in figures:
             out += ["", f"![luminosity function]({figures['luminosity_function']})"]
+    if "variance" in results:
+        out += ["", *_variance_markdown(results["variance"])]
+        if "variance" in figures:
+            out += ["", f"![cosmic variance against area]({figures['variance']})"]
+    if "counts" in results:
+        out += ["", *_counts_markdown(results["counts"])]
+        if "counts" in figures:
+            out += ["", f"![number counts]({figures['counts']})"]
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         out += ["", "## Not run", "", f"The run file has {listed}; this version of countscale "
@@ -225,12 +229,15 @@ def _counts_markdown(counts: Mapping[str, Any]) -> list[str]:
             out.append(f"| {name} | {alt['deviance']:.1f} | {alt['dof']} | {alt['aic']:.1f} | "
                        f"{alt['bic']:.1f} |")
     integral = counts["integral_counts"]
-    out += [
-        "",
-        f"Integral counts N(<{integral['m_limit']:g}) = {_estimate(integral['per_deg2'])}; over "
-        f"the footprint's {integral['area_deg2']:.4g} deg²: {_estimate(integral['total'])} "
-        f"({integral['note']}).",
-    ]
+    out += ["", *_integral_markdown(integral)]
+    normalisation = counts.get("normalisation")
+    if normalisation:
+        out += [
+            "",
+            f"Normalisation log10 n at m = {normalisation['reference_mag']:g}: population mean "
+            f"{_estimate(normalisation['log10_norm'])} (Poisson ⊕ cosmic variance); this "
+            f"field {_estimate(normalisation['log10_norm_this_field'])} (Poisson only).",
+        ]
     preferred = counts.get("preferred")
     if preferred:
         out += [
@@ -319,6 +326,93 @@ def _luminosity_function_markdown(lf: Mapping[str, Any]) -> list[str]:
     return out
 
 
+def _integral_markdown(integral: Mapping[str, Any]) -> list[str]:
+    m = integral["m_limit"]
+    clustering = integral.get("cosmic_variance") or {}
+    if "per_deg2_this_field" not in integral:  # results written before the two definitions
+        return [f"Integral counts N(<{m:g}) = {_estimate(integral['per_deg2'])}."]
+    kind = {"analytic": "Poisson ⊕ analytic cosmic variance",
+            "jackknife": "Poisson + jackknife clustering (misses modes larger than the "
+                         "footprint: too narrow)",
+            "none": "Poisson only"}.get(clustering.get("method"), "")
+    return [
+        f"Integral counts N(<{m:g}), sources per deg² ({integral['note']}):",
+        "",
+        "| quantity | per deg² (68 %; 95 %) | over the footprint | errors |",
+        "|---|---|---|---|",
+        f"| population's mean density | {_estimate(integral['per_deg2'])}; 95 %: "
+        f"{_interval(integral['per_deg2']['interval_95'])} | {_estimate(integral['total'])} | "
+        f"{kind} |",
+        f"| this field's realised density | {_estimate(integral['per_deg2_this_field'])}; "
+        f"95 %: {_interval(integral['per_deg2_this_field']['interval_95'])} | "
+        f"{_estimate(integral['total_this_field'])} | Poisson only |",
+        "",
+        "The population's mean density is what an extrapolation to other areas needs; this "
+        "field's realised density is what this footprint holds (clustering made it what it "
+        "is, so only Poisson noise blurs it)."
+        + (f" Cosmic variance of this footprint's mean: σ = {clustering['sigma_cv']:.3g}."
+           if clustering.get("sigma_cv") is not None else ""),
+    ]
+
+
+def _interval(pair: list[float]) -> str:
+    return f"{pair[0]:.5g}–{pair[1]:.5g}"
+
+
+def _variance_markdown(variance: Mapping[str, Any]) -> list[str]:
+    m = variance["m_limit"]
+    out = [
+        "## Cosmic variance",
+        "",
+        f"Fractional (1σ) errors of the footprint's mean surface density of sources brighter "
+        f"than m = {m:g} ({variance['m_limit_source']}; {variance['n_sources']:,d} sources "
+        f"over {variance['area_deg2']:.4g} deg²):",
+        "",
+        "| error | fraction | what it is |",
+        "|---|---:|---|",
+        f"| Poisson | {variance['poisson_fraction']:.3g} | 1/√N |",
+    ]
+    jackknife = variance.get("jackknife")
+    if jackknife:
+        out.append(f"| jackknife clustering excess | {jackknife['clustering_fraction']:.3g} | "
+                   f"{jackknife['n_regions']} regions; total jackknife "
+                   f"{jackknife['sigma_fraction']:.3g}; sees scales smaller than the "
+                   "footprint only |")
+    analytic = variance.get("analytic")
+    if analytic:
+        out.append(f"| cosmic variance (analytic) | {analytic['sigma_cv']:.3g} | all scales, for "
+                   "this footprint's shape |")
+        out.append(f"| Poisson ⊕ cosmic variance | {variance['total_fraction']:.3g} | "
+                   "the error of the population's mean density |")
+        nz = analytic["nz"]
+        power = analytic["power_spectrum"]
+        ratio = variance.get("poisson_over_cosmic_variance")
+        out += [
+            "",
+            f"Poisson / cosmic variance = {ratio:.3g}." if ratio is not None else "",
+            "",
+            f"Analytic: {analytic['angular_spectrum']['method']} ({power['model']}, "
+            f"{power['cosmology']}, σ8 = {power['sigma8']:g}, n_s = {power['n_s']:g}), bias "
+            f"{analytic['bias']:g}, n(z) from {nz['source']} (median z = {nz['median']:.3g}); "
+            f"mask spectrum from the {analytic['mask']['method']}.",
+        ]
+        by_limit = analytic.get("by_mag_limit")
+        if by_limit:
+            pairs = ", ".join(f"{a:g}: {b:.3g}" for a, b in zip(by_limit["m_limit"],
+                                                                by_limit["sigma_cv"],
+                                                                strict=True))
+            out += ["", f"Analytic cosmic variance by magnitude limit: {pairs}."]
+        for note in analytic.get("notes", []):
+            out += ["", f"Note: {note.rstrip('.')}."]
+    comparison = variance.get("comparison")
+    if comparison and comparison.get("analytic_over_jackknife") is not None:
+        out += ["", f"Analytic / jackknife clustering excess = "
+                    f"{comparison['analytic_over_jackknife']:.3g}."]
+    for warning in variance.get("warnings", []):
+        out += ["", f"**Warning:** {warning.rstrip('.')}."]
+    return out
+
+
 def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] = ()) -> str:
     """The plain-text summary ``countscale run`` prints."""
     run, ledger, fp, tally = (results["run"], results["ledger"], results["footprint"],
@@ -348,6 +442,17 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
         comp = results["completeness"]
         lines += ["", f"completeness    {comp['model']}: m50 {_estimate(comp['m50'])}, "
                       f"m90 {_estimate(comp['m90'])}"]
+    if "variance" in results:
+        variance = results["variance"]
+        parts = [f"Poisson {variance['poisson_fraction']:.3g}"]
+        if variance.get("jackknife"):
+            parts.append(f"jackknife clustering {variance['jackknife']['clustering_fraction']:.3g}")
+        if variance.get("analytic"):
+            parts.append(f"cosmic variance (analytic) {variance['analytic']['sigma_cv']:.3g}")
+            parts.append(f"total {variance['total_fraction']:.3g}")
+        lines += ["", f"cosmic variance m < {variance['m_limit']:g}, fractional 1σ: "
+                      + "; ".join(parts)]
+        lines += [f"                warning: {w}" for w in variance.get("warnings", [])]
     if "counts" in results:
         fit = results["counts"]["fit"]
         integral = results["counts"]["integral_counts"]
@@ -358,8 +463,11 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
             f"number counts   {fit['model']} over {fit['fit_range'][0]:g}–{fit['fit_range'][1]:g}"
             f" mag: " + "; ".join(params),
             f"                deviance {fit['deviance']:.1f} / {fit['dof']} dof; "
-            f"N(<{integral['m_limit']:g}) = {_estimate(integral['per_deg2'])}",
+            f"N(<{integral['m_limit']:g}) population mean = {_estimate(integral['per_deg2'])}",
         ]
+        if "per_deg2_this_field" in integral:
+            lines.append(f"                N(<{integral['m_limit']:g}) this field = "
+                         f"{_estimate(integral['per_deg2_this_field'])} (Poisson only)")
         lines += [f"                note: {note}" for note in results["counts"].get("notes", [])]
     if "luminosity_function" in results:
         lf = results["luminosity_function"]
@@ -393,7 +501,8 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
 
 
 FIGURE_NAMES = {"footprint": "footprint.png", "completeness": "completeness.png",
-                "counts": "counts.png", "luminosity_function": "luminosity_function.png"}
+                "counts": "counts.png", "luminosity_function": "luminosity_function.png",
+                "variance": "variance.png"}
 
 
 def figure_names(results: Mapping[str, Any], formats: Iterable[str],
@@ -410,6 +519,8 @@ def figure_names(results: Mapping[str, Any], formats: Iterable[str],
         names.append("footprint")
     names += [name for name in ("completeness", "counts", "luminosity_function")
               if name in results]
+    if (results.get("variance") or {}).get("area_curve"):
+        names.append("variance")
     return {name: FIGURE_NAMES[name] for name in names}
 
 
@@ -456,6 +567,8 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
                 results["luminosity_function"], p, title=f"{title}: "
                 + ("luminosity" if results["luminosity_function"]["quantity"] == "luminosity"
                    else "stellar-mass") + " function"),
+            "variance": lambda p: plots.variance_figure(
+                results["variance"], p, title=f"{title}: Poisson and cosmic variance"),
         }
         for name in figure_names(results, formats, footprint):
             figures[name] = drawers[name]

@@ -1039,6 +1039,16 @@ SECTIONS: dict[str, Section] = {
             "methods": Key(_subset(["jackknife", "analytic"]), ["jackknife", "analytic"]),
             "regions": Key(_integer(2), 24),
             "bias": Key(_real(0.0, lo_open=True), 1.0),
+            # A parametric n(z) with this median (Smail et al. 1994, MNRAS 270, 245 form)
+            # instead of the luminosity function's or the catalogue's redshifts.
+            "redshift_median": Key(_real(0.0, 20.0, lo_open=True)),
+            # Magnitude limit of the headline values (default: the counts' faint limit).
+            "mag_limit": Key(_real()),
+            # Power-spectrum normalisation and tilt (default: the cosmology's own, else
+            # Planck 2018's); baryon wiggles in the Eisenstein & Hu transfer function.
+            "sigma8": Key(_real(0.0, 3.0, lo_open=True)),
+            "n_s": Key(_real(0.0, 2.0, lo_open=True, hi_open=True)),
+            "wiggles": Key(_boolean(), True),
         }
     ),
     "totals": Section(

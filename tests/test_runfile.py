@@ -98,6 +98,11 @@ FULL = textwrap.dedent(
     methods = ["jackknife"]
     regions = 40
     bias = 1.3
+    redshift_median = 0.6
+    mag_limit = 24.5
+    sigma8 = 0.8
+    n_s = 0.96
+    wiggles = false
 
     [totals]
     whole_sky_mag_limit = 24.0
@@ -235,7 +240,9 @@ def test_full_runfile_round_trip(full_file: Path) -> None:
     assert (lf.bin_width, lf.weight_cap, lf.mass_limit_quantile) == (0.2, 4.0, 0.9)
     assert rf.catalog.redshift_error == "Z_PHOT_ERR"
 
-    assert rf.variance == {"methods": ("jackknife",), "regions": 40, "bias": 1.3}
+    assert rf.variance == {"methods": ("jackknife",), "regions": 40, "bias": 1.3,
+                           "redshift_median": 0.6, "mag_limit": 24.5, "sigma8": 0.8,
+                           "n_s": 0.96, "wiggles": False}
     assert rf.totals == {
         "whole_sky_mag_limit": 24.0,
         "volume": {"kind": "redshift", "redshift": (0.0, 3.0)},
@@ -284,7 +291,9 @@ def test_defaults_are_filled(tmp_path: Path) -> None:
     assert rf.output.dir == tmp_path / "countscale_out"
     assert rf.output.formats == ("json", "markdown", "html", "png")
     assert rf.cosmology == {"name": "Planck18", "H0": None, "Om0": None}
-    assert rf.variance == {"methods": ("jackknife", "analytic"), "regions": 24, "bias": 1.0}
+    assert rf.variance == {"methods": ("jackknife", "analytic"), "regions": 24, "bias": 1.0,
+                           "redshift_median": None, "mag_limit": None, "sigma8": None,
+                           "n_s": None, "wiggles": True}
 
 
 def test_defaults_inside_sections_and_items(tmp_path: Path) -> None:
@@ -1097,6 +1106,30 @@ BAD = [
             f'{F}: [variance] \'methods[0]\' must be one of "jackknife", "analytic";'
             ' got "bootstrap"'
         ),
+    ),
+    (
+        "variance-redshift-median-zero",
+        "[variance]\nredshift_median = 0\n",
+        InputError,
+        exact(f"{F}: [variance] 'redshift_median' must be a number in (0, 20]; got 0"),
+    ),
+    (
+        "variance-sigma8-text",
+        '[variance]\nsigma8 = "high"\n',
+        InputTypeError,
+        exact(f'{F}: [variance] \'sigma8\' must be a number in (0, 3]; got "high"'),
+    ),
+    (
+        "variance-n-s-range",
+        "[variance]\nn_s = 2\n",
+        InputError,
+        exact(f"{F}: [variance] 'n_s' must be a number in (0, 2); got 2"),
+    ),
+    (
+        "variance-wiggles-text",
+        '[variance]\nwiggles = "yes"\n',
+        InputTypeError,
+        exact(f'{F}: [variance] \'wiggles\' must be true or false; got "yes"'),
     ),
     # -- totals -------------------------------------------------------------------------------
     (
