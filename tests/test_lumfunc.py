@@ -581,8 +581,9 @@ def test_fit_errors(big):
     fit = STYFit().fit(sample)
     with pytest.raises(InputError, match=r"`n` must be a positive integer; got 0"):
         fit.draw_params(0)
-    with pytest.raises(InputError, match=r"`z` must be finite and > 0; got 0.0"):
-        fit.nz([0.0, 0.1], 20.0)
+    with pytest.raises(InputError, match=r"`z` must be finite and >= 0; got -0.1"):
+        fit.nz([-0.1, 0.1], 20.0)
+    assert fit.nz([0.0], 20.0)[0] == 0.0  # no volume at z = 0
     with pytest.raises(InputError, match=r"`area_sr` must be in \(0, 4 pi\] sr; got -1.0"):
         fit.nz([0.1], 20.0, area_sr=-1.0)
     with pytest.raises(InputTypeError, match=r"`sample` must be a lumfunc Sample; got str"):

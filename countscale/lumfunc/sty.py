@@ -635,8 +635,8 @@ class STYFit:
         Parameters
         ----------
         z : array_like
-            Redshifts > 0 (any, also beyond the fitted range: the evolution and the
-            K-correction are then extrapolated, which the caller should say).
+            Redshifts >= 0 (any, also beyond the fitted range: the evolution and the
+            K-correction are then extrapolated, which the caller should say); 0 at z = 0.
         m_limit : float
             Apparent magnitude limit (same band as the fit).
         area_sr : float, optional
@@ -654,9 +654,9 @@ class STYFit:
             raise InputError("`nz` needs a luminosity function (a mass function has no "
                              "apparent-magnitude limit)")
         zz = _real_array("z", z)
-        bad = ~np.isfinite(zz) | (zz <= 0)
+        bad = ~np.isfinite(zz) | (zz < 0)
         if bad.any():
-            raise InputError(f"`z` must be finite and > 0; got {float(zz[bad].flat[0])!r}")
+            raise InputError(f"`z` must be finite and >= 0; got {float(zz[bad].flat[0])!r}")
         m_lim = _finite_scalar("m_limit", m_limit)
         sel = self.sample_.selection
         scale = 1.0
@@ -665,13 +665,16 @@ class STYFit:
             if not 0 < scale <= 4 * math.pi * (1 + 1e-12):
                 raise InputError(f"`area_sr` must be in (0, 4 pi] sr; got {scale!r}")
         flat = zz.ravel()
-        d = (np.asarray(sel.cosmo.distmod(flat).value, dtype=float)
-             + np.asarray(sel.kcorrection(flat), dtype=float))
+        out = np.zeros(flat.size)
+        positive = flat > 0  # dN/dz = 0 at z = 0 (no volume)
+        zp = flat[positive]
+        d = (np.asarray(sel.cosmo.distmod(zp).value, dtype=float)
+             + np.asarray(sel.kcorrection(zp), dtype=float))
         evo = self.evolution_
-        x_lim = m_lim - d + evo.Q * flat
-        dv = np.asarray(sel.cosmo.differential_comoving_volume(flat).value, dtype=float)
+        x_lim = m_lim - d + evo.Q * zp
+        dv = np.asarray(sel.cosmo.differential_comoving_volume(zp).value, dtype=float)
         n_brighter = self.form_._bright_tail(x_lim)
-        out = scale * dv * 10.0 ** (0.4 * evo.P * flat) * n_brighter
+        out[positive] = scale * dv * 10.0 ** (0.4 * evo.P * zp) * n_brighter
         return out.reshape(zz.shape)
 
     def to_json(self, estimates: dict[str, Any]) -> dict[str, Any]:
