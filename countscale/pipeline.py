@@ -1059,6 +1059,11 @@ def _lf_notes(sample: Any, fit: Any, vmax: Any, weight_info: dict | None,
             notes.append(f"no {density.split('_density')[0]} density: alpha <= -2 in some "
                          "parameter draws, where the total diverges (the number density down "
                          "to the sample's faintest galaxy is given)")
+        if fit.normalisation_["jackknife_relative_variance"] is not None:
+            notes.append("the normalisation's cosmic variance is the jackknife's over the "
+                         "footprint's regions, which cannot see structure larger than the "
+                         "footprint: an underestimate (the [variance] stage gives the analytic "
+                         "value)")
         if sample.n < 1000:
             notes.append(f"STY on {sample.n} galaxies: with a few hundred galaxies the fitted "
                          "faint-end slope and normalisation are biased and their errors "

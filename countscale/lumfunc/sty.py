@@ -668,6 +668,8 @@ class STYFit:
         out = np.zeros(flat.size)
         positive = flat > 0  # dN/dz = 0 at z = 0 (no volume)
         zp = flat[positive]
+        if zp.size == 0:
+            return out.reshape(zz.shape)
         d = (np.asarray(sel.cosmo.distmod(zp).value, dtype=float)
              + np.asarray(sel.kcorrection(zp), dtype=float))
         evo = self.evolution_
