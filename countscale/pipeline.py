@@ -2,7 +2,9 @@
 
 ``countscale run`` and ``countscale demo`` are thin layers over :func:`run_survey`. A run is a
 list of stages (:data:`STAGES`); each declares the run-file sections it needs and runs only
-when all of them are present. Later stages (number counts, luminosity function, cosmic
+when all of them are present (and its optional ``when`` condition holds: the contamination
+stage runs with a classifier or ``[contamination]``, the sky model for stars or with
+``[sky_model]``). Later stages (number counts, luminosity function, cosmic
 variance, totals) are added to :data:`STAGES` by their modules' issues; a section the file has
 but no stage reads yet is listed in the results under ``run.sections_not_run``, not ignored
 silently.
@@ -66,15 +68,17 @@ class Stage:
     columns : tuple of str, or callable
         Per-source tally columns the stage reads, or ``columns(runfile) -> tuple`` when they
         depend on the run file.
+    when : callable, optional
+        ``when(runfile) -> bool``: a further condition for running (None: always).
     reads : tuple of str
-        Further sections the stage reads when the file has them (``[cosmology]``); they do
-        not decide whether it runs.
+        Optional sections the stage reads when present (so they are not reported as not run).
     """
 
     name: str
     sections: tuple[str, ...]
     run: Callable[[RunContext], Any]
     columns: tuple[str, ...] | Callable[[Any], tuple[str, ...]] = ()
+    when: Callable[[Any], bool] | None = None
     reads: tuple[str, ...] = ()
 
 
@@ -99,6 +103,8 @@ class RunContext:
         Results of the stages run so far, by stage name.
     footprint : countscale.footprint.Footprint or None
         Built by the tally stage.
+    extinction : countscale.extinction.ExtinctionMap or None
+        Read by the tally stage from ``[extinction]``; magnitudes are then dereddened.
     """
 
     runfile: Any
@@ -109,6 +115,7 @@ class RunContext:
     columns: tuple[str, ...] = ()
     results: dict[str, Any] = field(default_factory=dict)
     footprint: Any = None
+    extinction: Any = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -201,8 +208,9 @@ def _stage_tally(ctx: RunContext) -> Any:
     if footprint.area_sr <= 0:
         raise InputError(f"{runfile.location('footprint')}: the footprint is empty (area 0)")
     ctx.footprint = footprint
+    ctx.extinction = _extinction_map(runfile, footprint)
     mag_bins = runfile.counts.bins if "counts" in runfile.present else None
-    columns = tuple(c for c in ctx.columns if c in ("coverage", "region")
+    columns = tuple(c for c in ctx.columns if c in ("coverage", "region", "cell")
                     or getattr(source, c, None) is not None)
     return tally(
         source, footprint,
@@ -213,7 +221,25 @@ def _stage_tally(ctx: RunContext) -> Any:
         scheduler=ctx.scheduler,
         chunk_rows=runfile.engine.chunk_rows,
         progress=ctx.progress,
+        extinction=ctx.extinction,
     )
+
+
+def _extinction_map(runfile: Any, footprint: Any) -> Any:
+    """The ``[extinction]`` map, checked to cover the footprint; None without the section."""
+    if "extinction" not in runfile.present:
+        return None
+    from countscale.extinction import ExtinctionMap
+
+    section = runfile.extinction
+    where = runfile.location("extinction", "map")
+    try:
+        extinction = ExtinctionMap.read(section.map, coefficient=section.coefficient,
+                                        band=section.band, nest=section.nest)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+    extinction.check_covers(footprint, where=where)
+    return extinction
 
 
 @dataclass(frozen=True, eq=False)
@@ -232,6 +258,29 @@ class StageResult:
 
 #: Magnitude grid step of the curves stored for figures (mag).
 _CURVE_STEP_MAG = 0.02
+
+
+def _extinction_shift(ctx: RunContext, regions: Any, depth: Any) -> dict:
+    """How far the dust moves each region's completeness limit (for the report)."""
+    import healpy as hp
+
+    ext = ctx.extinction
+    order = int(regions.order)
+    x, y, z = hp.pix2vec(2**order, regions.cells, nest=True)
+    ra, dec = hp.vec2ang(np.stack([x, y, z], axis=-1), lonlat=True)
+    a_mag = ext.extinction_at(ra, dec)
+    m50 = depth.m50_mag[hp.vec2pix(depth.nside, x, y, z, nest=depth.nest)]
+    per_region = [float(np.nanmean(a_mag[regions.labels == k])) if np.any(
+        regions.labels == k) else None for k in range(regions.n_regions)]
+    return {
+        **ext.summary(ctx.footprint),
+        "region_mean_extinction_mag": per_region,
+        "m50_dereddened_min": float(np.nanmin(m50)),
+        "m50_dereddened_max": float(np.nanmax(m50)),
+        "note": ("magnitudes are dereddened per source (m - R E(B-V) at its pixel), and the "
+                 "completeness limit of each part of the footprint moved brighter by its "
+                 "extinction"),
+    }
 
 
 def _depth_offsets(table: Any, depth: Any, footprint: Any) -> tuple[np.ndarray, float]:
@@ -291,6 +340,14 @@ def _stage_completeness(ctx: RunContext) -> StageResult:
             "m50_max": float(values.max()) if values.size else None,
             "shifted_injections": table.ra_deg is not None,
         }
+    extinction_info = None
+    if ctx.extinction is not None:
+        # Counts are in dereddened magnitudes: each part of the sky is complete to m50 - A.
+        from countscale.extinction import dereddened_depth
+
+        observed_depth = depth
+        depth = dereddened_depth(observed_depth, fit, ctx.extinction, ctx.footprint)
+        extinction_info = _extinction_shift(ctx, tally_result.regions, depth)
     per_region, total = cm.region_effective_areas(ctx.footprint, tally_result.regions, fit,
                                                   depth)
     recovery = cm.binned_recovery(fit_table, bin_width=0.1)
@@ -310,6 +367,7 @@ def _stage_completeness(ctx: RunContext) -> StageResult:
         "m90": fit.m90.to_json(),
         "params": {k: float(v) for k, v in fit.params_.items()},
         "depth_map": depth_info,
+        "extinction": extinction_info,
         "recovery": recovery.to_json(),
         "curve": {
             "mag": grid.tolist(),
@@ -1079,15 +1137,226 @@ def _lf_notes(sample: Any, fit: Any, vmax: Any, weight_info: dict | None,
 
 
 #: The stages, in order (a totals stage goes last, with a later issue).
+
+
+def _wants_contamination(runfile: Any) -> bool:
+    return runfile.catalog.classifier is not None or "contamination" in runfile.present
+
+
+def _stage_contamination(ctx: RunContext) -> StageResult:
+    """Stars among the sources per magnitude bin: from the classifier, or a star catalogue.
+
+    With ``[catalog] classifier`` the tally already left the stars out of every count (and of
+    the fits); this reports how many it left out per bin. With ``[contamination]`` a star
+    catalogue of the same survey is tallied over the same footprint, bins and extinction and
+    subtracted bin by bin; the earlier count fit saw the uncorrected counts.
+    """
+    from countscale import contamination as cn
+
+    runfile = ctx.runfile
+    tally_result = ctx.results["tally"]
+    edges = tally_result.mag_edges
+    if runfile.catalog.classifier is not None:
+        result = cn.from_classifier(tally_result.counts, tally_result.excluded_counts, edges)
+        notes = [f"sources with [catalog] classifier >= {_classifier_threshold(runfile):g} "
+                 "are stars: the tally left them out of every count and fit "
+                 f"(ledger reason {tally_result.excluded_reason})"]
+        return StageResult({**result.to_json(), "notes": notes}, {"contamination": result})
+    from countscale.catalog import CatalogSource
+    from countscale.tally import tally
+
+    section = runfile.contamination
+    columns = {k: section.columns[k] or runfile.catalog[k] for k in ("ra", "dec", "mag")}
+    where = runfile.location("contamination", "star_catalog")
+    try:
+        source = CatalogSource(list(section.star_catalog), population="stars", **columns)
+        stars = tally(source, ctx.footprint, regions=tally_result.regions, mag_bins=edges,
+                      columns=(), engine=ctx.engine, scheduler=ctx.scheduler,
+                      chunk_rows=runfile.engine.chunk_rows, progress=ctx.progress,
+                      extinction=ctx.extinction)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+    result = cn.subtract_stars(tally_result.counts, stars.counts, edges)
+    notes = [
+        "stars from the star catalogue in each bin were subtracted from the catalogue's sources; "
+        "their Poisson error is added to the galaxies' (conservative when the star catalogue "
+        "lists the very stars of the galaxy catalogue)",
+        "the number-count fit above used the uncorrected counts (stars included); use the "
+        "corrected counts here, or a classifier column, where stars matter",
+    ]
+    data = {**result.to_json(), "star_catalog_ledger": stars.ledger.to_dict(), "notes": notes}
+    return StageResult(data, {"contamination": result, "star_tally": stars})
+
+
+def _classifier_threshold(runfile: Any) -> float:
+    from countscale.catalog import DEFAULT_CLASSIFIER_THRESHOLD
+
+    value = runfile.catalog.classifier_threshold
+    return DEFAULT_CLASSIFIER_THRESHOLD if value is None else float(value)
+
+
+def _sky_mag_limit(runfile: Any) -> float | None:
+    if runfile.sky_model.mag_limit is not None:
+        return float(runfile.sky_model.mag_limit)
+    limit = runfile.totals.whole_sky_mag_limit
+    return None if limit is None else float(limit)
+
+
+def _wants_sky_model(runfile: Any) -> bool:
+    asked = runfile.catalog.population == "stars" or "sky_model" in runfile.present
+    return asked and _sky_mag_limit(runfile) is not None
+
+
+def _covariate_maps(runfile: Any, ctx: RunContext) -> list:
+    from countscale.skymodel import CovariateMap
+
+    maps = []
+    for i, item in enumerate(runfile.sky_model.maps or ()):
+        try:
+            maps.append(CovariateMap.read(item.name, item.path, nest=item.nest,
+                                          transform=item.transform))
+        except InputError as exc:
+            raise InputError(f"{runfile.location('sky_model', f'maps[{i}]')}: {exc}") from None
+    if ctx.extinction is not None:
+        maps.append(CovariateMap("ebv", ctx.extinction.ebv, nest=ctx.extinction.nest,
+                                 path=ctx.extinction.path))
+    return maps
+
+
+def _stage_sky_model(ctx: RunContext) -> StageResult:
+    """Fit the counts per field/region on sky covariates; integrate over the target sky.
+
+    Live objects for later stages (the totals stage reads these): ``model`` (the fitted
+    :class:`countscale.skymodel.SkyModel`), ``prediction`` (its
+    :class:`~countscale.skymodel.SkyPrediction` over the target: ``total`` Estimate with draws,
+    ``fraction_outside_area``/``fraction_outside_total``, ``warnings``), ``draws`` (the total's
+    Monte Carlo draws), ``naive`` (plain area scaling, an Estimate), ``target`` (the target
+    Footprint), ``units`` (the fitted :class:`~countscale.skymodel.SkyUnits`) and ``mag_limit``.
+    """
+    from countscale import skymodel as sk
+    from countscale.tally import CELL_ORDER
+
+    runfile = ctx.runfile
+    section = runfile.sky_model
+    tally_result = ctx.results["tally"]
+    mag_limit = _sky_mag_limit(runfile)
+    columns = tally_result.columns
+    brighter = columns["mag"] < mag_limit
+    notes = []
+    completeness = ctx.results.get("completeness")
+    kappa = None
+    if completeness is not None:
+        counts = ctx.results.get("counts")
+        density = None
+        if counts is not None:
+            model = counts["fit"].model_
+            density = model.density
+        kappa = sk.cell_completeness(mag_limit, completeness["fit"], completeness["depth"],
+                                     density=density)
+    else:
+        notes.append("no [completeness] section: the counts brighter than the limit are taken "
+                     "as complete")
+    units = sk.SkyUnits.from_footprint(ctx.footprint, columns["cell"][brighter],
+                                       source_order=CELL_ORDER, regions=tally_result.regions,
+                                       completeness=kappa)
+    low = units.completeness[units.area_deg2 > 0]
+    if low.size and low.min() < 0.9:
+        notes.append(f"completeness of the sources brighter than {mag_limit:g} falls to "
+                     f"{low.min():.2f} in places: the total leans on the completeness model "
+                     "there")
+    maps = _covariate_maps(runfile, ctx)
+    sets = section.covariate_sets
+    if sets is None:
+        if runfile.catalog.population == "stars":
+            sets = sk.DEFAULT_STAR_SETS
+        else:
+            names = tuple(m.name for m in maps)
+            sets = ((), names) if names else ((),)
+    where = runfile.location("sky_model")
+    try:
+        model = sk.SkyModel(sets, section.likelihood).fit(units, maps)
+        target = sk.target_sky_footprint(runfile.totals.target_sky)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", sk.SkyModelWarning)  # reported in results
+            prediction = model.predict(target, nside=section.nside, n_draws=section.draws,
+                                       rng=ctx.rng)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+    for text in prediction.warnings:
+        warnings.warn(text, sk.SkyModelWarning, stacklevel=2)
+    n_observed = int(units.counts.sum())
+    naive = sk.naive_total(n_observed, tally_result.area_deg2, prediction.target_area_deg2,
+                           n_draws=section.draws, rng=ctx.rng)
+    l_deg, b_deg = units.unit_lb()
+    best = model.best_
+    fit_warnings = []
+    for fit in model.fits_:
+        if fit.likelihood_ == "poisson" and fit.dof_ > 0 and fit.pearson_chi2_ / fit.dof_ > 2:
+            ratio = fit.pearson_chi2_ / fit.dof_
+            fit_warnings.append(
+                f"covariates {list(fit.names_)}: the counts scatter {ratio:.1f} times more than "
+                "Poisson between units; the negative-binomial likelihood would widen the "
+                "interval accordingly")
+    naive_ratio = naive.median / prediction.total.median if prediction.total.median > 0 else None
+    data = {
+        "mag_limit": mag_limit,
+        "population": runfile.catalog.population,
+        "target_sky": {
+            "items": ([item.to_dict() for item in runfile.totals.target_sky]
+                      if runfile.totals.target_sky is not None else "whole sky"),
+            "area_deg2": prediction.target_area_deg2,
+            "nside": prediction.nside,
+        },
+        "total": prediction.total.to_json(),
+        "naive": naive.to_json(),
+        "naive_over_model": naive_ratio,
+        "naive_note": ("plain area scaling: the sources observed brighter than the limit times "
+                       "target area / surveyed area, as if the population were the same "
+                       "everywhere and the survey complete"),
+        "fraction_outside_observed_range": {
+            "area": prediction.fraction_outside_area,
+            "total": prediction.fraction_outside_total,
+        },
+        "model": model.to_json(),
+        "prediction": prediction.to_json(),
+        "units": {
+            "n_units": units.n_units,
+            "n_fields": units.n_fields,
+            "order": units.order,
+            "n_observed": n_observed,
+            "l_deg": l_deg.tolist(),
+            "b_deg": b_deg.tolist(),
+            "counts": units.counts.tolist(),
+            "area_deg2": units.unit_area_deg2.tolist(),
+            "exposure_deg2": units.unit_exposure_deg2.tolist(),
+            "expected_best": best.expected_.tolist(),
+            "completeness_min": float(low.min()) if low.size else None,
+        },
+        "extinction": None if ctx.extinction is None else {
+            "note": "counts are in dereddened magnitudes (see the tally and completeness)"},
+        "warnings": [*prediction.warnings, *fit_warnings],
+        "notes": notes + list(model.notes_),
+    }
+    objects = {"model": model, "prediction": prediction, "draws": prediction.draws,
+               "naive": naive, "target": target, "units": units, "mag_limit": mag_limit}
+    return StageResult(data, objects)
+
+
+#: The stages, in order. A later issue adds totals (after sky_model).
 STAGES: list[Stage] = [
-    Stage("tally", ("catalog", "footprint"), _stage_tally),
+    Stage("tally", ("catalog", "footprint"), _stage_tally, reads=("extinction",)),
     Stage("completeness", ("completeness",), _stage_completeness),
     Stage("luminosity_function", ("luminosity_function",), _stage_luminosity_function,
           columns=_lf_columns, reads=("cosmology",)),
     Stage("variance", ("variance",), _stage_variance, columns=("mag", "redshift"),
           reads=("cosmology",)),
     Stage("counts", ("counts",), _stage_counts, columns=("mag", "mag_error")),
+    Stage("contamination", ("catalog",), _stage_contamination, when=_wants_contamination,
+          reads=("contamination",)),
+    Stage("sky_model", ("catalog", "footprint"), _stage_sky_model, columns=("mag", "cell"),
+          when=_wants_sky_model, reads=("sky_model",)),
 ]
+
 
 def _stage_columns(stage: Stage, runfile: Any) -> tuple[str, ...]:
     """A stage's tally columns: a tuple, or a function of the run file."""
@@ -1191,8 +1460,9 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     if out_dir.exists() and not out_dir.is_dir():
         raise InputError(f"`out_dir` '{out_dir}' exists and is not a folder")
 
-    to_run = [s for s in STAGES if all(name in runfile.present for name in s.sections)]
-    read = _RUN_SECTIONS.union(*(s.sections + s.reads for s in STAGES))
+    to_run = [s for s in STAGES if all(name in runfile.present for name in s.sections)
+              and (s.when is None or s.when(runfile))]
+    read = _RUN_SECTIONS.union(*(s.sections for s in STAGES), *(s.reads for s in STAGES))
     not_run = tuple(sorted(name for name in runfile.present if name not in read))
     columns = tuple(dict.fromkeys(c for s in to_run for c in _stage_columns(s, runfile)))
     ctx = RunContext(runfile=runfile, engine=engine, scheduler=scheduler,

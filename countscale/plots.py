@@ -8,6 +8,8 @@ completeness_figure, counts_figure
     The completeness curve; the number counts with their fits.
 luminosity_function_figure
     1/Vmax, SWML and the STY curve on one plot, and the M*-alpha error ellipse.
+sky_model_figure, contamination_figure
+    The sky model (densities per unit, residuals, totals); stars among the sources per bin.
 """
 
 from __future__ import annotations
@@ -212,6 +214,130 @@ def counts_figure(counts, path, title=None):
     res.set_ylabel(f"(N − μ) / √μ\n{counts['model'].replace('_', ' ')}", fontsize=9)
     res.set_xlabel("magnitude")
     res.grid(alpha=0.3)
+    fig.tight_layout()
+    _save(fig, path)
+
+
+def sky_model_figure(sky, path, title=None):
+    """The sky model: densities per unit against latitude, residuals, and the totals.
+
+    Parameters
+    ----------
+    sky : mapping
+        The ``sky_model`` block of ``results.json``.
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    units = sky["units"]
+    l_deg = np.asarray(units["l_deg"], dtype=float)
+    b_deg = np.asarray(units["b_deg"], dtype=float)
+    n = np.asarray(units["counts"], dtype=float)
+    exposure = np.asarray(units["exposure_deg2"], dtype=float)
+    expected = np.asarray(units["expected_best"], dtype=float)
+    ok = exposure > 0
+    best = max(sky["model"]["sets"], key=lambda s: s["weight"])
+    fig = plt.figure(figsize=(14, 4.9))
+    grid = fig.add_gridspec(1, 3, width_ratios=[1.15, 1.0, 1.15])
+    ax = fig.add_subplot(grid[0])
+    density = np.where(ok, n / np.where(ok, exposure, 1.0), np.nan)
+    error = np.where(ok, np.sqrt(np.maximum(n, 1.0)) / np.where(ok, exposure, 1.0), np.nan)
+    colour = np.cos(np.radians(l_deg))
+    points = ax.scatter(np.abs(b_deg[ok]), density[ok], c=colour[ok], cmap="coolwarm",
+                        vmin=-1, vmax=1, s=22, zorder=3, label="observed (corrected for "
+                        "completeness)")
+    ax.errorbar(np.abs(b_deg[ok]), density[ok], yerr=error[ok], fmt="none", ecolor="grey",
+                lw=0.8, zorder=2)
+    ax.scatter(np.abs(b_deg[ok]), (expected / np.where(ok, exposure, 1.0))[ok], marker="_",
+               s=120, color="k", lw=1.2, zorder=4,
+               label=f"best model ({', '.join(best['covariates']) or 'constant'})")
+    fig.colorbar(points, ax=ax, label="cos l (+1 toward the galactic centre)", shrink=0.85)
+    ax.set_yscale("log")
+    ax.set_xlabel("|galactic latitude b| [deg]")
+    ax.set_ylabel(f"sources brighter than {sky['mag_limit']:g} per deg²")
+    ax.set_title(f"{units['n_units']} units in {units['n_fields']} fields", fontsize=10)
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=7.5, loc="upper right")
+
+    res = fig.add_subplot(grid[1])
+    ratio = np.where(ok & (expected > 0), n / np.where(expected > 0, expected, 1.0), np.nan)
+    ratio_err = np.where(ok & (expected > 0), np.sqrt(np.maximum(n, 1.0))
+                         / np.where(expected > 0, expected, 1.0), np.nan)
+    res.errorbar(l_deg[ok], ratio[ok], yerr=ratio_err[ok], fmt="none", ecolor="grey", lw=0.8)
+    sc = res.scatter(l_deg[ok], ratio[ok], c=np.abs(b_deg[ok]), cmap="viridis", s=22, zorder=3)
+    fig.colorbar(sc, ax=res, label="|b| [deg]", shrink=0.85)
+    res.axhline(1.0, color="k", lw=0.8)
+    res.set_xlim(0, 360)
+    res.set_xticks(np.arange(0, 361, 60))
+    res.set_xlabel("galactic longitude l [deg]")
+    res.set_ylabel("observed / best model")
+    res.set_title("Residuals (Poisson error bars)", fontsize=10)
+    res.grid(alpha=0.3)
+
+    tot = fig.add_subplot(grid[2])
+    rows = [("plain area scaling", sky["naive"], "tab:grey")]
+    for entry in sky["prediction"]["per_set"]:
+        name = ", ".join(entry["covariates"]) or "constant"
+        rows.append((f"{name}\n(weight {entry['weight']:.2f})", entry["total"], "tab:blue"))
+    rows.append(("sky model (all sets)", sky["total"], "tab:red"))
+    for i, (_label, est, colour_) in enumerate(rows):
+        y = len(rows) - 1 - i
+        lo95, hi95 = est["interval_95"]
+        lo68, hi68 = est["interval_68"]
+        tot.plot([lo95, hi95], [y, y], color=colour_, lw=1.2)
+        tot.plot([lo68, hi68], [y, y], color=colour_, lw=4.5, solid_capstyle="butt")
+        tot.plot(est["median"], y, "o", color="white", mec=colour_, ms=6)
+    tot.set_yticks(range(len(rows)))
+    tot.set_yticklabels([r[0] for r in reversed(rows)], fontsize=7.5)
+    tot.set_xscale("log")
+    area = sky["target_sky"]["area_deg2"]
+    tot.set_xlabel(f"sources over the target sky ({area:,.0f} deg²)")
+    outside = sky["fraction_outside_observed_range"]["area"]
+    tot.set_title("Totals: median, 68 % (thick) and 95 %"
+                  + (f"\n{100 * outside:.3g} % of the target is an extrapolation"
+                     if outside > 0 else ""), fontsize=10)
+    tot.grid(alpha=0.3, which="both", axis="x")
+    if title:
+        fig.suptitle(title, fontsize=11)
+    fig.tight_layout()
+    _save(fig, path)
+
+
+def contamination_figure(contamination, path, title=None):
+    """Stars among the sources: counts per bin and the contamination fraction."""
+    plt = _pyplot()
+    edges = np.asarray(contamination["mag_edges"], dtype=float)
+    mid = 0.5 * (edges[1:] + edges[:-1])
+
+    def values(key):
+        return np.array([np.nan if v is None else v for v in contamination[key]], dtype=float)
+
+    sources, stars, galaxies = values("n_sources"), values("n_stars"), values("n_galaxies")
+    fraction = values("fraction")
+    bounds = np.array([[np.nan, np.nan] if v[0] is None else v
+                       for v in contamination["fraction_interval_68"]], dtype=float)
+    fig, (ax, frac) = plt.subplots(2, 1, figsize=(8, 6.5), sharex=True,
+                                   gridspec_kw={"height_ratios": [1.4, 1]})
+    shown = sources > 0
+    ax.step(mid[shown], sources[shown], where="mid", color="k", label="all sources")
+    ax.step(mid[shown], np.where(stars[shown] > 0, stars[shown], np.nan), where="mid",
+            color="tab:orange", label="stars")
+    ax.step(mid[shown], np.where(galaxies[shown] > 0, galaxies[shown], np.nan), where="mid",
+            color="tab:blue", label="galaxies (sources − stars)")
+    ax.set_yscale("log")
+    ax.set_ylabel("sources per bin")
+    ax.legend(fontsize=8)
+    ax.grid(alpha=0.3, which="both")
+    method = ("star/galaxy classifier" if contamination["method"] == "classifier"
+              else "star catalogue subtracted")
+    ax.set_title(title or f"Stars among the sources ({method})", fontsize=11)
+    yerr = np.abs(np.stack([fraction - bounds[:, 0], bounds[:, 1] - fraction]))[:, shown]
+    frac.errorbar(mid[shown], fraction[shown], yerr=yerr, fmt="o", ms=3.5,
+                  color="tab:orange", lw=0.9)
+    frac.set_ylim(-0.05, 1.05)
+    frac.set_ylabel("star fraction (68 %)")
+    frac.set_xlabel("magnitude")
+    frac.grid(alpha=0.3)
     fig.tight_layout()
     _save(fig, path)
 

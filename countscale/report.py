@@ -127,6 +127,8 @@ def render_markdown(results: Mapping[str, Any]) -> str:
         "|---|---:|---:|",
     ]
     out += [f"| {lo:.4g}–{hi:.4g} | {n:,d} | {d:.4g} |" for lo, hi, n, d in _bin_rows(results)]
+    if tally.get("extinction"):
+        out += ["", _extinction_line(tally["extinction"])]
     out += [
         "",
         f"Brighter than the first edge: {tally['n_brighter']:,d}; at or fainter than the last "
@@ -155,6 +157,14 @@ def render_markdown(results: Mapping[str, Any]) -> str:
         out += ["", *_counts_markdown(results["counts"])]
         if "counts" in figures:
             out += ["", f"![number counts]({figures['counts']})"]
+    if "contamination" in results:
+        out += ["", *_contamination_markdown(results["contamination"])]
+        if "contamination" in figures:
+            out += ["", f"![stars among the sources]({figures['contamination']})"]
+    if "sky_model" in results:
+        out += ["", *_sky_model_markdown(results["sky_model"])]
+        if "sky_model" in figures:
+            out += ["", f"![sky model]({figures['sky_model']})"]
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         out += ["", "## Not run", "", f"The run file has {listed}; this version of countscale "
@@ -189,7 +199,116 @@ def _completeness_markdown(comp: Mapping[str, Any]) -> list[str]:
                "the shape at one depth and the map places it tile by tile"
                if depth.get("shifted_injections") else ""),
         ]
+    extinction = comp.get("extinction")
+    if extinction:
+        per_region = [a for a in extinction["region_mean_extinction_mag"] if a is not None]
+        out += [
+            f"- extinction: counts are in dereddened magnitudes, so each part of the footprint "
+            f"is complete to a limit moved brighter by its extinction: m50 (dereddened) from "
+            f"{extinction['m50_dereddened_min']:.3f} to {extinction['m50_dereddened_max']:.3f}; "
+            f"mean extinction per region from {min(per_region):.3f} to "
+            f"{max(per_region):.3f} mag",
+        ]
     out += ["", "Intervals are 68 %; they reflect the finite number of injections only."]
+    return out
+
+
+def _extinction_line(ext: Mapping[str, Any]) -> str:
+    source = (f"band `{ext['band']}`, {ext['coefficient_source']}" if ext.get("band")
+              else "given in the run file")
+    return (f"Magnitudes are dereddened per source: m − R·E(B−V) at the source's pixel of "
+            f"`{ext['path']}` (nside {ext['nside']}), R = {ext['coefficient']:g} ({source}). "
+            f"Over the footprint E(B−V) runs from {ext['ebv_min']:.3g} to {ext['ebv_max']:.3g} "
+            f"(extinction {ext['extinction_mean_mag']:.3g} mag on average, "
+            f"{ext['extinction_max_mag']:.3g} at most).")
+
+
+def _contamination_markdown(cont: Mapping[str, Any]) -> list[str]:
+    method = ("a star/galaxy classifier column" if cont["method"] == "classifier"
+              else "a star catalogue of the same footprint, subtracted bin by bin")
+    out = [
+        "## Stars among the sources",
+        "",
+        f"From {method}. The star fraction is stars / all sources in the bin, with its 68 % "
+        "interval" + (" (Clopper-Pearson)." if cont["method"] == "classifier" else "."),
+        "",
+        "| magnitude | sources | stars | galaxies | star fraction |",
+        "|---|---:|---:|---:|---:|",
+    ]
+    edges = cont["mag_edges"]
+    for i, n in enumerate(cont["n_sources"]):
+        if not n:
+            continue
+        stars, gal = cont["n_stars"][i], cont["n_galaxies"][i]
+        frac, (lo, hi) = cont["fraction"][i], cont["fraction_interval_68"][i]
+        star_text = f"{stars:,.0f}" + (f" ± {cont['n_stars_err'][i]:,.0f}"
+                                       if cont["n_stars_err"][i] else "")
+        out.append(f"| {edges[i]:.4g}–{edges[i + 1]:.4g} | {n:,.0f} | {star_text} | "
+                   f"{gal:,.0f} ± {cont['n_galaxies_err'][i]:,.0f} | "
+                   + ("–" if frac is None else f"{frac:.3f} ({lo:.3f}–{hi:.3f})") + " |")
+    for note in cont.get("notes", []):
+        out += ["", f"Note: {note.rstrip('.')}."]
+    return out
+
+
+def _target_item_text(item: Mapping[str, Any]) -> str:
+    kind = item["kind"]
+    if kind == "galactic_latitude_above":
+        return f"|b| ≥ {item['b_deg']:g}°"
+    if kind == "galactic_latitude_below":
+        return f"|b| < {item['b_deg']:g}°"
+    params = ", ".join(f"{k} {v}" for k, v in item.items() if k != "kind")
+    return f"{kind} ({params})"
+
+
+def _sky_model_markdown(sky: Mapping[str, Any]) -> list[str]:
+    target = sky["target_sky"]
+    items = target["items"]
+    target_text = items if isinstance(items, str) else " ∪ ".join(
+        _target_item_text(item) for item in items)
+    total, naive = sky["total"], sky["naive"]
+    units = sky["units"]
+    outside = sky["fraction_outside_observed_range"]
+    out = [
+        "## Sky model: a population that changes across the sky",
+        "",
+        f"Counts of {units['n_observed']:,d} sources brighter than {sky['mag_limit']:g} in "
+        f"{units['n_units']} units ({units['n_fields']} separate fields, split along the "
+        f"jackknife regions) fitted on sky covariates, then integrated over the target sky "
+        f"({target_text}; {target['area_deg2']:,.1f} deg² at nside {target['nside']}).",
+        "",
+        f"- **sources brighter than {sky['mag_limit']:g} over the target sky: "
+        f"{_estimate(total)}** (95 %: {total['interval_95'][0]:.3g}–"
+        f"{total['interval_95'][1]:.3g})"
+        + (f" — **{100 * outside['area']:.3g} % of the target ({100 * outside['total']:.3g} % "
+           "of this total) lies outside the covariate range the survey observed: an "
+           "extrapolation, with a widened interval**" if outside["area"] > 0 else
+           "; every part of the target lies within the covariate range the fields observed"),
+        f"- plain area scaling: {_estimate(naive)}"
+        + (f", {sky['naive_over_model']:.3g} × the model" if sky.get("naive_over_model")
+           else "") + f" ({sky['naive_note']})",
+        "- budget (shares of the variance of log10 of the total): "
+        + ", ".join(f"{k} {v:.0%}" for k, v in total.get("budget", {}).items()),
+        "",
+        "| covariates | weight (AIC) | dispersion α | χ²/dof | total (68 %) |",
+        "|---|---:|---:|---:|---|",
+    ]
+    for fit, entry in zip(sky["model"]["sets"], sky["prediction"]["per_set"], strict=True):
+        chi = fit["pearson_chi2"] / fit["dof"] if fit["dof"] > 0 else float("nan")
+        out.append(f"| {', '.join(fit['covariates']) or '(constant)'} | {fit['weight']:.3f} | "
+                   f"{fit['dispersion']:.3g} | {chi:.2f} | {_estimate(entry['total'])} |")
+    out += [
+        "",
+        f"The model is log-linear in the covariates ({sky['model']['likelihood'].replace('_', ' ')}"
+        " likelihood); the total's draws mix the sets by their Akaike weights, so the spread "
+        "between sets is part of the interval. Completeness of the counted sources: at least "
+        + (f"{units['completeness_min']:.3f}" if units.get("completeness_min") is not None
+           else "1 (taken as complete)") + ".",
+    ]
+    for text in sky.get("warnings", []):
+        out += ["", f"**Warning:** {text.rstrip('.')}."]
+    for note in sky.get("notes", []):
+        out += ["", f"Note: {note.rstrip('.')}."]
     return out
 
 
@@ -484,6 +603,24 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
         if shown:
             lines.append(f"                {' and '.join(shown)} in "
                          f"{len(lf[('vmax' if 'vmax' in lf else 'swml')]['phi'])} bins")
+    if "contamination" in results:
+        cont = results["contamination"]
+        fractions = [f for f in cont["fraction"] if f is not None]
+        lines += ["", f"stars among     {cont['method']}: star fraction per bin from "
+                      f"{min(fractions):.3f} to {max(fractions):.3f}" if fractions else
+                  "stars among     no source"]
+    if "sky_model" in results:
+        sky = results["sky_model"]
+        outside = sky["fraction_outside_observed_range"]
+        lines += [
+            "",
+            f"sky model       N(<{sky['mag_limit']:g}) over the target sky "
+            f"({sky['target_sky']['area_deg2']:,.0f} deg²): {_estimate(sky['total'])}",
+            f"                plain area scaling: {_estimate(sky['naive'])}",
+        ]
+        if outside["area"] > 0:
+            lines.append(f"                WARNING: {100 * outside['area']:.3g} % of the target "
+                         "lies outside the covariate range observed (an extrapolation)")
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         lines += ["", f"not run yet     {listed}",
@@ -502,7 +639,8 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
 
 FIGURE_NAMES = {"footprint": "footprint.png", "completeness": "completeness.png",
                 "counts": "counts.png", "luminosity_function": "luminosity_function.png",
-                "variance": "variance.png"}
+                "variance": "variance.png", "contamination": "contamination.png",
+                "sky_model": "sky_model.png"}
 
 
 def figure_names(results: Mapping[str, Any], formats: Iterable[str],
@@ -521,6 +659,7 @@ def figure_names(results: Mapping[str, Any], formats: Iterable[str],
               if name in results]
     if (results.get("variance") or {}).get("area_curve"):
         names.append("variance")
+    names += [name for name in ("contamination", "sky_model") if name in results]
     return {name: FIGURE_NAMES[name] for name in names}
 
 
@@ -569,6 +708,9 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
                    else "stellar-mass") + " function"),
             "variance": lambda p: plots.variance_figure(
                 results["variance"], p, title=f"{title}: Poisson and cosmic variance"),
+            "contamination": lambda p: plots.contamination_figure(results["contamination"], p),
+            "sky_model": lambda p: plots.sky_model_figure(
+                results["sky_model"], p, title=f"{title}: sky model"),
         }
         for name in figure_names(results, formats, footprint):
             figures[name] = drawers[name]

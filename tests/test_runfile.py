@@ -110,6 +110,24 @@ FULL = textwrap.dedent(
     faint_limit = 30.0
     stars = true
     imf = "kroupa"
+    target_sky = [{galactic_latitude_above = 30}, {cap = {ra = 10.0, dec = 5.0, radius = 3}}]
+
+    [extinction]
+    map = "dust/ebv.fits"
+    band = "sdss_r"
+    nest = false
+
+    [sky_model]
+    mag_limit = 21.5
+    covariate_sets = [["log_sin_b"], ["log_sin_b", "cos_l_cos_b", "ebv", "depth"], []]
+    maps = [{name = "depth", path = "inj/m50.fits", nest = true, transform = "log"}]
+    likelihood = "poisson"
+    nside = 32
+    draws = 2000
+
+    [contamination]
+    star_catalog = ["stars/*.parquet"]
+    columns = {ra = "RA_STAR", dec = "DEC_STAR", mag = "R_STAR"}
 
     [cosmology]
     H0 = 70.0
@@ -127,7 +145,13 @@ FULL = textwrap.dedent(
 )
 
 # Keys that FULL cannot use together with the keys it uses (name excludes H0/Om0).
-ALTERNATES = ['[cosmology]\nname = "WMAP9"\n']
+ALTERNATES = [
+    '[cosmology]\nname = "WMAP9"\n',
+    # [catalog] classifier and [contamination] both remove stars: one at a time.
+    '[catalog]\nclassifier = "P_STAR"\nclassifier_threshold = 0.7\n',
+    # [extinction] takes a band name or its coefficient R.
+    '[extinction]\nmap = "ebv.fits"\ncoefficient = 2.285\n',
+]
 
 MINIMAL = textwrap.dedent(
     """\
@@ -243,13 +267,30 @@ def test_full_runfile_round_trip(full_file: Path) -> None:
     assert rf.variance == {"methods": ("jackknife",), "regions": 40, "bias": 1.3,
                            "redshift_median": 0.6, "mag_limit": 24.5, "sigma8": 0.8,
                            "n_s": 0.96, "wiggles": False}
-    assert rf.totals == {
+    totals = dict(rf.totals)
+    target = totals.pop("target_sky")
+    assert totals == {
         "whole_sky_mag_limit": 24.0,
         "volume": {"kind": "redshift", "redshift": (0.0, 3.0)},
         "faint_limit": 30.0,
         "stars": True,
         "imf": "kroupa",
     }
+    assert [(item.kind, item.params) for item in target] == [
+        ("galactic_latitude_above", {"b_deg": 30.0}),
+        ("cap", {"ra_deg": 10.0, "dec_deg": 5.0, "radius_deg": 3.0}),
+    ]
+    assert rf.extinction == {"map": base / "dust" / "ebv.fits", "coefficient": None,
+                             "band": "sdss_r", "nest": False}
+    sky = rf.sky_model
+    assert sky.mag_limit == 21.5
+    assert sky.covariate_sets == (("log_sin_b",), ("log_sin_b", "cos_l_cos_b", "ebv", "depth"),
+                                  ())
+    assert [dict(m) for m in sky.maps] == [{"name": "depth", "path": base / "inj" / "m50.fits",
+                                            "nest": True, "transform": "log"}]
+    assert (sky.likelihood, sky.nside, sky.draws) == ("poisson", 32, 2000)
+    assert rf.contamination.star_catalog == (base / "stars" / "*.parquet",)
+    assert rf.contamination.columns == {"ra": "RA_STAR", "dec": "DEC_STAR", "mag": "R_STAR"}
     assert rf.cosmology == {"name": None, "H0": 70.0, "Om0": 0.3}
     assert rf.output == {"dir": base / "out" / "run1", "formats": ("json", "png")}
     assert rf.engine == {"kind": "dask", "scheduler": "tcp://127.0.0.1:8786", "chunk_rows": 500_000}
@@ -344,6 +385,7 @@ def test_defaults_inside_sections_and_items(tmp_path: Path) -> None:
         "faint_limit": None,
         "stars": False,
         "imf": "chabrier",
+        "target_sky": None,
     }
     assert "totals" in rf.present
 
@@ -1264,6 +1306,127 @@ BAD = [
         "[engine]\nchunk_rows = 0\n",
         InputError,
         exact(f"{F}: [engine] 'chunk_rows' must be an integer >= 1; got 0"),
+    ),
+    # -- populations across the sky (target sky, extinction, sky model, stars) ---------------
+    (
+        "target-sky-occupancy",
+        "[totals]\ntarget_sky = [{occupancy = {order = 5}}]\n",
+        InputError,
+        exact(f"{F}: [totals] 'target_sky[0]' must be a sky shape, one of 'map', 'moc', 'cap',"
+              " 'box', 'polygon', 'circles', 'galactic_latitude_below', 'galactic_latitude_above'"
+              "; got 'occupancy' (it describes the catalogue, not a target)"),
+    ),
+    (
+        "target-sky-empty",
+        "[totals]\ntarget_sky = []\n",
+        InputError,
+        r"^survey\.toml: \[totals\] 'target_sky' must be a list of footprint items .*"
+        r"\(at least 1\); got \[\]$",
+    ),
+    (
+        "extinction-coefficient-not-positive",
+        '[extinction]\nmap = "ebv.fits"\ncoefficient = 0\n',
+        InputError,
+        exact(f"{F}: [extinction] 'coefficient' must be a number > 0 (A_band / E(B-V)); got 0"),
+    ),
+    (
+        "extinction-coefficient-negative",
+        '[extinction]\nmap = "ebv.fits"\ncoefficient = -2.3\n',
+        InputError,
+        exact(f"{F}: [extinction] 'coefficient' must be a number > 0 (A_band / E(B-V));"
+              " got -2.3"),
+    ),
+    (
+        "extinction-band-unknown",
+        '[extinction]\nmap = "ebv.fits"\nband = "sdss_rr"\n',
+        InputError,
+        r"^survey\.toml: \[extinction\] 'band' must be one of \"sdss_u\", .*; got \"sdss_rr\";"
+        r" did you mean \"sdss_r\"\?$",
+    ),
+    (
+        "extinction-both-r-and-band",
+        '[extinction]\nmap = "ebv.fits"\nband = "sdss_r"\ncoefficient = 2.3\n',
+        InputError,
+        exact(f"{F}: [extinction] needs exactly one of 'coefficient' (R = A / E(B-V)) and "
+              "'band'; got both"),
+    ),
+    (
+        "extinction-no-map",
+        "[extinction]\nband = \"sdss_r\"\n",
+        InputError,
+        exact(f"{F}: [extinction] missing required key 'map'"),
+    ),
+    (
+        "classifier-threshold-out-of-range",
+        '[catalog]\npaths = ["c.parquet"]\nra = "ra"\ndec = "dec"\nmag = "m"\n'
+        'classifier = "P"\nclassifier_threshold = 1.5\n',
+        InputError,
+        exact(f"{F}: [catalog] 'classifier_threshold' must be a number in (0, 1]; got 1.5"),
+    ),
+    (
+        "classifier-threshold-without-column",
+        '[catalog]\npaths = ["c.parquet"]\nra = "ra"\ndec = "dec"\nmag = "m"\n'
+        "classifier_threshold = 0.7\n",
+        InputError,
+        exact(f"{F}: [catalog] 'classifier_threshold' needs a 'classifier' column; got 0.7"),
+    ),
+    (
+        "sky-model-without-limit",
+        "[sky_model]\nnside = 32\n",
+        InputError,
+        exact(f"{F}: [sky_model] needs a magnitude limit: give 'mag_limit', or [totals] "
+              "'whole_sky_mag_limit'; got neither"),
+    ),
+    (
+        "sky-model-unknown-covariate",
+        '[sky_model]\nmag_limit = 20\ncovariate_sets = [["log_sin_bb"]]\n',
+        InputError,
+        exact(f"{F}: [sky_model] 'covariate_sets[0][0]' must be a covariate of the galactic "
+              'basis or a map named in \'maps\'; got "log_sin_bb"; did you mean "log_sin_b"?'),
+    ),
+    (
+        "sky-model-ebv-without-extinction",
+        '[sky_model]\nmag_limit = 20\ncovariate_sets = [["ebv"]]\n',
+        InputError,
+        r"^survey\.toml: \[sky_model\] 'covariate_sets\[0\]\[0\]' must be a covariate of the "
+        r"galactic basis or a map named in 'maps' \('ebv' needs an \[extinction\] section\);"
+        r" got \"ebv\"; expected one of log_sin_b, .*$",
+    ),
+    (
+        "sky-model-nside-not-power-of-two",
+        "[sky_model]\nmag_limit = 20\nnside = 48\n",
+        InputError,
+        exact(f"{F}: [sky_model] 'nside' must be a power of 2 in [1, 1024]; got 48"),
+    ),
+    (
+        "sky-model-repeated-set",
+        '[sky_model]\nmag_limit = 20\ncovariate_sets = [["sin_b"], ["sin_b"]]\n',
+        InputError,
+        exact(f"{F}: [sky_model] 'covariate_sets' must not list the same covariate set twice;"
+              ' got [["sin_b"], ["sin_b"]]'),
+    ),
+    (
+        "sky-model-map-named-like-basis",
+        '[sky_model]\nmag_limit = 20\nmaps = [{name = "sin_b", path = "m.fits"}]\n',
+        InputError,
+        exact(f"{F}: [sky_model] 'maps[0].name' must differ from the galactic basis' names and "
+              "'ebv' (the [extinction] map); got \"sin_b\""),
+    ),
+    (
+        "contamination-for-stars",
+        '[catalog]\npaths = ["c.parquet"]\nra = "ra"\ndec = "dec"\nmag = "m"\n'
+        'population = "stars"\n[contamination]\nstar_catalog = ["s.parquet"]\n',
+        InputError,
+        exact(f'{F}: [contamination] subtracts stars from galaxy counts; got [catalog] '
+              'population = "stars"'),
+    ),
+    (
+        "contamination-and-classifier",
+        '[catalog]\npaths = ["c.parquet"]\nra = "ra"\ndec = "dec"\nmag = "m"\n'
+        'classifier = "P"\n[contamination]\nstar_catalog = ["s.parquet"]\n',
+        InputError,
+        exact(f"{F}: [contamination] and [catalog] 'classifier' both remove stars; give one of "
+              'them; got classifier = "P"'),
     ),
     # -- TOML syntax --------------------------------------------------------------------------
     (
