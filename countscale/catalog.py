@@ -126,7 +126,8 @@ __all__ = [
 #: Logical columns, required ones first. ``id`` may be integer, float or text; the others
 #: must be numeric.
 REQUIRED_COLUMNS = ("ra", "dec", "mag")
-OPTIONAL_COLUMNS = ("redshift", "mag_error", "stellar_mass", "id", "weight", "classifier")
+OPTIONAL_COLUMNS = ("redshift", "mag_error", "stellar_mass", "id", "weight", "classifier",
+                    "redshift_error")
 LOGICAL_COLUMNS = REQUIRED_COLUMNS + OPTIONAL_COLUMNS
 
 #: Rejection reasons in precedence order (the first failing rule wins).
@@ -545,6 +546,8 @@ class CatalogChunk:
         None when the column is not mapped. ``stellar_mass`` is in the file's own unit.
     classifier : float64 ndarray, shape (n,), or None
         Star/galaxy classifier (probability of being a star, or a 0/1 flag), as stored.
+    redshift_error : float64 ndarray, shape (n,), or None
+        The 1-sigma error of a (photometric) redshift.
     id : ndarray, shape (n,), or None
         int64, float64 or object (str) ids; None when no id column is mapped.
     id_missing : bool ndarray, shape (n,), or None
@@ -568,6 +571,7 @@ class CatalogChunk:
     id_missing: np.ndarray | None = None
     weight: np.ndarray | None = None
     classifier: np.ndarray | None = None
+    redshift_error: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         n = np.shape(self.ra)[0] if np.ndim(self.ra) == 1 else None
@@ -612,6 +616,7 @@ class ValidChunk:
     id: np.ndarray | None = None
     weight: np.ndarray | None = None
     classifier: np.ndarray | None = None
+    redshift_error: np.ndarray | None = None
 
     @property
     def n_rows(self) -> int:
@@ -684,6 +689,9 @@ class CatalogSource:
         catalogue's ``population`` (see :func:`countscale.tally.tally`).
     classifier_threshold : float, optional
         A source is a star when its classifier is >= this value, in (0, 1]; default 0.5.
+    redshift_error : str, optional
+        1-sigma errors of photometric redshifts (the luminosity-function fit convolves its
+        model with them).
     population : {"galaxies", "stars"}
     sentinels : sequence of float
         Magnitudes meaning "no measurement", besides NaN/inf. Default ``DEFAULT_SENTINELS``.
@@ -714,6 +722,7 @@ class CatalogSource:
     require_redshift: bool = False
     mag_range: tuple[float, float] = DEFAULT_MAG_RANGE
     classifier_threshold: float | None = None
+    redshift_error: str | None = None
     files: tuple[Path, ...] = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
@@ -1576,6 +1585,7 @@ def validate_chunk(chunk: CatalogChunk, rules: ValidationRules,
         mag=pick(chunk.mag), redshift=pick(chunk.redshift), mag_error=pick(chunk.mag_error),
         stellar_mass=pick(chunk.stellar_mass), id=pick(chunk.id), weight=pick(chunk.weight),
         classifier=pick(chunk.classifier),
+        redshift_error=pick(chunk.redshift_error),
     )
     return valid, rejected, notes
 

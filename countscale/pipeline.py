@@ -66,8 +66,9 @@ class Stage:
         Run-file sections that must all be present for the stage to run.
     run : callable
         ``run(ctx: RunContext) -> result``; the result has ``to_dict()`` (JSON-ready).
-    columns : tuple of str
-        Per-source tally columns the stage reads.
+    columns : tuple of str, or callable
+        Per-source tally columns the stage reads, or ``columns(runfile) -> tuple`` when they
+        depend on the run file.
     when : callable, optional
         ``when(runfile) -> bool``: a further condition for running (None: always).
     reads : tuple of str
@@ -77,7 +78,7 @@ class Stage:
     name: str
     sections: tuple[str, ...]
     run: Callable[[RunContext], Any]
-    columns: tuple[str, ...] = ()
+    columns: tuple[str, ...] | Callable[[Any], tuple[str, ...]] = ()
     when: Callable[[Any], bool] | None = None
     reads: tuple[str, ...] = ()
 
@@ -1107,6 +1108,297 @@ def _count_models() -> dict[str, Any]:
             "double_power_law": ct.DoublePowerLaw}
 
 
+#: Parameter draws kept for the luminosity function's Estimates and the STY curve's band.
+_LF_DRAWS = 1000
+#: Points of the STY curve stored for the figure.
+_LF_CURVE_POINTS = 200
+
+
+def _run_cosmology(runfile: Any) -> Any:
+    """The run's astropy cosmology from ``[cosmology]`` (Planck18 when absent)."""
+    from countscale import cosmology
+
+    section = runfile.cosmology
+    if section.H0 is not None:
+        return cosmology.get_cosmology(H0=section.H0, Om0=section.Om0)
+    return cosmology.get_cosmology(section.name)
+
+
+def _lf_columns(runfile: Any) -> tuple[str, ...]:
+    """Tally columns the luminosity-function stage reads (positions only with a depth map)."""
+    section = runfile.luminosity_function
+    columns = ["mag", "redshift", "region"]
+    if section.quantity == "stellar_mass":
+        columns.append("stellar_mass")
+    if runfile.catalog.redshift_error is not None:
+        columns.append("redshift_error")
+    if "completeness" in runfile.present and runfile.completeness.depth_map is not None:
+        columns += ["ra", "dec"]
+    return tuple(columns)
+
+
+def _completeness_weights(ctx: RunContext, mag: np.ndarray, columns: Mapping[str, Any],
+                          cap: float, mag_limits: tuple[float, float]
+                          ) -> tuple[np.ndarray | None, dict | None]:
+    """1 / completeness at each source's magnitude (and position, with a depth map), capped.
+
+    The counts in the returned summary are of sources inside the apparent limits.
+    """
+    completeness = ctx.results.get("completeness")
+    if completeness is None:
+        return None, None
+    depth = completeness["depth"]
+    if depth is not None and "ra" in columns:
+        value = np.asarray(depth.completeness_at(mag, columns["ra"], columns["dec"]), float)
+        how = "at each source's magnitude and position (depth map)"
+    else:
+        value = np.asarray(completeness["fit"](mag), dtype=float)
+        how = "at each source's magnitude (one curve for the footprint)"
+    value = np.where(np.isfinite(value), value, 0.0)
+    weight = 1.0 / np.maximum(value, 1.0 / cap)
+    inside = (mag >= mag_limits[0]) & (mag <= mag_limits[1])
+    return weight, {"how": how, "cap": cap,
+                    "n_capped": int((inside & (value < 1.0 / cap)).sum()),
+                    "n_below_half": int((inside & (value < 0.5)).sum()),
+                    "min_completeness": float(value[inside].min()) if inside.any() else None}
+
+
+def _ellipse(centre: np.ndarray, cov: np.ndarray, delta_chi2: float, n: int = 121
+             ) -> np.ndarray:
+    """Points of the ellipse (x - c)^T C^-1 (x - c) = delta_chi2, shape (2, n)."""
+    t = np.linspace(0.0, 2.0 * np.pi, n)
+    values, vectors = np.linalg.eigh(cov)
+    circle = np.stack([np.cos(t), np.sin(t)])
+    return centre[:, None] + vectors @ (np.sqrt(np.maximum(values, 0.0) * delta_chi2)[:, None]
+                                        * circle)
+
+
+def _stage_luminosity_function(ctx: RunContext) -> StageResult:
+    """Luminosity (or stellar-mass) function: STY, 1/Vmax and SWML.
+
+    Reads the tally's per-source magnitudes, redshifts (and stellar masses, redshift errors,
+    positions), the footprint's measured solid angle and its regions, and the completeness
+    stage when it ran (weights 1 / completeness, capped at ``weight_cap``).
+
+    ``results["luminosity_function"]``: ``quantity``, ``selection``, ``sample`` (every source
+    left out, counted by reason), ``sty`` (the fitted parameters as Estimates under their
+    published names, ``covariance``, ``evolution``, densities, ``curve`` with its 68 % band,
+    ``ellipse``), ``vmax`` and ``swml`` (``mag`` or ``log10_mass``, ``phi``, ``phi_err``,
+    ``n`` per bin; phi per Mpc^3 per mag or dex with the run's H0), ``notes``.
+
+    Live objects (``StageResult.objects``), for the stages after it:
+
+    ``fit``
+        The :class:`countscale.lumfunc.STYFit`: ``form_`` (the fitted form at z = 0,
+        normalisation included), ``cov_`` with ``cov_names_`` (its parameter covariance),
+        ``evolution_``, ``params_``. None if STY could not be fitted and was not asked for.
+    ``model``
+        ``fit.form_`` (a Schechter, SchechterMass or DoubleSchechterMass).
+    ``evolution``
+        ``fit.evolution_`` (Lin et al. 1999 Q and P).
+    ``draw_params``
+        ``draw_params(n, rng) -> dict of arrays``: parameter sets drawn from the fit's
+        uncertainty (published names, ``Q``, ``P``; the normalisation correlated with the
+        shape).
+    ``draws``
+        The draws the Estimates were made from (``_LF_DRAWS`` of them).
+    ``nz``
+        ``nz(z, m_limit, area_sr=None) -> ndarray``: the predicted redshift distribution
+        dN/dz (per sr, or over ``area_sr``) of sources brighter than apparent magnitude
+        ``m_limit``, from the STY fit with its evolution and K-correction in the run's
+        cosmology; beyond the fitted redshift range the evolution and K-correction are
+        extrapolated (``fit_redshift_range`` says where that starts). Luminosity functions
+        only (None for a mass function).
+    ``fit_redshift_range``
+        The redshift range the fit used.
+    ``estimates``
+        Dict of :class:`countscale.estimate.Estimate` (with their draws).
+    ``sample``, ``selection``, ``vmax``, ``swml``
+        The :class:`countscale.lumfunc.Sample`, its Selection and the binned estimates.
+    """
+    from countscale import cosmology as cs
+    from countscale import lumfunc as lf
+
+    runfile, section = ctx.runfile, ctx.runfile.luminosity_function
+    tally_result = ctx.results["tally"]
+    columns = tally_result.columns
+    where = runfile.location("luminosity_function")
+    notes: list[str] = []
+    try:
+        kcorrection = cs.as_kcorrection(section.kcorrection)
+    except (InputError, InputTypeError) as exc:
+        raise InputError(f"{runfile.location('luminosity_function', 'kcorrection')}: {exc}"
+                         ) from None
+    evolution = lf.Evolution(Q=section.evolution.Q, P=section.evolution.P)
+    try:
+        selection = lf.Selection(section.mag_limits, section.redshift_range,
+                                 float(ctx.footprint.area_sr), _run_cosmology(runfile),
+                                 kcorrection, evolution)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+    mag = np.asarray(columns["mag"], dtype=float)
+    weight, weight_info = _completeness_weights(ctx, mag, columns, section.weight_cap,
+                                                section.mag_limits)
+    region = columns.get("region")
+    region_area_sr = np.asarray(tally_result.region_area_deg2, dtype=float) * (np.pi / 180) ** 2
+    if region is not None and (np.asarray(region) < 0).any():
+        notes.append("some sources fall in no jackknife region: errors of the normalisation "
+                     "are Poisson only")
+        region = None
+    mass = columns.get("stellar_mass") if section.quantity == "stellar_mass" else None
+    try:
+        sample = selection.select(
+            mag, np.asarray(columns["redshift"], dtype=float), weight=weight,
+            region=None if region is None else np.asarray(region),
+            region_area_sr=None if region is None else region_area_sr,
+            log10_mass=None if mass is None else np.asarray(mass, dtype=float),
+            redshift_error=(None if "redshift_error" not in columns
+                            else np.asarray(columns["redshift_error"], dtype=float)),
+            mass_limit_quantile=section.mass_limit_quantile,
+        )
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+
+    methods = section.methods
+    fit = draws = estimates = None
+    try:
+        fit = lf.STYFit(model=section.model, fit_evolution=section.fit_evolution or ()
+                        ).fit(sample)
+    except lf.LuminosityFunctionFitError as exc:
+        if "sty" in methods:
+            raise
+        notes.append(f"STY could not be fitted ({exc}); later stages have no model")
+    q = fit.evolution_.Q if fit is not None else evolution.Q
+    p = fit.evolution_.P if fit is not None else evolution.P
+    width = section.bin_width or (0.25 if sample.quantity == "luminosity" else 0.1)
+    edges = lf.bin_edges(sample.x(q), width)
+    vmax = lf.vmax_estimate(sample, edges=edges, Q=q, P=p) if "vmax" in methods else None
+    swml = lf.swml_estimate(sample, edges=edges, Q=q, P=p) if "swml" in methods else None
+
+    x_name = sample.x_name
+    data: dict[str, Any] = {
+        "quantity": sample.quantity,
+        "x_name": x_name,
+        "x_unit": sample.x_unit,
+        "methods": list(methods),
+        "selection": selection.describe(),
+        "kcorrection": (None if section.kcorrection is None
+                        else _plain_table(section.kcorrection)),
+        "sample": sample.describe(),
+        "completeness_weights": weight_info,
+    }
+    if fit is not None:
+        draws = fit.draw_params(_LF_DRAWS, ctx.rng)
+        estimates = fit.estimates(draws=draws)
+        sty = fit.to_json(estimates)
+        lo_x, hi_x = float(edges[0]), float(edges[-1])
+        grid = np.linspace(lo_x, hi_x, _LF_CURVE_POINTS)
+        curves = np.array([fit.form_from_draws(draws, i).density(grid)
+                           for i in range(_LF_DRAWS)])
+        sty["curve"] = {
+            x_name: grid.tolist(),
+            "phi": np.asarray(fit.form_.density(grid), dtype=float).tolist(),
+            "band_lo": np.percentile(curves, 16, axis=0).tolist(),
+            "band_hi": np.percentile(curves, 84, axis=0).tolist(),
+        }
+        names = list(fit.cov_names_[:2])
+        index = [fit.cov_names_.index(n) for n in names]
+        centre = np.array([fit.params_[n] for n in names])
+        sub = fit.cov_[np.ix_(index, index)]
+        # Delta chi^2 = 2.30 and 6.18 enclose 68.3 % and 95.4 % for two parameters jointly
+        # (Press et al. 2007, Numerical Recipes 3rd ed., section 15.6).
+        sty["ellipse"] = {
+            "names": names,
+            "centre": centre.tolist(),
+            "levels": [0.683, 0.954],
+            "delta_chi2": [2.30, 6.18],
+            "points": [_ellipse(centre, sub, d).tolist() for d in (2.30, 6.18)],
+        }
+        if "sty" in methods:
+            data["sty"] = sty
+    if vmax is not None:
+        data["vmax"] = vmax.to_json()
+    if swml is not None:
+        swml_json = swml.to_json()
+        data["swml"] = swml_json
+    data["notes"] = notes + _lf_notes(sample, fit, vmax, weight_info, estimates)
+    nz = None
+    if fit is not None and sample.quantity == "luminosity":
+        nz = fit.nz
+    objects = {
+        "fit": fit, "model": None if fit is None else fit.form_,
+        "evolution": None if fit is None else fit.evolution_,
+        "draw_params": None if fit is None else fit.draw_params,
+        "draws": draws, "nz": nz, "fit_redshift_range": selection.redshift_range,
+        "estimates": estimates or {}, "sample": sample, "selection": selection,
+        "vmax": vmax, "swml": swml,
+    }
+    return StageResult(data, objects)
+
+
+def _plain_table(value: Any) -> Any:
+    if isinstance(value, Mapping):
+        return {k: _plain_table(v) for k, v in value.items()}
+    if isinstance(value, tuple | list):
+        return [_plain_table(v) for v in value]
+    return value
+
+
+def _lf_notes(sample: Any, fit: Any, vmax: Any, weight_info: dict | None,
+              estimates: dict | None = None) -> list[str]:
+    notes = []
+    if weight_info is not None:
+        notes.append(
+            f"each galaxy is weighted by 1 / completeness {weight_info['how']}, capped at "
+            f"{weight_info['cap']:g}; of the sources inside the apparent limits, "
+            f"{weight_info['n_below_half']:,d} are less than 50 % complete and "
+            f"{weight_info['n_capped']:,d} less complete than the cap corrects (their weight is "
+            "the cap)")
+    else:
+        notes.append("no [completeness] section: the catalogue is taken as complete inside "
+                     "the apparent limits")
+    if sample.redshift_sampling is not None:
+        notes.append(sample.redshift_sampling["assumption"])
+    if fit is not None:
+        evo = fit.evolution_
+        fitted = fit.fitted_evolution_
+        names = ("Q", "P") if sample.quantity == "luminosity" else ("P",)
+        fixed = [n for n in names if n not in fitted]
+        if fixed:
+            notes.append("evolution " + ", ".join(f"{n} = {getattr(evo, n):g}" for n in fixed)
+                         + " taken from the run file, not fitted")
+        if "P" in fitted:
+            notes.append("P is fitted from the redshift distribution, which also feels "
+                         "large-scale structure along the line of sight; its error does not "
+                         "hold that")
+        density = ("luminosity_density_mag" if sample.quantity == "luminosity"
+                   else "mass_density_msun_mpc3")
+        if estimates is not None and density not in estimates:
+            notes.append(f"no {density.split('_density')[0]} density: alpha <= -2 in some "
+                         "parameter draws, where the total diverges (the number density down "
+                         "to the sample's faintest galaxy is given)")
+        if fit.normalisation_["jackknife_relative_variance"] is not None:
+            notes.append("the normalisation's cosmic variance is the jackknife's over the "
+                         "footprint's regions, which cannot see structure larger than the "
+                         "footprint: an underestimate (the [variance] stage gives the analytic "
+                         "value)")
+        if sample.n < 1000:
+            notes.append(f"STY on {sample.n} galaxies: with a few hundred galaxies the fitted "
+                         "faint-end slope and normalisation are biased and their errors "
+                         "underestimated for steep slopes (Willmer 1997, AJ 114, 898)")
+    if vmax is not None and not np.all(vmax.complete):
+        notes.append("1/Vmax bins marked incomplete hold luminosities no galaxy could have "
+                     "everywhere in the bin; their 1/Vmax average covers only the visible part")
+    if sample.redshift_error is not None:
+        notes.append("photometric redshifts: STY convolves the form with each galaxy's "
+                     "redshift error (Gaussian, through dm/dz); 1/Vmax and SWML take the "
+                     "redshifts as exact")
+    return notes
+
+
+#: The stages, in order (a totals stage goes last, with a later issue).
+
+
 def _wants_contamination(runfile: Any) -> bool:
     return runfile.catalog.classifier is not None or "contamination" in runfile.present
 
@@ -1310,11 +1602,12 @@ def _stage_sky_model(ctx: RunContext) -> StageResult:
     return StageResult(data, objects)
 
 
-#: The stages, in order. Later issues add luminosity_function, variance (before counts) and
-#: totals (after sky_model).
+#: The stages, in order. A later issue adds totals (after sky_model).
 STAGES: list[Stage] = [
     Stage("tally", ("catalog", "footprint"), _stage_tally, reads=("extinction",)),
     Stage("completeness", ("completeness",), _stage_completeness),
+    Stage("luminosity_function", ("luminosity_function",), _stage_luminosity_function,
+          columns=_lf_columns, reads=("cosmology",)),
     Stage("variance", ("variance",), _stage_variance, columns=("mag", "redshift"),
           reads=("cosmology",)),
     Stage("counts", ("counts",), _stage_counts, columns=("mag", "mag_error")),
@@ -1323,6 +1616,12 @@ STAGES: list[Stage] = [
     Stage("sky_model", ("catalog", "footprint"), _stage_sky_model, columns=("mag", "cell"),
           when=_wants_sky_model, reads=("sky_model",)),
 ]
+
+
+def _stage_columns(stage: Stage, runfile: Any) -> tuple[str, ...]:
+    """A stage's tally columns: a tuple, or a function of the run file."""
+    return tuple(stage.columns(runfile)) if callable(stage.columns) else stage.columns
+
 
 #: Sections read by the run itself rather than by a stage.
 _RUN_SECTIONS = frozenset({"survey", "catalog", "footprint", "output", "engine"})
@@ -1459,7 +1758,7 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
               and (s.when is None or s.when(runfile))]
     read = _RUN_SECTIONS.union(*(s.sections for s in STAGES), *(s.reads for s in STAGES))
     not_run = tuple(sorted(name for name in runfile.present if name not in read))
-    columns = tuple(dict.fromkeys(c for s in to_run for c in s.columns))
+    columns = tuple(dict.fromkeys(c for s in to_run for c in _stage_columns(s, runfile)))
     ctx = RunContext(runfile=runfile, engine=engine, scheduler=scheduler,
                      rng=np.random.default_rng(seed), progress=progress, columns=columns)
     run_warnings: list[str] = []
@@ -1535,7 +1834,7 @@ def plan_population(runfile: Any, seed: int | None = 0, progress: bool | None = 
               or all(name in runfile.present for name in s.sections)]
     to_run = [s for s in to_run if s.name in ("tally", "completeness", "luminosity_function",
                                                "variance", "counts")]
-    columns = tuple(dict.fromkeys(c for s in to_run for c in s.columns))
+    columns = tuple(dict.fromkeys(c for s in to_run for c in _stage_columns(s, runfile)))
     ctx = RunContext(runfile=runfile, engine=engine, scheduler=scheduler,
                      rng=np.random.default_rng(_seed_iv(seed)), progress=progress,
                      columns=columns)

@@ -6,6 +6,8 @@ footprint_figure
     Whole-sky view of where a footprint lies, and a zoom that shows its edges and holes.
 completeness_figure, counts_figure
     The completeness curve; the number counts with their fits.
+luminosity_function_figure
+    1/Vmax, SWML and the STY curve on one plot, and the M*-alpha error ellipse.
 sky_model_figure, contamination_figure
     The sky model (densities per unit, residuals, totals); stars among the sources per bin.
 
@@ -379,6 +381,103 @@ def contamination_figure(contamination, path, title=None):
     frac.set_xlabel("magnitude")
     frac.grid(alpha=0.3)
     fig.tight_layout()
+    _save(fig, path)
+
+
+def luminosity_function_figure(lf, path, title=None):
+    """Luminosity (or mass) function: the three estimators on one plot, and the M*-alpha
+    error ellipse.
+
+    Parameters
+    ----------
+    lf : mapping
+        The ``luminosity_function`` block of ``results.json``.
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    x_name = lf["x_name"]
+    is_mag = x_name == "mag"
+    per = "mag" if is_mag else "dex"
+    sty = lf.get("sty")
+    fig, (ax, el) = plt.subplots(1, 2, figsize=(12, 5.2),
+                                 gridspec_kw={"width_ratios": [1.6, 1]})
+    shown_y = []
+    if sty is not None:
+        curve = sty["curve"]
+        grid = np.asarray(curve[x_name])
+        ax.fill_between(grid, curve["band_lo"], curve["band_hi"], color="tab:red", alpha=0.25,
+                        lw=0, label="STY, 68 % band")
+        label = "STY " + sty["model"].replace("_", "-")
+        ax.plot(grid, curve["phi"], color="tab:red", lw=1.6, label=label)
+        shown_y += list(curve["phi"])
+    for key, style, colour, name in (("vmax", "o", "k", "1/Vmax"),
+                                     ("swml", "s", "tab:blue", "SWML")):
+        block = lf.get(key)
+        if block is None:
+            continue
+        x = np.asarray(block[x_name])
+        phi = np.asarray(block["phi"])
+        err = np.asarray(block["phi_err"])
+        complete = np.asarray(block["complete"], dtype=bool)
+        # Log axis: a lower error bar reaching 0 is drawn down to 1/10 of the point.
+        lower = np.minimum(err, 0.9 * phi)
+        offset = 0.03 if key == "swml" else -0.03  # side by side, not on top of each other
+        ax.errorbar(x[complete] + offset, phi[complete],
+                    yerr=np.stack([lower, err])[:, complete], fmt=style, ms=3.5,
+                    color=colour, mfc=colour, lw=0.8,
+                    label=f"{name}, 68 %")
+        if (~complete).any():
+            ax.errorbar(x[~complete] + offset, phi[~complete],
+                        yerr=np.stack([lower, err])[:, ~complete], fmt=style, ms=3.5,
+                        color=colour, mfc="none", lw=0.6, alpha=0.7,
+                        label=f"{name}, bin only partly observable")
+        shown_y += list(phi[phi > 0])
+    ax.set_yscale("log")
+    if shown_y:
+        positive = np.asarray([v for v in shown_y if v > 0])
+        ax.set_ylim(0.3 * positive.min(), 4 * positive.max())
+    if is_mag:
+        ax.invert_xaxis()
+        ax.set_xlabel("absolute magnitude M + Q z (evolution-corrected to z = 0)"
+                      if lf["selection"]["evolution"]["Q"] else "absolute magnitude M")
+    else:
+        ax.set_xlabel("log10 stellar mass [Msun]")
+    ax.set_ylabel(f"φ [Mpc⁻³ {per}⁻¹] (H0 = {lf['selection']['H0']:g})")
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=8, loc="lower left")
+    n_used = lf["sample"]["n_used"]
+    z_lo, z_hi = lf["selection"]["redshift_range"]
+    ax.set_title(f"{n_used:,d} galaxies, {z_lo:g} < z < {z_hi:g}", fontsize=10)
+
+    if sty is not None:
+        ellipse = sty["ellipse"]
+        centre = ellipse["centre"]
+        for points, level, ls in zip(ellipse["points"], ellipse["levels"], ("-", "--"),
+                                     strict=True):
+            el.plot(points[0], points[1], ls, color="tab:red", lw=1.3,
+                    label=f"{100 * level:.1f} % joint region")
+        el.plot(centre[0], centre[1], "+", color="tab:red", ms=10, mew=1.5, label="STY best fit")
+        names = ellipse["names"]
+        labels = {"m_star": "M* [mag]", "alpha": "α", "log10_mass_star": "log10 M* [Msun]",
+                  "alpha_1": "α₁"}
+        el.set_xlabel(labels.get(names[0], names[0]))
+        el.set_ylabel(labels.get(names[1], names[1]))
+        if names[0] == "m_star":
+            el.invert_xaxis()
+        el.grid(alpha=0.3)
+        el.legend(fontsize=8)
+        errs = [sty[n]["interval_68"] for n in names]
+        short = {"m_star": "M*", "alpha": "α", "log10_mass_star": "log10 M*", "alpha_1": "α₁"}
+        el.set_title("\n".join(
+            f"{short.get(n, n)} = {c:.3f} (68 %: {e[0]:.3f} to {e[1]:.3f})"
+            for n, c, e in zip(names, centre, errs, strict=True)), fontsize=9)
+    else:
+        el.text(0.5, 0.5, "STY not run", ha="center", va="center")
+        el.set_axis_off()
+    if title:
+        fig.suptitle(title)
+    fig.tight_layout(rect=(0, 0, 1, 0.95))
     _save(fig, path)
 
 

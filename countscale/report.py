@@ -144,6 +144,9 @@ def render_markdown(results: Mapping[str, Any]) -> str:
     if "completeness" in results:
         out += ["", *_completeness_markdown(results["completeness"])]
         out += _figure_markdown(results, "completeness", "completeness")
+    if "luminosity_function" in results:
+        out += ["", *_luminosity_function_markdown(results["luminosity_function"])]
+        out += _figure_markdown(results, "luminosity_function", "luminosity function")
     if "variance" in results:
         out += ["", *_variance_markdown(results["variance"])]
         out += _figure_markdown(results, "variance", "cosmic variance against area")
@@ -406,6 +409,81 @@ def _counts_markdown(counts: Mapping[str, Any]) -> list[str]:
     return out
 
 
+_LF_LABELS = {
+    "m_star": "M* [mag]", "alpha": "α", "phi_star": "φ* [Mpc⁻³]",
+    "log10_mass_star": "log10 M* [Msun]", "alpha_1": "α₁", "alpha_2": "α₂",
+    "phi_star_1": "φ*₁ [Mpc⁻³ dex⁻¹]", "phi_star_2": "φ*₂ [Mpc⁻³ dex⁻¹]",
+    "Q": "Q [mag per unit z]", "P": "P",
+    "luminosity_density_mag": "luminosity density [mag Mpc⁻³]",
+    "mass_density_msun_mpc3": "stellar mass density [Msun Mpc⁻³]",
+    "number_density_mpc3": "number density [Mpc⁻³]",
+}
+
+
+def _luminosity_function_markdown(lf: Mapping[str, Any]) -> list[str]:
+    sel, sample = lf["selection"], lf["sample"]
+    what = "Luminosity function" if lf["quantity"] == "luminosity" else "Stellar-mass function"
+    z_lo, z_hi = sel["redshift_range"]
+    out = [
+        f"## {what}",
+        "",
+        f"{sample['n_used']:,d} galaxies with {sel['mag_limits'][0]:g} ≤ m ≤ "
+        f"{sel['mag_limits'][1]:g} and {z_lo:g} ≤ z ≤ {z_hi:g}, over "
+        f"{sel['area_sr']:.5g} sr ({sel['volume_mpc3']:.4g} Mpc³ comoving), in "
+        f"{sel['cosmology']} (H0 = {sel['H0']:g}; densities per Mpc³ with that H0). "
+        f"Left out: {sample['n_outside_mag_limits']:,d} outside the apparent limits, "
+        f"{sample['n_no_redshift']:,d} without a redshift, "
+        f"{sample['n_outside_redshift_range']:,d} outside the redshift range"
+        + (f", {sample['n_no_stellar_mass']:,d} without a stellar mass, "
+           f"{sample['n_outside_mass_limits']:,d} outside the mass-completeness limits"
+           if lf["quantity"] == "stellar_mass" else "") + ".",
+    ]
+    limit = sample.get("mass_limit")
+    if limit is not None:
+        pairs = ", ".join(f"{m:.2f} at z = {z:.3g}" for z, m in zip(limit["z"],
+                                                                     limit["log10_mass"],
+                                                                     strict=True))
+        out += ["", f"Mass-completeness limit: {limit['assumption']}. log10 M_lim [Msun]: "
+                    f"{pairs}."]
+    sty = lf.get("sty")
+    if sty is not None:
+        evo = sty["evolution"]
+        fitted = ", ".join(evo["fitted"]) or "none"
+        evolution = (f"evolution Q = {evo['Q']:.3g}, P = {evo['P']:.3g}"
+                     if lf["quantity"] == "luminosity" else f"density evolution P = {evo['P']:.3g}")
+        count_error = ("jackknife over regions" if sty["normalisation"]["n_regions"] >= 3
+                       else "Poisson")
+        out += [
+            "",
+            f"STY maximum likelihood ({sty['model'].replace('_', ' ')}; {evolution}; fitted: "
+            f"{fitted}). Intervals are 68 %; the "
+            "shape's errors come from the likelihood's curvature, the normalisation's also "
+            f"from the count ({count_error}) and the shape.",
+            "",
+            "| parameter | value | budget |",
+            "|---|---|---|",
+        ]
+        for name, value in sty.items():
+            if isinstance(value, Mapping) and "median" in value:
+                budget = ", ".join(f"{k} {v:.0%}" for k, v in value.get("budget", {}).items())
+                label = _LF_LABELS.get(name, name)
+                if name == "number_density_mpc3":
+                    label += f" (brighter than {sty['number_density_limit']:.4g})" \
+                        if lf["quantity"] == "luminosity" else \
+                        f" (above {sty['number_density_limit']:.4g} dex)"
+                out.append(f"| {label} | {_estimate(value)} | {budget} |")
+    for key, name in (("vmax", "1/Vmax"), ("swml", "SWML")):
+        block = lf.get(key)
+        if block is None:
+            continue
+        x = block[lf["x_name"]]
+        out += ["", f"{name}: {len(x)} bins from {block['bin_lower'][0]:g} to "
+                    f"{block['bin_upper'][-1]:g}; errors: {block['error_kind']}."]
+    for note in lf.get("notes", []):
+        out += ["", f"Note: {note.rstrip('.')}."]
+    return out
+
+
 def _integral_markdown(integral: Mapping[str, Any]) -> list[str]:
     m = integral["m_limit"]
     clustering = integral.get("cosmic_variance") or {}
@@ -550,6 +628,21 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
             lines.append(f"                N(<{integral['m_limit']:g}) this field = "
                          f"{_estimate(integral['per_deg2_this_field'])} (Poisson only)")
         lines += [f"                note: {note}" for note in results["counts"].get("notes", [])]
+    if "luminosity_function" in results:
+        lf = results["luminosity_function"]
+        sty = lf.get("sty")
+        head = "luminosity fn" if lf["quantity"] == "luminosity" else "mass function"
+        line = f"{head:<16}{lf['sample']['n_used']:,d} galaxies"
+        if sty is not None:
+            params = [f"{k} {_estimate(v)}" for k, v in sty.items()
+                      if isinstance(v, Mapping) and "median" in v
+                      and not k.endswith(("density_mag", "_mpc3"))]
+            line += ": STY " + "; ".join(params)
+        lines += ["", line]
+        shown = [name for key, name in (("vmax", "1/Vmax"), ("swml", "SWML")) if key in lf]
+        if shown:
+            lines.append(f"                {' and '.join(shown)} in "
+                         f"{len(lf[('vmax' if 'vmax' in lf else 'swml')]['phi'])} bins")
     if "contamination" in results:
         cont = results["contamination"]
         fractions = [f for f in cont["fraction"] if f is not None]
@@ -590,8 +683,9 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
 
 
 FIGURE_NAMES = {"footprint": "footprint.png", "completeness": "completeness.png",
-                "counts": "counts.png", "variance": "variance.png",
-                "contamination": "contamination.png", "sky_model": "sky_model.png"}
+                "counts": "counts.png", "luminosity_function": "luminosity_function.png",
+                "variance": "variance.png", "contamination": "contamination.png",
+                "sky_model": "sky_model.png"}
 
 
 def figure_names(results: Mapping[str, Any], formats: Iterable[str],
@@ -605,7 +699,8 @@ def figure_names(results: Mapping[str, Any], formats: Iterable[str],
     names = []
     if footprint is not None:
         names.append("footprint")
-    names += [name for name in ("completeness", "counts") if name in results]
+    names += [name for name in ("completeness", "counts", "luminosity_function")
+              if name in results]
     if (results.get("variance") or {}).get("area_curve"):
         names.append("variance")
     names += [name for name in ("contamination", "sky_model") if name in results]
@@ -662,6 +757,10 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
                 results["completeness"], p, title=f"{title}: detection completeness"),
             "counts": lambda p: plots.counts_figure(
                 results["counts"], p, title=f"{title}: differential number counts"),
+            "luminosity_function": lambda p: plots.luminosity_function_figure(
+                results["luminosity_function"], p, title=f"{title}: "
+                + ("luminosity" if results["luminosity_function"]["quantity"] == "luminosity"
+                   else "stellar-mass") + " function"),
             "variance": lambda p: plots.variance_figure(
                 results["variance"], p, title=f"{title}: Poisson and cosmic variance"),
             "contamination": lambda p: plots.contamination_figure(results["contamination"], p),

@@ -1006,6 +1006,28 @@ def _check_counts(table: Table, where: _Where) -> Table:
     return table
 
 
+def _check_luminosity_function(table: Table, where: _Where) -> Table:
+    if table.quantity is None:  # section absent
+        return table
+    if table.model == "double_schechter" and table.quantity != "stellar_mass":
+        raise where.key("model").value_error(
+            'is a stellar-mass form (Baldry et al. 2012); it needs quantity = "stellar_mass"',
+            table.model,
+        )
+    if table.quantity == "stellar_mass":
+        if table.fit_evolution is not None:
+            raise where.key("fit_evolution").value_error(
+                'applies to luminosity functions; quantity is "stellar_mass"',
+                list(table.fit_evolution),
+            )
+        if table.evolution.Q != 0:
+            raise where.key("evolution").value_error(
+                'Q applies to luminosity functions (quantity is "stellar_mass"); give Q = 0',
+                table.evolution.Q,
+            )
+    return table
+
+
 def _check_cosmology(table: Table, where: _Where) -> Table:
     has_params = table.H0 is not None or table.Om0 is not None
     if table.name is not None and has_params:
@@ -1083,6 +1105,9 @@ SECTIONS: dict[str, Section] = {
                 _pair("must be two magnitudes [lo, hi] with lo < hi (the plausible range, AB)"),
                 [-30.0, 40.0],
             ),
+            # 1-sigma redshift errors (photometric redshifts): the luminosity-function fit
+            # then convolves its model with them.
+            "redshift_error": Key(_column),
         },
         check=_check_catalog,
     ),
@@ -1154,7 +1179,23 @@ SECTIONS: dict[str, Section] = {
             # Luminosity (Q, mag per unit redshift) and density (P) evolution in the form of
             # Lin et al. 1999, ApJ 518, 533 (eq. 5); 0 and 0 mean no evolution.
             "evolution": Key(_table({"Q": Key(_real(), 0.0), "P": Key(_real(), 0.0)}), {}),
-        }
+            # What is estimated: the luminosity function, or the stellar-mass function of
+            # the [catalog] 'stellar_mass' column (log10 Msun).
+            "quantity": Key(_choice(["luminosity", "stellar_mass"]), "luminosity"),
+            # The form STY fits; double_schechter is Baldry et al. 2012 (MNRAS 421, 621, eq. 6).
+            "model": Key(_choice(["schechter", "double_schechter"]), "schechter"),
+            # Evolution parameters fitted instead of fixed (their `evolution` values start the
+            # fit): Q jointly with the shape, P from the redshift distribution.
+            "fit_evolution": Key(_subset(["Q", "P"])),
+            # Bins of 1/Vmax and SWML; default 0.25 mag or 0.1 dex (choice of this project).
+            "bin_width": Key(_real(0.0, lo_open=True)),
+            # Largest completeness weight 1 / completeness (completeness below 1 / weight_cap
+            # is not fully corrected, and the report says how many sources that touches).
+            "weight_cap": Key(_real(1.0), 5.0),
+            # Mass-to-light percentile that sets the mass-completeness limit per redshift.
+            "mass_limit_quantile": Key(_real(0.5, 1.0, hi_open=True), 0.95),
+        },
+        check=_check_luminosity_function,
     ),
     "variance": Section(
         {
@@ -1267,6 +1308,18 @@ def _check_redshifts_for_lf(
         )
 
 
+def _check_masses_for_mf(
+    sections: Mapping[str, Table], present: frozenset[str], where: _Where
+) -> None:
+    if ({"luminosity_function", "catalog"} <= present
+            and sections["luminosity_function"].quantity == "stellar_mass"
+            and sections["catalog"].stellar_mass is None):
+        raise InputError(
+            f"{where.in_section('luminosity_function').prefix} quantity = \"stellar_mass\" "
+            "needs a stellar mass per source; got no [catalog] 'stellar_mass' column"
+        )
+
+
 def _check_sky_model(
     sections: Mapping[str, Table], present: frozenset[str], where: _Where
 ) -> None:
@@ -1313,6 +1366,7 @@ def _check_contamination(
 
 _FILE_CHECKS: tuple[Callable[[Mapping[str, Table], frozenset[str], _Where], None], ...] = (
     _check_redshifts_for_lf,
+    _check_masses_for_mf,
     _check_sky_model,
     _check_contamination,
 )

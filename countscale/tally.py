@@ -149,6 +149,10 @@ COLUMNS = {
     "coverage": np.float32,
     "region": np.int32,
     "cell": np.int32,
+    "redshift_error": np.float32,
+    # Positions, for per-source completeness from a depth map (float32: 0.1 arcsec).
+    "ra": np.float32,
+    "dec": np.float32,
 }
 
 #: HEALPix order of the ``cell`` column (NEST index of each source's cell): 3.4 arcmin cells,
@@ -920,7 +924,7 @@ def _blocks(chunk: CatalogChunk, block_rows: int) -> Iterator[CatalogChunk]:
         yield chunk
         return
     names = ("ra", "dec", "mag", "redshift", "mag_error", "stellar_mass", "id", "id_missing",
-             "weight", "classifier")
+             "weight", "classifier", "redshift_error")
     for start in range(0, n, block_rows):
         stop = start + block_rows
         arrays = {k: (None if getattr(chunk, k) is None else getattr(chunk, k)[start:stop])
@@ -1301,8 +1305,9 @@ def _columns_iv(columns: Any, source: CatalogSource) -> tuple[str, ...]:
     available = [c for c in COLUMNS if c in ("coverage", "region", "cell")
                  or getattr(source, c, None) is not None]
     if columns is None:
-        # ``cell`` only on request: it serves the sky model, not every caller.
-        return tuple(c for c in available if c != "cell")
+        # ``cell`` only on request: it serves the sky model, not every caller; positions
+        # likewise (8 bytes per source, for completeness from a depth map).
+        return tuple(c for c in available if c not in ("cell", "ra", "dec"))
     if isinstance(columns, str) or not isinstance(columns, Sequence | set | frozenset):
         raise InputTypeError(f"`columns` must be a list of column names; got {columns!r}")
     out = []
@@ -1344,9 +1349,9 @@ def tally(source: CatalogSource, footprint: Footprint, *, regions: Regions | Non
     columns : sequence of str, optional
         Per-source columns to keep for in-footprint sources (names from :data:`COLUMNS`);
         default every one the source can give except ``cell`` (the NEST cell of
-        :data:`CELL_ORDER`, kept only when asked for). ``()`` keeps none, so memory does not
-        grow with the catalogue; each kept column costs 4 bytes per in-footprint source (8 while the
-        blocks are joined at the end).
+        :data:`CELL_ORDER`) and the positions ``ra``, ``dec``, kept only when asked for.
+        ``()`` keeps none, so memory does not grow with the catalogue; each kept column costs
+        4 bytes per in-footprint source (8 while the blocks are joined at the end).
     engine : {"local", "dask"}
         ``"local"``: this process. ``"dask"``: a ``distributed`` cluster (see ``scheduler``);
         integer counts, ledger and columns are identical to the local engine's.

@@ -52,6 +52,7 @@ FULL = textwrap.dedent(
     sentinels = [99, -99.0, -1]
     require_redshift = true
     mag_range = [-5.0, 35.0]
+    redshift_error = "Z_PHOT_ERR"
 
     [footprint]
     max_order = 14
@@ -89,6 +90,12 @@ FULL = textwrap.dedent(
     mag_limits = [-24.5, -17]
     kcorrection = {form = "polynomial", coefficients = [0.0, 1.2, -0.3]}
     evolution = {Q = 1.6, P = -0.5}
+    quantity = "luminosity"
+    model = "schechter"
+    fit_evolution = ["Q"]
+    bin_width = 0.2
+    weight_cap = 4.0
+    mass_limit_quantile = 0.9
 
     [variance]
     methods = ["jackknife"]
@@ -258,6 +265,9 @@ def test_full_runfile_round_trip(full_file: Path) -> None:
     assert lf.kcorrection == {"form": "polynomial", "coefficients": (0.0, 1.2, -0.3)}
     assert isinstance(lf.kcorrection, Table)
     assert lf.evolution == {"Q": 1.6, "P": -0.5}
+    assert (lf.quantity, lf.model, lf.fit_evolution) == ("luminosity", "schechter", ("Q",))
+    assert (lf.bin_width, lf.weight_cap, lf.mass_limit_quantile) == (0.2, 4.0, 0.9)
+    assert rf.catalog.redshift_error == "Z_PHOT_ERR"
 
     assert rf.variance == {"methods": ("jackknife",), "regions": 40, "bias": 1.3,
                            "redshift_median": 0.6, "mag_limit": 24.5, "sigma8": 0.8,
@@ -374,6 +384,9 @@ def test_defaults_inside_sections_and_items(tmp_path: Path) -> None:
     assert lf.methods == ("vmax", "sty", "swml")
     assert lf.kcorrection is None
     assert lf.evolution == {"Q": 0.0, "P": 0.0}
+    assert (lf.quantity, lf.model, lf.fit_evolution, lf.bin_width) == (
+        "luminosity", "schechter", None, None)
+    assert (lf.weight_cap, lf.mass_limit_quantile) == (5.0, 0.95)
     assert rf.totals == {
         "whole_sky_mag_limit": None,
         "volume": None,
@@ -1100,6 +1113,55 @@ BAD = [
             f"{F}: [luminosity_function] needs a redshift per source;"
             " got no [catalog] 'redshift' column"
         ),
+    ),
+    (
+        "double-schechter-needs-masses",
+        MINIMAL + "[luminosity_function]\nredshift_range = [0.1, 1]\nmag_limits = [14, 19]\n"
+        'model = "double_schechter"\n',
+        InputError,
+        exact(
+            f"{F}: [luminosity_function] 'model' is a stellar-mass form (Baldry et al. 2012); "
+            'it needs quantity = "stellar_mass"; got "double_schechter"'
+        ),
+    ),
+    (
+        "fit-evolution-of-a-mass-function",
+        MINIMAL + "[luminosity_function]\nredshift_range = [0.1, 1]\nmag_limits = [14, 19]\n"
+        'quantity = "stellar_mass"\nfit_evolution = ["Q"]\n',
+        InputError,
+        exact(
+            f"{F}: [luminosity_function] 'fit_evolution' applies to luminosity functions; "
+            'quantity is "stellar_mass"; got ["Q"]'
+        ),
+    ),
+    (
+        "luminosity-evolution-of-a-mass-function",
+        MINIMAL + "[luminosity_function]\nredshift_range = [0.1, 1]\nmag_limits = [14, 19]\n"
+        'quantity = "stellar_mass"\nevolution = {Q = 1.0}\n',
+        InputError,
+        exact(
+            f"{F}: [luminosity_function] 'evolution' Q applies to luminosity functions "
+            '(quantity is "stellar_mass"); give Q = 0; got 1.0'
+        ),
+    ),
+    (
+        "mass-function-needs-mass-column",
+        MINIMAL.replace('mag = "mag"', 'mag = "mag"\nredshift = "z"')
+        + "[luminosity_function]\nredshift_range = [0.1, 1]\nmag_limits = [14, 19]\n"
+        'quantity = "stellar_mass"\n',
+        InputError,
+        exact(
+            f'{F}: [luminosity_function] quantity = "stellar_mass" needs a stellar mass per '
+            "source; got no [catalog] 'stellar_mass' column"
+        ),
+    ),
+    (
+        "weight-cap-below-one",
+        MINIMAL.replace('mag = "mag"', 'mag = "mag"\nredshift = "z"')
+        + "[luminosity_function]\nredshift_range = [0.1, 1]\nmag_limits = [14, 19]\n"
+        "weight_cap = 0.5\n",
+        InputError,
+        exact(f"{F}: [luminosity_function] 'weight_cap' must be a number >= 1; got 0.5"),
     ),
     # -- variance -----------------------------------------------------------------------------
     (
