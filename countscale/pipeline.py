@@ -1734,7 +1734,10 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     write_report`).
     """
     from countscale import __version__, report
+    from countscale.provenance import run_provenance, utc_now
     from countscale.runfile import RunFile, load_runfile
+
+    started_utc = utc_now()
 
     if not isinstance(runfile, RunFile):
         if not isinstance(runfile, str | os.PathLike):
@@ -1790,6 +1793,8 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     for stage in to_run:
         if stage.name != "tally":
             results[stage.name] = ctx.results[stage.name].to_dict()
+    results["provenance"] = run_provenance(runfile, seed, engine, scheduler, started_utc,
+                                           utc_now())
     files, results = report.write_report(results, out_dir, formats=runfile.output.formats,
                                          footprint=ctx.footprint)
     return RunResult(
