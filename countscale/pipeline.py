@@ -1782,6 +1782,7 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
             "runfile": str(runfile.path),
             "engine": engine,
             "seed": seed,
+            "population": runfile.catalog.population,
             "stages": [s.name for s in to_run],
             "sections_not_run": list(not_run),
             "warnings": run_warnings,
@@ -1795,8 +1796,10 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
             results[stage.name] = ctx.results[stage.name].to_dict()
     results["provenance"] = run_provenance(runfile, seed, engine, scheduler, started_utc,
                                            utc_now())
+    completeness = ctx.results.get("completeness")
     files, results = report.write_report(results, out_dir, formats=runfile.output.formats,
-                                         footprint=ctx.footprint)
+                                         footprint=ctx.footprint,
+                                         depth=completeness["depth"] if completeness else None)
     return RunResult(
         runfile=runfile, out_dir=out_dir, files=files, engine=engine, seed=seed,
         stages=tuple(s.name for s in to_run), sections_not_run=not_run,

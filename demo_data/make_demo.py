@@ -303,7 +303,7 @@ depth_map = "depth.fits"
 
 [counts]
 bins = {{start = {counts_range[0]}, stop = {counts_range[1]}, width = 0.2}}
-model = "power_law"
+model = "double_power_law"
 fit_range = [{counts_range[2]}, {counts_range[3]}]
 {lf}
 [variance]

@@ -93,10 +93,16 @@ def test_run_prints_ledger_and_counts_and_writes_the_folder(tmp_path, capsys):
     data = json.loads((out_dir / "results.json").read_text())
     edges = np.array(data["tally"]["mag_bins"]["edges"])
     counts, _ = np.histogram(df.MAG.to_numpy()[inside], bins=edges)
-    for lo, n in zip(edges[:-1], counts, strict=True):
+    # The terminal gives the total; report.md lists every bin (folded).
+    assert f"{counts.sum():,d} sources in {len(counts)} bins" in out
+    report_md = (out_dir / "report.md").read_text()
+    for lo, hi, n in zip(edges[:-1], edges[1:], counts, strict=True):
         if n:
-            assert f"{lo:>6.4g} – " in out and f"{n:,d}" in out
+            assert f"| {lo:.4g}–{hi:.4g} | {n:,d} |" in report_md
     assert str(out_dir / "results.json") in out
+    # It ends with the summary table.
+    summary = out[out.rindex("\nsummary\n"):]
+    assert "area" in summary and f"{inside.sum():,d} in the footprint" in summary
     assert err == ""  # stderr is not a terminal: no progress bar
 
 
