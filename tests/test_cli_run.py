@@ -150,6 +150,8 @@ def test_progress_bar_on_a_terminal_unless_quiet(tmp_path, capsys, monkeypatch):
     monkeypatch.setattr(sys, "stderr", terminal)
     assert main(["run", str(runfile), "--out", str(tmp_path / "a"), "--json"]) == 0
     assert "rows" in terminal.getvalue()
+    # A bar for the run's stages, naming each as it runs, then the report.
+    assert "run: tally" in terminal.getvalue() and "run: report" in terminal.getvalue()
     json.loads(capsys.readouterr().out)  # the bar never touches stdout
     quiet = _Terminal()
     monkeypatch.setattr(sys, "stderr", quiet)
