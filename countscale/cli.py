@@ -18,6 +18,12 @@ Radius, volume and age of the observable universe::
 
     $ countscale horizon --cosmology Planck18
 
+Check a quoted total against published-input scenarios, or against a run's own totals::
+
+    $ countscale claim "two trillion galaxies"
+    $ countscale claim "a hundred billion stars in a galaxy like ours" --json
+    $ countscale claim "10^22 stars" --results results/results.json
+
 Exit codes: 0 ok; 1 the computation failed; 2 a usage or input error (one line on stderr
 naming the file, key or column, the rule and the value; a traceback only with ``--debug``).
 With ``--json`` a command prints one JSON object on stdout and nothing else there.
@@ -110,6 +116,29 @@ def build_parser():
                          help="astropy realization name (default Planck18)")
     horizon.add_argument("--json", action="store_true", help="print one JSON object")
     horizon.set_defaults(handler=_cmd_horizon)
+
+    claim = sub.add_parser(
+        "claim",
+        help="check a quoted total (\"two trillion galaxies\") against published inputs",
+        description="Parse a quoted number of galaxies or stars, compare it with the built-in "
+        "published-input scenarios (or a run's totals), and say which definition decides it.",
+    )
+    claim.add_argument("text", metavar="TEXT", help="the claim, e.g. \"two trillion galaxies\"")
+    claim.add_argument("--scope", choices=("observable_universe", "milky_way", "sky"),
+                       help="what the number counts (default: read from the text, else the "
+                       "observable universe)")
+    claim.add_argument("--results", metavar="RESULTS_JSON",
+                       help="compare with this run's results.json totals instead")
+    claim.add_argument("--min-mass", type=float, metavar="LOG10_MSUN",
+                       help="count galaxies above this stellar mass (log10 Msun; default 6)")
+    claim.add_argument("--max-mass", type=float, metavar="LOG10_MSUN",
+                       help="count galaxies below this stellar mass (log10 Msun)")
+    claim.add_argument("--seed", type=int, default=0, metavar="N",
+                       help="seed of the Monte Carlo draws (default 0)")
+    claim.add_argument("--draws", type=int, default=10_000, metavar="N",
+                       help="Monte Carlo draws per pass (default 10000)")
+    claim.add_argument("--json", action="store_true", help="print one JSON object")
+    claim.set_defaults(handler=_cmd_claim)
     return parser
 
 
@@ -292,6 +321,46 @@ def _cmd_horizon(args):
         ("volume", f"{result.volume_mpc3:.4g} Mpc³ (comoving)"),
         ("age", f"{result.age_gyr:.4g} Gyr"),
     ])
+    return EXIT_OK
+
+
+# ----------------------------------------------------------------------------------------
+# claim
+# ----------------------------------------------------------------------------------------
+def _cmd_claim(args):
+    import textwrap
+
+    from countscale.claims import check_claim
+
+    if args.seed < 0:
+        raise InputError(f"--seed must be a non-negative integer; got {args.seed}")
+    if args.draws < 100:
+        raise InputError(f"--draws must be >= 100; got {args.draws}")
+    result = check_claim(args.text, scope=args.scope, log10_mass_min=args.min_mass,
+                         log10_mass_max=args.max_mass, results=args.results,
+                         n_draws=args.draws, rng=args.seed)
+    if args.json:
+        print(json.dumps(result.to_json()))
+        return EXIT_OK
+    print(textwrap.fill(result.summary(), width=100))
+    print()
+    header = ("definition", "estimate (68 %)", "95 %", "verdict", "quoted/estimate [dex]")
+    rows = [header, *result.table_rows()]
+    widths = [max(len(row[i]) for row in rows) for i in range(len(header))]
+    for k, row in enumerate(rows):
+        print("  ".join(cell.ljust(w) for cell, w in zip(row, widths, strict=True)).rstrip())
+        if k == 0:
+            print("  ".join("-" * w for w in widths))
+    if result.assumptions:
+        print()
+        print("assumptions (effect on the estimate, dex):")
+        for item in result.assumptions:
+            effect = item["effect_log10"]
+            text = "   n/a" if effect is None else f"{effect:+6.2f}"
+            print(f"  {text}  {item['name']}: {item['note']}")
+    if result.sources:
+        print()
+        print("sources: " + "; ".join(s["citation"] for s in result.sources))
     return EXIT_OK
 
 
