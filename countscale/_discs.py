@@ -58,6 +58,10 @@ PIXRAD_SAFETY = 1.05
 #: Covered fractions closer than this to 0 or 1 are 0 or 1 (as `_geometry._refine` does).
 SNAP = 1e-6
 
+#: Threads (NEST ranges walked in parallel) when `rasterise` is not told; None: the CPU
+#: count, at most 4, for 2000 discs or more. The result does not depend on it.
+DEFAULT_THREADS = None
+
 #: Sub-cells per side for the sampled union of several discs in one cell (4**4 points).
 SAMPLE_SIDE = 16
 
@@ -392,7 +396,7 @@ def _mix(x):
 
 
 @_jit
-def _sampled_union(face, ix, iy, nside, cell, discs, row, n_discs, centres, cos_r):
+def _sampled_union(face, ix, iy, nside, cell, discs, row, n_discs, centres, half_sin):
     """Fraction of the cell inside any of `discs[row, :n_discs]`, one point per sub-cell."""
     inside = 0
     seed = np.uint64(cell) * np.uint64(0x100000001B3)
@@ -410,7 +414,10 @@ def _sampled_union(face, ix, iy, nside, cell, discs, row, n_discs, centres, cos_
             vy = sth * np.sin(phi)
             for t in range(n_discs):
                 d = discs[row, t]
-                if vx * centres[d, 0] + vy * centres[d, 1] + z * centres[d, 2] >= cos_r[d]:
+                ex = vx - centres[d, 0]
+                ey = vy - centres[d, 1]
+                ez = z - centres[d, 2]
+                if ex * ex + ey * ey + ez * ez <= 4.0 * half_sin[d] * half_sin[d]:
                     inside += 1
                     break
     return inside / (SAMPLE_SIDE * SAMPLE_SIDE)
@@ -581,12 +588,20 @@ def _points_per_edge(max_order, z_abs, pixrad):
     return m, m * m < need
 
 
-@_jit
-def _walk(centres, cos_r, sin_r, proj_centres, proj_e1, proj_e2, proj_radius, complement,
-          max_order, cos_pix, sin_pix, z_simple, subtract, b_edges, b_weight, b_sigma,
-          edges, weight, sig_idx, sig_val, both_idx, pair_seg, pair_disc, state, stats):
-    """Depth-first walk of the NEST quadtree; writes the step function (see `rasterise`)."""
-    n = len(cos_r)
+@njit(cache=True, error_model="numpy", fastmath={"arcp", "contract", "nsz"}, nogil=True)
+def _walk(centres, half_sin, half_cos, proj_centres, proj_e1, proj_e2, proj_radius,
+          complement, max_order, pixrad, z_simple, subtract, b_edges, b_weight, b_sigma,
+          range_lo, range_hi, edges, weight, sig_idx, sig_val, both_idx, pair_seg, pair_disc,
+          state, stats):
+    """Depth-first walk of the NEST quadtree over the cells [range_lo, range_hi) of
+    max_order; writes their step function (see `rasterise`). Releases the GIL, so walks
+    of disjoint ranges run in parallel threads."""
+    n = len(half_sin)
+    if subtract and len(b_weight):
+        j = max(np.searchsorted(b_edges, range_lo, side="right") - 1, 0)
+        state[_BSEG] = min(j, len(b_weight))
+        state[_BSCAN] = min(j, len(b_weight) - 1)
+    state[_POS] = range_lo
     finest_parent = max_order - 1
     levels = max_order + 1
     # Candidate discs of the current cell at each level (a disc is a candidate of a cell
@@ -645,6 +660,9 @@ def _walk(centres, cos_r, sin_r, proj_centres, proj_e1, proj_e2, proj_radius, co
         shift = 2 * (max_order - level)
         lo = nst << shift
         hi = (nst + 1) << shift
+        if hi <= range_lo or lo >= range_hi:
+            child[level] += 1
+            continue
         if subtract and _base_is_empty(lo, hi, b_edges, b_weight, b_sigma, state):
             child[level] += 1
             continue
@@ -658,7 +676,7 @@ def _walk(centres, cos_r, sin_r, proj_centres, proj_e1, proj_e2, proj_radius, co
                                              sin_phis[level - 1])
         phis[level], cos_phis[level], sin_phis[level] = phi, cos_phi, sin_phi
         vx, vy = sth * cos_phi, sth * sin_phi
-        cp, sp = cos_pix[level], sin_pix[level]
+        p = pixrad[level]
         dz = (2.0 / 3.0) / (1 << level)
         if level >= 3 and abs(z) + dz <= 2.0 / 3.0:
             # Equatorial zone: the cell is a near-rhombus with corners dz away in z and
@@ -666,29 +684,41 @@ def _walk(centres, cos_r, sin_r, proj_centres, proj_e1, proj_e2, proj_radius, co
             # healpy's boundaries in the tests), with the same safety factor.
             p = PIXRAD_SAFETY * max(0.25 * np.pi * inv, dz / np.sqrt(
                 1.0 - (abs(z) + dz) ** 2))
-            p2 = p * p
-            cp = 1.0 - p2 * 0.5 * (1.0 - p2 * (1.0 / 12.0) * (1.0 - p2 * (1.0 / 30.0)))
-            sp = p * (1.0 - p2 * (1.0 / 6.0) * (1.0 - p2 * (1.0 / 20.0) * (
-                1.0 - p2 * (1.0 / 42.0))))
+        h = 0.5 * p
+        if h < 0.1:
+            h2 = h * h
+            ch = 1.0 - h2 * 0.5 * (1.0 - h2 * (1.0 / 12.0) * (1.0 - h2 * (1.0 / 30.0) * (
+                1.0 - h2 * (1.0 / 56.0))))
+            sh = h * (1.0 - h2 * (1.0 / 6.0) * (1.0 - h2 * (1.0 / 20.0) * (
+                1.0 - h2 * (1.0 / 42.0) * (1.0 - h2 * (1.0 / 72.0)))))
+        else:
+            ch, sh = np.cos(h), np.sin(h)
         n_src = n if level == 0 else counts[level - 1]
         stats[1] += n_src
         n_new = 0
         full = False
         for t in range(n_src):
             d = t if level == 0 else lists[level - 1, t]
-            dot = vx * centres[d, 0] + vy * centres[d, 1] + z * centres[d, 2]
-            # Inside when r > p and the centre is within r - p; outside when r + p < pi
-            # and the centre is farther than r + p (cosines of sums, no trigonometry).
-            if cos_r[d] < cp and dot >= cos_r[d] * cp + sin_r[d] * sp:
+            # Chords, not cosines: |v - c|^2 keeps its relative precision for tiny
+            # separations (1 - v.c loses it below ~1e-7 rad, a cell at order 24).
+            ex = vx - centres[d, 0]
+            ey = vy - centres[d, 1]
+            ez = z - centres[d, 2]
+            chord2 = ex * ex + ey * ey + ez * ez
+            # Within r - p of the centre (when r > p): the cell is inside. Farther than
+            # r + p (when r + p < pi): outside. Half-angle sines by the addition formulas.
+            inner = half_sin[d] * ch - half_cos[d] * sh
+            if inner > 0.0 and chord2 <= 4.0 * inner * inner:
                 full = True
                 break
-            if cos_r[d] > -cp and dot <= cos_r[d] * cp - sin_r[d] * sp:
+            outer = half_sin[d] * ch + half_cos[d] * sh
+            if half_cos[d] * ch - half_sin[d] * sh > 0.0 and chord2 >= 4.0 * outer * outer:
                 continue
             lists[level, n_new] = d
             n_new += 1
         if full:
-            _emit(lo, hi, 1.0, 0.0, subtract, state, b_edges, b_weight, b_sigma, edges,
-                  weight, sig_idx, sig_val, both_idx)
+            _emit(max(lo, range_lo), min(hi, range_hi), 1.0, 0.0, subtract, state, b_edges,
+                  b_weight, b_sigma, edges, weight, sig_idx, sig_val, both_idx)
             child[level] += 1
             continue
         if n_new == 0:
@@ -706,7 +736,7 @@ def _walk(centres, cos_r, sin_r, proj_centres, proj_e1, proj_e2, proj_radius, co
         if abs(z) <= z_simple:
             m, extrapolate = 1, False
         else:
-            m, extrapolate = _points_per_edge(max_order, abs(z), np.arccos(cp))
+            m, extrapolate = _points_per_edge(max_order, abs(z), p)
         nl = 2 * m + 1
         m_half, nh = 1, 3
         x0 = (2.0 * x) / nside_max
@@ -765,6 +795,8 @@ def _walk(centres, cos_r, sin_r, proj_centres, proj_e1, proj_e2, proj_radius, co
                     n_partial[c] = i + 1
         for c in range(4):
             cell = 4 * nst + c
+            if cell < range_lo or cell >= range_hi:
+                continue
             if covered[c]:
                 cov, cov_sig = 1.0, 0.0
             elif n_partial[c] == 0:
@@ -773,7 +805,7 @@ def _walk(centres, cos_r, sin_r, proj_centres, proj_e1, proj_e2, proj_radius, co
                 cov, cov_sig = partial_frac[c, 0], partial_sig[c, 0]
             else:
                 cov = _sampled_union(f, 2 * x + (c & 1), 2 * y + (c >> 1), nside_max, cell,
-                                     partial, c, n_partial[c], centres, cos_r)
+                                     partial, c, n_partial[c], centres, half_sin)
                 cov_sig = SAMPLE_SIGMA
             flagged = _emit(cell, cell + 1, cov, cov_sig, subtract, state, b_edges,
                             b_weight, b_sigma, edges, weight, sig_idx, sig_val, both_idx)
@@ -789,8 +821,8 @@ def _walk(centres, cos_r, sin_r, proj_centres, proj_e1, proj_e2, proj_radius, co
                     state[_NPAIR] = p + 1
         child[level] += 1
 
-    if subtract:
-        end = b_edges[len(b_edges) - 1] if len(b_weight) else 0
+    if subtract and len(b_weight):
+        end = min(b_edges[len(b_weight)], range_hi)
         _copy_base(end, state, b_edges, b_weight, b_sigma, edges, weight, sig_idx, sig_val,
                    both_idx)
 
@@ -873,7 +905,7 @@ def _basis(centres):
     return e1, np.cross(centres, e1)
 
 
-def rasterise(centres, radius_rad, max_order, base=None):
+def rasterise(centres, radius_rad, max_order, base=None, threads=None):
     """Step function of the union of discs at `max_order`, or of ``base - discs``.
 
     Parameters
@@ -886,6 +918,10 @@ def rasterise(centres, radius_rad, max_order, base=None):
         HEALPix order of the step function, >= 1.
     base : (edges, weight, sigma or None), optional
         A step function at `max_order` to subtract the discs from.
+    threads : int, optional
+        Walk this many NEST ranges (split to hold equal numbers of discs) in parallel
+        threads; by default the CPU count (at most 4) for 2000 discs or more. The result
+        does not depend on it.
 
     Returns
     -------
@@ -923,39 +959,124 @@ def rasterise(centres, radius_rad, max_order, base=None):
     # Read-only views whatever the caller passed, so the walk is compiled once.
     b_edges, b_weight, b_sigma = (_readonly(a, t) for a, t in (
         (b_edges, np.int64), (b_weight, np.float32), (b_sigma, np.float32)))
-    capacity = _capacity(radius, max_order) + 2 * len(b_weight) + 16
+    half_sin, half_cos = np.sin(0.5 * radius), np.cos(0.5 * radius)
+    bounds = _split(centres, max_order, threads)
+    n_ranges = len(bounds) - 1
+    # Room for each range: its discs' bound, its share of the base, and a margin for the
+    # discs whose centres lie in a neighbouring range.
+    home = np.searchsorted(bounds, _nest_at(centres, max_order), side="right") - 1
+    disc_room = _capacity_each(radius, max_order)
+    base_cuts = np.searchsorted(b_edges, bounds)
+    room = np.array([
+        disc_room[home == k].sum() + disc_room.sum() // (4 * n_ranges)
+        + 2 * (base_cuts[k + 1] - base_cuts[k]) + 64
+        for k in range(n_ranges)
+    ], dtype=np.int64)
     while True:
+        offsets = np.concatenate([[0], np.cumsum(room + 1)])
+        total = int(offsets[-1])
         # np.empty maps memory lazily: only the pages written are resident.
-        edges = np.empty(capacity + 1, dtype=np.int64)
-        weight = np.empty(capacity, dtype=np.float32)
-        sig_idx = np.empty(capacity, dtype=np.int64)
-        sig_val = np.empty(capacity, dtype=np.float32)
-        both_idx = np.empty(capacity, dtype=np.int64)
-        pair_seg = np.empty(capacity, dtype=np.int64)
-        pair_disc = np.empty(capacity, dtype=np.int32)
-        state = np.zeros(10, dtype=np.int64)
-        stats = np.zeros(8, dtype=np.int64)
-        _walk(centres, np.cos(radius), np.sin(radius), proj_centres, e1, e2, proj_radius,
-              comp, max_order, np.cos(pixrad), np.sin(pixrad), z_simple, subtract, b_edges,
-              b_weight, b_sigma, edges, weight, sig_idx, sig_val, both_idx, pair_seg,
-              pair_disc, state, stats)
-        if state[_STATUS] == _OK:
+        edges = np.empty(total, dtype=np.int64)
+        weight = np.empty(total, dtype=np.float32)
+        runs = []
+        for k in range(n_ranges):
+            cap = int(room[k])
+            lo, hi = int(offsets[k]), int(offsets[k]) + cap
+            runs.append(dict(
+                edges=edges[lo : hi + 1], weight=weight[lo:hi],
+                sig_idx=np.empty(cap, dtype=np.int64), sig_val=np.empty(cap, dtype=np.float32),
+                both_idx=np.empty(cap, dtype=np.int64), pair_seg=np.empty(cap, dtype=np.int64),
+                pair_disc=np.empty(cap, dtype=np.int32), state=np.zeros(10, dtype=np.int64),
+                stats=np.zeros(8, dtype=np.int64), range=(int(bounds[k]), int(bounds[k + 1])),
+            ))
+
+        def walk(run):
+            _walk(centres, half_sin, half_cos, proj_centres, e1, e2, proj_radius, comp,
+                  max_order, pixrad, z_simple, subtract, b_edges, b_weight, b_sigma,
+                  run["range"][0], run["range"][1], run["edges"], run["weight"],
+                  run["sig_idx"], run["sig_val"], run["both_idx"], run["pair_seg"],
+                  run["pair_disc"], run["state"], run["stats"])
+
+        if n_ranges == 1:
+            walk(runs[0])
+        else:
+            from concurrent.futures import ThreadPoolExecutor
+
+            with ThreadPoolExecutor(max_workers=n_ranges) as pool:
+                list(pool.map(walk, runs))
+        full = [run["state"][_STATUS] != _OK for run in runs]
+        if not any(full):
             break
-        capacity *= 2
-    rasterise.stats = stats
-    n = int(state[_N])
+        room = np.where(full, 2 * room, room)
+    rasterise.stats = sum(run["stats"] for run in runs)
+    counts = np.array([run["state"][_N] for run in runs], dtype=np.int64)
+    ends = np.array([run["state"][_END] for run in runs], dtype=np.int64)
+    shifts = np.zeros(n_ranges, dtype=np.int64)
+    n = int(_join(edges, weight, offsets[:-1].astype(np.int64), counts, ends, shifts))
     if n == 0:
         return (np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.float32), None,
                 np.zeros(0, dtype=np.int64), (np.zeros(0, np.int64), np.zeros(0, np.int32)))
-    edges[n] = state[_END]
+
+    def gather(name, count_slot, shift=True):
+        parts = [run[name][: int(run["state"][count_slot])]
+                 + (shifts[k] if shift else 0) for k, run in enumerate(runs)]
+        return np.concatenate(parts)
+
     sigma = None
-    n_sig = int(state[_NSIG])
-    if n_sig:
+    sig_idx = gather("sig_idx", _NSIG)
+    if len(sig_idx):
         sigma = np.zeros(n, dtype=np.float32)
-        sigma[sig_idx[:n_sig]] = sig_val[:n_sig]
-    n_pair = int(state[_NPAIR])
-    return (edges[: n + 1], weight[:n], sigma, both_idx[: int(state[_NBOTH])].copy(),
-            (pair_seg[:n_pair].copy(), pair_disc[:n_pair].copy()))
+        sigma[sig_idx] = gather("sig_val", _NSIG, shift=False)
+    pairs = (gather("pair_seg", _NPAIR), gather("pair_disc", _NPAIR, shift=False))
+    return edges[: n + 1], weight[:n], sigma, gather("both_idx", _NBOTH), pairs
+
+
+def _nest_at(centres, order):
+    """NEST cell of `order` holding each unit vector."""
+    return hp.vec2pix(2**order, centres[:, 0], centres[:, 1], centres[:, 2], nest=True)
+
+
+def _split(centres, max_order, threads):
+    """Bounds of NEST ranges at `max_order` holding about equal numbers of discs."""
+    import os
+
+    if threads is None:
+        threads = DEFAULT_THREADS
+    if threads is None:
+        threads = min(os.cpu_count() or 1, 4) if len(centres) >= 2000 else 1
+    top = 12 * 4**max_order
+    if threads <= 1 or len(centres) < 2:
+        return np.array([0, top], dtype=np.int64)
+    cells = np.sort(_nest_at(centres, max_order))
+    cuts = cells[(np.arange(1, threads) * len(cells)) // threads]
+    return np.unique(np.concatenate([[0], cuts, [top]])).astype(np.int64)
+
+
+@_jit
+def _join(edges, weight, offsets, counts, ends, shifts):
+    """Move the ranges' step functions together (in place, front to back), with a zero
+    segment over any gap between them. Returns the number of segments; `shifts[k]` is what
+    to add to range k's own segment indices (where its segment 0 now is)."""
+    out = 0
+    last_end = -1
+    for k in range(len(counts)):
+        nk = counts[k]
+        if nk == 0:
+            continue
+        src = offsets[k]
+        if out > 0 and edges[src] > last_end:
+            edges[out] = last_end
+            weight[out] = 0.0
+            out += 1
+        shifts[k] = out
+        for i in range(nk):
+            edges[out + i] = edges[src + i]
+            weight[out + i] = weight[src + i]
+        out += nk
+        last_end = ends[k]
+    if out > 0:
+        edges[out] = last_end
+    return out
 
 
 def _readonly(array, dtype):
@@ -964,8 +1085,8 @@ def _readonly(array, dtype):
     return view
 
 
-def _capacity(radius, max_order):
-    """A generous bound on the segments the discs produce (the walk asks for more if not)."""
+def _capacity_each(radius, max_order):
+    """A generous bound on the segments each disc produces (the walk asks for more if not)."""
     cell = np.sqrt(np.pi / 3.0) / 2**max_order
     rim = 2.0 * np.pi * np.sin(np.minimum(radius, 0.5 * np.pi)) / cell
-    return int(np.sum(4.0 * rim + 24.0 * max_order + 16.0))
+    return (4.0 * rim + 24.0 * max_order + 16.0).astype(np.int64)
