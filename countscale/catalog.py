@@ -119,7 +119,8 @@ __all__ = [
 #: Logical columns, required ones first. ``id`` may be integer, float or text; the others
 #: must be numeric.
 REQUIRED_COLUMNS = ("ra", "dec", "mag")
-OPTIONAL_COLUMNS = ("redshift", "mag_error", "stellar_mass", "id", "weight")
+OPTIONAL_COLUMNS = ("redshift", "mag_error", "stellar_mass", "id", "weight", "classifier",
+                    "redshift_error")
 LOGICAL_COLUMNS = REQUIRED_COLUMNS + OPTIONAL_COLUMNS
 
 #: Rejection reasons in precedence order (the first failing rule wins).
@@ -148,6 +149,10 @@ _SENTINEL_RTOL = 1e-6
 CSV_SAMPLE_ROWS = 1000
 
 POPULATIONS = ("galaxies", "stars")
+
+#: A source is a star when its classifier value (probability of being a star) is at least this.
+#: Choice of this project: the value at which both classes are equally likely.
+DEFAULT_CLASSIFIER_THRESHOLD = 0.5
 
 _FORMAT_SUFFIXES = (
     (".parquet", "parquet"),
@@ -512,6 +517,10 @@ class CatalogChunk:
         AB magnitudes as stored; sentinels not yet removed.
     redshift, mag_error, stellar_mass, weight : float64 ndarray, shape (n,), or None
         None when the column is not mapped. ``stellar_mass`` is in the file's own unit.
+    classifier : float64 ndarray, shape (n,), or None
+        Star/galaxy classifier (probability of being a star, or a 0/1 flag), as stored.
+    redshift_error : float64 ndarray, shape (n,), or None
+        The 1-sigma error of a (photometric) redshift.
     id : ndarray, shape (n,), or None
         int64, float64 or object (str) ids; None when no id column is mapped.
     id_missing : bool ndarray, shape (n,), or None
@@ -534,6 +543,8 @@ class CatalogChunk:
     id: np.ndarray | None = None
     id_missing: np.ndarray | None = None
     weight: np.ndarray | None = None
+    classifier: np.ndarray | None = None
+    redshift_error: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         n = np.shape(self.ra)[0] if np.ndim(self.ra) == 1 else None
@@ -577,6 +588,8 @@ class ValidChunk:
     stellar_mass: np.ndarray | None = None
     id: np.ndarray | None = None
     weight: np.ndarray | None = None
+    classifier: np.ndarray | None = None
+    redshift_error: np.ndarray | None = None
 
     @property
     def n_rows(self) -> int:
@@ -643,6 +656,15 @@ class CatalogSource:
     redshift, mag_error, stellar_mass, id, weight : str, optional
         Optional columns. With ``id``, later rows repeating a kept id are rejected as
         ``duplicate_id``.
+    classifier : str, optional
+        Star/galaxy classifier column: the probability that a source is a star (a 0/1 flag
+        works too), in [0, 1]; NaN for unclassified. The tally keeps the sources of the
+        catalogue's ``population`` (see :func:`countscale.tally.tally`).
+    classifier_threshold : float, optional
+        A source is a star when its classifier is >= this value, in (0, 1]; default 0.5.
+    redshift_error : str, optional
+        1-sigma errors of photometric redshifts (the luminosity-function fit convolves its
+        model with them).
     population : {"galaxies", "stars"}
     sentinels : sequence of float
         Magnitudes meaning "no measurement", besides NaN/inf. Default ``DEFAULT_SENTINELS``.
@@ -664,9 +686,12 @@ class CatalogSource:
     stellar_mass: str | None = None
     id: str | None = None
     weight: str | None = None
+    classifier: str | None = None
     population: str = "galaxies"
     sentinels: tuple[float, ...] = DEFAULT_SENTINELS
     require_redshift: bool = False
+    classifier_threshold: float | None = None
+    redshift_error: str | None = None
     files: tuple[Path, ...] = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
@@ -714,6 +739,20 @@ class CatalogSource:
             raise InputError(
                 "`require_redshift` is true but no `redshift` column is mapped"
             )
+        threshold = self.classifier_threshold
+        if threshold is None:
+            threshold = DEFAULT_CLASSIFIER_THRESHOLD
+        elif self.classifier is None:
+            raise InputError(
+                f"`classifier_threshold` ({threshold!r}) needs a `classifier` column"
+            )
+        if isinstance(threshold, bool) or not isinstance(threshold, int | float | np.number):
+            raise InputTypeError(
+                f"`classifier_threshold` must be a number in (0, 1]; got {threshold!r}"
+            )
+        if not 0.0 < float(threshold) <= 1.0:
+            raise InputError(f"`classifier_threshold` must be in (0, 1]; got {threshold!r}")
+        object.__setattr__(self, "classifier_threshold", float(threshold))
 
     # -- construction from a run file -------------------------------------------------------
 
@@ -733,7 +772,8 @@ class CatalogSource:
         """
         if not isinstance(section, Mapping):
             raise InputTypeError(f"`{where}` must be a table; got {type(section).__name__}")
-        allowed = ("paths", *LOGICAL_COLUMNS, "population", "sentinels", "require_redshift")
+        allowed = ("paths", *LOGICAL_COLUMNS, "population", "sentinels", "require_redshift",
+                   "classifier_threshold")
         for key in section:
             if key not in allowed:
                 raise InputError(
@@ -1496,6 +1536,8 @@ def validate_chunk(chunk: CatalogChunk, rules: ValidationRules,
         source=chunk.source, row_in_file=row_in_file, ra=ra, dec=pick(chunk.dec),
         mag=pick(chunk.mag), redshift=pick(chunk.redshift), mag_error=pick(chunk.mag_error),
         stellar_mass=pick(chunk.stellar_mass), id=pick(chunk.id), weight=pick(chunk.weight),
+        classifier=pick(chunk.classifier),
+        redshift_error=pick(chunk.redshift_error),
     )
     return valid, rejected, notes
 

@@ -18,6 +18,12 @@ Radius, volume and age of the observable universe::
 
     $ countscale horizon --cosmology Planck18
 
+Survey planning: the precision of a surface density against area, the area for a target,
+from a population given on the command line or measured by a run file::
+
+    $ countscale plan --surface-density 8000 --redshift-median 0.45 --bias 1.2 --target 0.02
+    $ countscale plan demo_data/survey.toml --target 0.01 --fields 4 --plot plan.png --json
+
 Check a quoted total against published-input scenarios, or against a run's own totals::
 
     $ countscale claim "two trillion galaxies"
@@ -116,6 +122,36 @@ def build_parser():
                          help="astropy realization name (default Planck18)")
     horizon.add_argument("--json", action="store_true", help="print one JSON object")
     horizon.set_defaults(handler=_cmd_horizon)
+
+    plan = sub.add_parser(
+        "plan",
+        help="precision against area and depth; the area for a target precision",
+        description="Fractional error of a surface density against survey area (Poisson and "
+        "cosmic variance) for one contiguous field, N separated fields and a long strip; the "
+        "area needed for --target; the depth trade-off. The population comes from RUNFILE "
+        "(its counts, n(z) and bias, measured by running it) and/or the options.",
+    )
+    plan.add_argument("runfile", metavar="RUNFILE", nargs="?",
+                      help="a run file whose survey measures the population (optional)")
+    plan.add_argument("--surface-density", type=float, metavar="PER_DEG2",
+                      help="sources per deg² brighter than the magnitude limit")
+    plan.add_argument("--slope", type=float, metavar="DEX_PER_MAG",
+                      help="d log10 N(<m) / dm at the limit, for the depth trade-off")
+    plan.add_argument("--redshift-median", type=float, metavar="Z",
+                      help="median redshift of the population (parametric n(z))")
+    plan.add_argument("--bias", type=float, metavar="B", help="linear bias (default 1)")
+    plan.add_argument("--mag-limit", type=float, metavar="M",
+                      help="the magnitude limit the density refers to (a label)")
+    plan.add_argument("--fields", type=int, metavar="N", default=1,
+                      help="N separated fields of equal total area (default 1: one "
+                      "contiguous field)")
+    plan.add_argument("--target", type=float, metavar="FRACTION",
+                      help="target fractional (1σ) precision of the surface density")
+    plan.add_argument("--cosmology", default=None,
+                      help="astropy realization name (default: the run file's, else Planck18)")
+    plan.add_argument("--plot", metavar="PNG", help="draw the precision curves into this PNG")
+    plan.add_argument("--json", action="store_true", help="print one JSON object")
+    plan.set_defaults(handler=_cmd_plan)
 
     claim = sub.add_parser(
         "claim",
@@ -322,6 +358,148 @@ def _cmd_horizon(args):
         ("age", f"{result.age_gyr:.4g} Gyr"),
     ])
     return EXIT_OK
+
+
+# ----------------------------------------------------------------------------------------
+# plan
+# ----------------------------------------------------------------------------------------
+def _plan_population(args):
+    from countscale import planning
+
+    if args.runfile is None:
+        missing = [flag for flag, value in (("--surface-density", args.surface_density),
+                                            ("--redshift-median", args.redshift_median))
+                   if value is None]
+        if missing:
+            raise InputError(f"countscale plan needs {' and '.join(missing)} (or a RUNFILE "
+                             "whose survey measures them)")
+        power = None
+        if args.cosmology is not None:
+            from countscale.cosmology import get_cosmology
+            from countscale.variance import linear_power
+
+            power = linear_power(get_cosmology(args.cosmology))
+        return planning.population(
+            surface_density_per_deg2=args.surface_density,
+            redshift_median=args.redshift_median,
+            bias=1.0 if args.bias is None else args.bias,
+            slope=args.slope, mag_limit=args.mag_limit, power=power,
+            source="given on the command line")
+    from countscale.pipeline import plan_population
+
+    measured = plan_population(args.runfile, progress=False)
+    changed = []
+    nz, redshift_median = measured.nz, None
+    if args.redshift_median is not None:
+        nz, redshift_median = None, args.redshift_median
+        changed.append("n(z)")
+    values = {"surface_density_per_deg2": measured.surface_density_per_deg2,
+              "bias": measured.bias, "slope": measured.slope,
+              "mag_limit": measured.mag_limit}
+    for key, flag, value in (("surface_density_per_deg2", "surface density",
+                              args.surface_density), ("bias", "bias", args.bias),
+                             ("slope", "slope", args.slope),
+                             ("mag_limit", "magnitude limit", args.mag_limit)):
+        if value is not None:
+            values[key] = value
+            changed.append(flag)
+    power = measured.power
+    if args.cosmology is not None:
+        from countscale.cosmology import get_cosmology
+        from countscale.variance import linear_power
+
+        power = linear_power(get_cosmology(args.cosmology))
+        changed.append("cosmology")
+    source = measured.source + (f"; {', '.join(changed)} from the command line"
+                                if changed else "")
+    return planning.population(nz=nz, redshift_median=redshift_median, power=power,
+                               source=source, **values)
+
+
+def _cmd_plan(args):
+    from countscale import planning
+
+    if args.fields < 1:
+        raise InputError(f"--fields must be an integer >= 1; got {args.fields}")
+    if args.target is not None and not 0.0 < args.target < 1.0:
+        raise InputError(f"--target must be a fraction in (0, 1); got {args.target}")
+    pop = _plan_population(args)
+    layout = "fields" if args.fields > 1 else "contiguous"
+    plan = planning.plan_survey(pop, target=args.target, layout=layout, n_fields=args.fields)
+    result = plan.to_json()
+    if args.plot:
+        from countscale import plots
+
+        plots.plan_figure(result, args.plot)
+    if args.json:
+        print(json.dumps(result))
+        return EXIT_OK
+    print(_plan_text(result, args.plot))
+    return EXIT_OK
+
+
+def _plan_text(result, plot=None):
+    pop = result["population"]
+    layout = result["layout"]
+    rows = [
+        ("quantity", result["quantity"]),
+        ("population", f"{pop['surface_density_per_deg2']:.4g} per deg²; n(z) median "
+                       f"{pop['redshift_median']:.3g}; bias {pop['bias']:g}"
+                       + (f"; slope {pop['slope']:.3g} dex/mag" if pop["slope"] else "")),
+        ("", f"({pop['source']})"),
+        ("layout", layout["description"]),
+    ]
+    target = result["target_precision"]
+    if target is not None:
+        if result["reachable"]:
+            rows.append(("target", f"{target:g} (1σ) needs {result['required_area_deg2']:.4g} "
+                                   "deg²"))
+        else:
+            rows.append(("target", f"{target:g} (1σ) is NOT reachable with this layout: the "
+                                   f"best it gets is {result['floor_precision']:.3g} (at "
+                                   f"{layout['max_area_deg2']:.6g} deg²)"))
+    rows.append(("floor", f"{result['floor_precision']:.3g} at {layout['max_area_deg2']:.6g} "
+                          "deg² (the layout's largest area)"))
+    cross = result["crossover_area_deg2"]
+    rows.append(("crossover", "cosmic variance exceeds Poisson noise above "
+                 f"{cross:.3g} deg²" if cross else "cosmic variance stays below Poisson noise"
+                 if result["curve"][-1]["cosmic_variance"] < result["curve"][-1]["poisson"]
+                 else "cosmic variance exceeds Poisson noise at every area shown"))
+    width = max(len(key) for key, _ in rows)
+    lines = [f"{key:<{width}}  {value}" for key, value in rows]
+    lines += ["", f"  {'area [deg²]':>12} {'Poisson':>10} {'cosmic var.':>12} {'total':>10}"]
+    for point in result["curve"][::4]:
+        lines.append(f"  {point['area_deg2']:>12.4g} {point['poisson']:>10.3g} "
+                     f"{point['cosmic_variance']:>12.3g} {point['total']:>10.3g}")
+    lines += ["", "layouts compared" + (f" (target {target:g})" if target else ""),
+              f"  {'layout':<34} {'required deg²':>14} {'floor':>10} {'crossover deg²':>15}"]
+    for entry in result["layouts"].values():
+        required = entry["required_area_deg2"]
+        req = ("—" if target is None else "unreachable" if required is None
+               else f"{required:.4g}")
+        crossover = entry["crossover_area_deg2"]
+        name = {"contiguous": "one contiguous field",
+                "strip": f"one strip ({entry.get('aspect_ratio', 10):g}:1)",
+                "fields": f"{entry['n_fields']} separated fields"}[entry["kind"]]
+        lines.append(f"  {name:<34} {req:>14} {entry['floor_precision']:>10.3g} "
+                     f"{'—' if crossover is None else f'{crossover:.3g}':>15}")
+    if result["depth"]:
+        lines += ["", "depth trade-off (background-limited: Δm = 1.25 log10 of the exposure "
+                      "ratio; same n(z))",
+                  f"  {'exposure ×':>10} {'Δm':>7} {'per deg²':>10} {'required deg²':>14} "
+                  f"{'time ×':>8}"]
+        for row in result["depth"]:
+            required = row["required_area_deg2"]
+            req = ("—" if target is None else "unreachable" if required is None
+                   else f"{required:.4g}")
+            time_factor = "—" if row["time_factor"] is None else f"{row['time_factor']:.3g}"
+            lines.append(f"  {row['exposure_factor']:>10g} {row['delta_mag']:>+7.3f} "
+                         f"{row['surface_density_per_deg2']:>10.4g} {req:>14} "
+                         f"{time_factor:>8}")
+    lines += ["", "assumptions"] + [f"  - {a}" for a in result["assumptions"]]
+    if plot:
+        lines += ["", f"figure  {plot}"]
+    return "\n".join(lines)
 
 
 # ----------------------------------------------------------------------------------------

@@ -21,7 +21,8 @@ The observable universe
     :class:`Horizon`.
 Magnitudes and K-corrections
     :func:`kcorrection_power_law`, :class:`PowerLawKCorrection`, :class:`TabulatedKCorrection`,
-    :func:`as_kcorrection`, :func:`apparent_magnitude`, :func:`absolute_magnitude`.
+    :class:`PolynomialKCorrection`, :func:`as_kcorrection`, :func:`apparent_magnitude`,
+    :func:`absolute_magnitude`.
 Published values quoted in h units
     :func:`phi_star_from_h_units`, :func:`m_star_from_h_units`.
 
@@ -62,6 +63,7 @@ from countscale.errors import InputError, InputTypeError
 
 __all__ = [
     "Horizon",
+    "PolynomialKCorrection",
     "PowerLawKCorrection",
     "TabulatedKCorrection",
     "absolute_magnitude",
@@ -591,6 +593,46 @@ class TabulatedKCorrection:
         )
 
 
+@dataclass(frozen=True)
+class PolynomialKCorrection:
+    """K(z) = c0 + c1 z + c2 z^2 + ... [mag]; call it with z.
+
+    Parameters
+    ----------
+    coefficients : sequence of float
+        c0, c1, ... (lowest order first), 1 to 10 finite values. K(0) = c0 is allowed to be
+        non-zero (a K-correction to a band shifted to z0 > 0 is not zero at z = 0).
+
+    Notes
+    -----
+    A low-order polynomial is the usual compact fit to K-corrections of a galaxy population
+    over a limited redshift range; outside the range it was fitted over it means nothing,
+    which is the caller's to respect (a fitter checks the redshift range it is given).
+    """
+
+    coefficients: tuple[float, ...]
+
+    def __post_init__(self) -> None:
+        raw = self.coefficients
+        if isinstance(raw, str | bytes) or not hasattr(raw, "__len__"):
+            raise InputTypeError(
+                f"`coefficients` must be a list of numbers (c0, c1, ...); got {raw!r}"
+            )
+        values = _real_array("coefficients", list(raw))
+        if values.ndim != 1 or not 1 <= values.size <= 10:
+            raise InputError(
+                f"`coefficients` must hold 1 to 10 numbers (c0, c1, ...); got {len(raw)}"
+            )
+        bad = ~np.isfinite(values)
+        if bad.any():
+            raise InputError(f"`coefficients` must be finite; got {_first_bad(values, bad)}")
+        object.__setattr__(self, "coefficients", tuple(float(c) for c in values))
+
+    def __call__(self, z: Any) -> float | np.ndarray:
+        zz = _redshift(z)
+        return _out(np.polynomial.polynomial.polyval(zz, self.coefficients), zz.ndim == 0)
+
+
 class _CallableKCorrection:
     """A user's function K(z), checked for shape and finiteness on every call."""
 
@@ -623,47 +665,91 @@ def _zero_kcorrection(z: Any) -> float | np.ndarray:
     return _out(np.zeros_like(zz), zz.ndim == 0)
 
 
+_KCORRECTION_FORMS = {
+    "power_law": ("beta",),
+    "table": ("z", "k"),
+    "polynomial": ("coefficients",),
+}
+
+
+def _kcorrection_from_form(spec: Mapping[str, Any]) -> Callable[[Any], float | np.ndarray]:
+    form = spec["form"]
+    if form not in _KCORRECTION_FORMS:
+        close = difflib.get_close_matches(str(form), list(_KCORRECTION_FORMS), n=1, cutoff=0.5)
+        hint = f" (did you mean {close[0]!r}?)" if close else ""
+        raise InputError(
+            f"`kcorrection` form must be one of {', '.join(_KCORRECTION_FORMS)}; "
+            f"got {form!r}{hint}"
+        )
+    wanted = set(_KCORRECTION_FORMS[form])
+    keys = set(spec) - {"form"}
+    if keys != wanted:
+        raise InputError(
+            f"`kcorrection` with form {form!r} must have the keys {sorted(wanted)} besides "
+            f"'form'; got {sorted(keys)}"
+        )
+    if form == "power_law":
+        return PowerLawKCorrection(spec["beta"])
+    if form == "table":
+        return TabulatedKCorrection(spec["z"], spec["k"])
+    return PolynomialKCorrection(spec["coefficients"])
+
+
 def as_kcorrection(spec: Any) -> Callable[[Any], float | np.ndarray]:
     """Turn a K-correction specification into a function K(z) [mag].
 
     Parameters
     ----------
-    spec : None, callable, mapping, PowerLawKCorrection or TabulatedKCorrection
+    spec : None, callable, mapping, or one of the K-correction classes
         ``None``: no K-correction (K = 0). A callable: used as K(z) (its output is checked).
-        A mapping: ``{"beta": b}`` (power law, :func:`kcorrection_power_law`) or
-        ``{"z": [...], "k": [...]}`` (a table interpolated linearly, no extrapolation).
+        A mapping: ``{"beta": b}`` (power law, :func:`kcorrection_power_law`),
+        ``{"z": [...], "k": [...]}`` (a table interpolated linearly, no extrapolation), or
+        the same with an explicit ``"form"``: ``{"form": "power_law", "beta": b}``,
+        ``{"form": "table", "z": [...], "k": [...]}``, ``{"form": "polynomial",
+        "coefficients": [c0, c1, ...]}`` (:class:`PolynomialKCorrection`).
 
     Returns
     -------
     callable
         K(z) taking a scalar or array of redshifts.
+
+    Examples
+    --------
+    >>> k = as_kcorrection({"form": "polynomial", "coefficients": [0.0, 1.2, -0.3]})
+    >>> round(k(0.5), 6)
+    0.525
     """
     if spec is None:
         return _zero_kcorrection
-    if isinstance(spec, (PowerLawKCorrection, TabulatedKCorrection, _CallableKCorrection)):
+    if isinstance(spec, (PowerLawKCorrection, TabulatedKCorrection, PolynomialKCorrection,
+                         _CallableKCorrection)):
         return spec
     if isinstance(spec, Mapping):
         keys = set(spec)
+        if "form" in keys:
+            return _kcorrection_from_form(spec)
         if keys == {"beta"}:
             return PowerLawKCorrection(spec["beta"])
         if keys == {"z", "k"}:
             return TabulatedKCorrection(spec["z"], spec["k"])
-        unknown = sorted(keys - {"beta", "z", "k"})
+        allowed = ["beta", "z", "k", "form", "coefficients"]
+        unknown = sorted(keys - set(allowed))
         if unknown:
-            close = difflib.get_close_matches(unknown[0], ["beta", "z", "k"], n=1, cutoff=0.5)
+            close = difflib.get_close_matches(unknown[0], allowed, n=1, cutoff=0.5)
             hint = f" (did you mean {close[0]!r}?)" if close else ""
             raise InputError(
                 f"`kcorrection` has unknown key {unknown[0]!r}; give {{'beta'}} or "
-                f"{{'z', 'k'}}{hint}"
+                f"{{'z', 'k'}} or {{'form', ...}}{hint}"
             )
         raise InputError(
-            f"`kcorrection` must have the keys {{'beta'}} or {{'z', 'k'}}; got {sorted(keys)}"
+            f"`kcorrection` must have the keys {{'beta'}} or {{'z', 'k'}} or {{'form', ...}}; "
+            f"got {sorted(keys)}"
         )
     if callable(spec):
         return _CallableKCorrection(spec)
     raise InputTypeError(
-        f"`kcorrection` must be None, a callable, or a mapping with 'beta' or 'z' and 'k'; "
-        f"got {type(spec).__name__}"
+        f"`kcorrection` must be None, a callable, or a mapping with 'beta', 'z' and 'k', or "
+        f"'form'; got {type(spec).__name__}"
     )
 
 

@@ -2299,9 +2299,11 @@ class CountsFit:
         self._profiles[key] = interval
         return interval
 
-    def integral_counts(self, m_limit, area_deg2=None, n_draws=4000, rng=None):
+    def integral_counts(self, m_limit, area_deg2=None, n_draws=4000, rng=None,
+                        covariance="reported"):
         """N(<m_limit) per deg^2 and over the footprint; see :func:`integral_counts`."""
-        return integral_counts(self, m_limit, area_deg2=area_deg2, n_draws=n_draws, rng=rng)
+        return integral_counts(self, m_limit, area_deg2=area_deg2, n_draws=n_draws, rng=rng,
+                               covariance=covariance)
 
     def differential_counts(self, level=0.68):
         """Raw and corrected binned counts of the fitted data; see :func:`differential_counts`."""
@@ -2464,7 +2466,8 @@ class IntegralCounts:
         )
 
 
-def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None):
+def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None,
+                    covariance="reported"):
     """Integral counts N(<m_limit) per deg^2 and over the footprint, with intervals.
 
     Parameters
@@ -2479,6 +2482,12 @@ def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None):
         Parameter draws; >= 100.
     rng : int or numpy.random.Generator, optional
         For the draws.
+    covariance : {"reported", "poisson"}
+        Draw the parameters from the fit's reported covariance ``cov_`` (Poisson, plus the
+        jackknife's clustering excess with regions), or from the Poisson part
+        ``cov_poisson_`` alone: the density this footprint holds, whose only uncertainty is
+        Poisson noise (an analytic cosmic variance can then be added for the population's
+        mean, see :mod:`countscale.variance`).
 
     Returns
     -------
@@ -2517,6 +2526,8 @@ def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None):
     else:
         area = _check_real(area_deg2, "area_deg2", 0.0)
     n_draws = _check_count(n_draws, "n_draws", 100)
+    if covariance not in ("reported", "poisson"):
+        raise InputError(f"`covariance` must be 'reported' or 'poisson'; got {covariance!r}")
     generator = _as_generator(rng)
     if m_limit > fit.fit_range_[1]:
         warnings.warn(
@@ -2538,17 +2549,20 @@ def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None):
     def log10_n(t):
         return math.log10(float(model.with_params(t).cumulative(m_limit)))
 
-    steps = np.maximum(1e-3 * np.sqrt(np.diag(fit.cov_)), 1e-9)
+    cov = fit.cov_ if covariance == "reported" else fit.cov_poisson_
+    with_regions = fit.n_regions_ > 0 and covariance == "reported"
+    steps = np.maximum(1e-3 * np.sqrt(np.diag(cov)), 1e-9)
     gradient = _numerical_gradient(log10_n, theta, steps)
-    var_total = float(gradient @ fit.cov_ @ gradient)
+    var_total = float(gradient @ cov @ gradient)
     var_poisson = float(gradient @ fit.cov_poisson_ @ gradient)
     var_jackknife = (
-        None if fit.cov_jackknife_ is None else float(gradient @ fit.cov_jackknife_ @ gradient)
+        None if fit.cov_jackknife_ is None or not with_regions
+        else float(gradient @ fit.cov_jackknife_ @ gradient)
     )
-    budget = _budget(var_poisson, var_total, fit.n_regions_ > 0)
+    budget = _budget(var_poisson, var_total, with_regions)
     dof = _satterthwaite_dof(var_total, var_jackknife, fit.n_regions_)
     offsets = generator.multivariate_normal(
-        np.zeros(theta.size), fit.cov_, size=n_draws, method="eigh"
+        np.zeros(theta.size), cov, size=n_draws, method="eigh"
     )
     if math.isfinite(dof):
         # Multivariate Student t: a normal draw over sqrt(chi2_nu / nu).

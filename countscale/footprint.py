@@ -1218,6 +1218,46 @@ class Footprint:
         area = np.bincount(labels, weights=fraction, minlength=n_regions) * cell_area_sr(order)
         return Regions(order, cells, labels, area * _SR_TO_DEG2)
 
+    def fields(self, order=None):
+        """The footprint's connected parts ("fields"), as regions of whole cells of `order`.
+
+        Cells of `order` holding coverage are joined when they touch (any of their 8 HEALPix
+        neighbours); each connected group is a field. Fields are numbered in the order of
+        their first cell (NEST), so the labels do not depend on anything but the footprint.
+
+        Parameters
+        ----------
+        order : int, optional
+            Cell order; default ``min(max_order, 10)`` (3.4 arcmin cells). Fields closer than
+            about a cell of this order count as one.
+
+        Returns
+        -------
+        Regions
+            ``n_regions`` is the number of fields; ``area_deg2`` each field's covered area.
+        """
+        from scipy.sparse import coo_matrix
+        from scipy.sparse.csgraph import connected_components
+
+        if self.area_sr <= 0:
+            raise InputError("cannot find the fields of an empty footprint (area 0)")
+        order = min(self.max_order, 10) if order is None else _check_order("order", order)
+        cells, fraction = self.coverage_cells(order)
+        neighbours = hp.get_all_neighbours(2**order, cells, nest=True)  # (8, n), -1 if none
+        pos = np.minimum(np.searchsorted(cells, neighbours), len(cells) - 1)
+        present = (cells[pos] == neighbours) & (neighbours >= 0)
+        rows = np.broadcast_to(np.arange(len(cells)), neighbours.shape)[present]
+        graph = coo_matrix((np.ones(rows.size, dtype=np.int8), (rows, pos[present])),
+                           shape=(len(cells), len(cells)))
+        _, raw = connected_components(graph, directed=False)
+        # Renumber by first appearance so that labels follow the cells' NEST order.
+        _, first = np.unique(raw, return_index=True)
+        rank = np.empty(first.size, dtype=np.int32)
+        rank[np.argsort(first)] = np.arange(first.size, dtype=np.int32)
+        labels = rank[raw]
+        area = np.bincount(labels, weights=fraction) * cell_area_sr(order) * _SR_TO_DEG2
+        return Regions(order, cells, labels, area)
+
     # -- writing ----------------------------------------------------------------------
     def write_moc(self, path, min_weight=0.5):
         """Write an IVOA MOC FITS file (NUNIQ) of the cells covered at least `min_weight`.

@@ -33,9 +33,14 @@ Galaxies
 Stars
     Classes of one absolute magnitude each, with midplane densities n_k, in an exponential
     disk of scale height h_z seen from the midplane; along galactic latitude b a class seen to
-    distance R gives N(b) = n_k (h_z / sin|b|)^3 gamma(3, R sin|b| / h_z) per sr (REFERENCES.md
-    section 8; Bahcall & Soneira 1980, ApJS 44, 73 for disk models). An infinite scale height
-    is a uniform (static Euclidean) population.
+    distance R gives N(b) = n_k (h_z / sin|b|)^3 gamma(3, R sin|b| / h_z) per sr (the integral of
+    r^2 exp(-r sin|b| / h_z); Bahcall & Soneira 1980, ApJS 44, 73 for disk models). An
+    infinite scale height is a uniform (static Euclidean) population. A finite radial scale
+    length L adds a gradient exp(X / L) toward the galactic centre: the same integral with
+    sin|b| / h_z replaced by sin|b| / h_z - cos b cos l / L (any sign).
+Dust
+    An optional E(B-V) map dims every source by R E(B-V) before detection (a foreground
+    screen); the truth stays in intrinsic magnitudes.
 Positions
     Poisson-uniform over the footprint, or the galaxies modulated by one lognormal field
     1 + delta on HEALPix (Coles & Jones 1991, MNRAS 248, 1; from memory), the same at every
@@ -396,17 +401,27 @@ class DiskStars:
         Exponential scale height h_z [pc], > 0; ``inf`` makes the population uniform in
         space (static Euclidean). Thin disk ~300 pc, thick disk ~900 pc (Juric et al. 2008,
         ApJ 673, 864; from memory).
+    scale_length_pc : float
+        Radial scale length L [pc], > 0: the density also grows as exp(X / L) toward the
+        galactic centre (X = r cos b cos l), a planar approximation of a disk exponential in
+        galactocentric radius, right where X is small against the Sun's distance from the
+        centre. ``inf`` (default): no longitude dependence. Thin disk ~2.6 kpc (Juric et al.
+        2008; from memory).
 
     Notes
     -----
     Density n_k exp(-|Z| / h_z) with Z = r sin b; the number per sr of class k closer than R is
     n_k integral_0^R r^2 exp(-r sin|b| / h_z) dr = n_k (h_z / sin|b|)^3 gamma(3, R sin|b| / h_z)
-    (REFERENCES.md section 8). A class is seen to R = 10^((m - M_k) / 5 + 1) pc (no extinction).
+    (the exponential-disk star count; disk models: Bahcall & Soneira 1980, ApJS 44, 73). A class
+    is seen to R = 10^((m - M_k) / 5 + 1) pc (no extinction). With a finite scale length the
+    exponent is -r k with k = sin|b| / h_z - cos b cos l / L, and the same integral holds for
+    any sign of k: integral_0^R r^2 exp(-k r) dr = R^3 integral_0^1 t^2 exp(-k R t) dt.
     """
 
     abs_mag: tuple[float, ...] = _DEFAULT_STAR_ABS_MAG
     density_pc3: tuple[float, ...] = _DEFAULT_STAR_DENSITY
     scale_height_pc: float = 300.0
+    scale_length_pc: float = math.inf
 
     def __post_init__(self):
         abs_mag = _real_tuple("abs_mag", self.abs_mag)
@@ -425,6 +440,11 @@ class DiskStars:
             self,
             "scale_height_pc",
             _real("scale_height_pc", self.scale_height_pc, lo=0.0, lo_open=True, allow_inf=True),
+        )
+        object.__setattr__(
+            self,
+            "scale_length_pc",
+            _real("scale_length_pc", self.scale_length_pc, lo=0.0, lo_open=True, allow_inf=True),
         )
 
     # -- the model ------------------------------------------------------------------------
@@ -449,7 +469,7 @@ class DiskStars:
         out[big] = 2.0 * special.gammainc(3.0, x[big]) * (h / s[big]) ** 3
         return out
 
-    def density_per_sr(self, sin_b, mag):
+    def density_per_sr(self, sin_b, mag, cos_x=0.0):
         """Number of stars per sr brighter than apparent magnitude `mag` at |sin b|.
 
         Parameters
@@ -458,6 +478,9 @@ class DiskStars:
             |sin b| of the direction (galactic latitude b).
         mag : float
             Apparent magnitude limit.
+        cos_x : float or array_like
+            cos b cos l, the direction cosine toward the galactic centre; used only with a
+            finite ``scale_length_pc``.
 
         Returns
         -------
@@ -465,10 +488,27 @@ class DiskStars:
             sum_k n_k (h_z / sin|b|)^3 gamma(3, R_k sin|b| / h_z) [sr^-1].
         """
         s = np.abs(np.asarray(sin_b, dtype=float))
+        if not math.isinf(self.scale_length_pc):
+            k = self.inverse_length(s, cos_x)
+            return self.density_at_inverse_length(k, mag)
         radius = self._radius_pc(_real("mag", mag))  # (K,)
         total = np.zeros(s.shape)
         for k, n_k in enumerate(self.density_pc3):
             total = total + n_k * self._cone_integral(radius[k], s)
+        return float(total) if total.ndim == 0 else total
+
+    def inverse_length(self, sin_b, cos_x=0.0):
+        """k = |sin b| / h_z - cos b cos l / L [pc^-1]: the density falls as exp(-k r)."""
+        s = np.abs(np.asarray(sin_b, dtype=float))
+        return s / self.scale_height_pc - np.asarray(cos_x, dtype=float) / self.scale_length_pc
+
+    def density_at_inverse_length(self, k, mag):
+        """Stars per sr brighter than `mag` along a direction of inverse length ``k``."""
+        k = np.asarray(k, dtype=float)
+        radius = self._radius_pc(_real("mag", mag))  # (K,)
+        total = np.zeros(k.shape)
+        for j, n_j in enumerate(self.density_pc3):
+            total = total + n_j * _exponential_cone(radius[j], k)
         return float(total) if total.ndim == 0 else total
 
     def whole_sky_count(self, mag):
@@ -482,11 +522,70 @@ class DiskStars:
         """
         radius = self._radius_pc(_real("mag", mag))
         h = self.scale_height_pc
+        if not math.isinf(self.scale_length_pc):
+            return float(sum(n * self._ball_integral(r) for n, r in
+                             zip(self.density_pc3, radius, strict=True)))
         if math.isinf(h):
             per_class = radius**3 / 3.0
         else:
             per_class = h * radius**2 / 2.0 - h**3 * special.gammainc(2.0, radius / h)
         return float(FULL_SKY_SR * np.dot(self.density_pc3, per_class))
+
+    def _ball_integral(self, radius_pc):
+        """integral over the ball |r| < R of exp(-|Z| / h_z + X / L) [pc^3].
+
+        Slices of constant Z are discs of radius rho = sqrt(R^2 - Z^2), over which
+        integral exp(X / L) dA = 2 pi L rho I_1(rho / L) (the Bessel function I_1; DLMF 10.32);
+        the Z integral is done by scipy's adaptive quadrature.
+        """
+        from scipy import integrate
+
+        h, length = self.scale_height_pc, self.scale_length_pc
+
+        def slab(z):
+            rho = math.sqrt(max(radius_pc**2 - z**2, 0.0))
+            vertical = 1.0 if math.isinf(h) else math.exp(-z / h)
+            # ive(1, x) = I_1(x) e^-x keeps large arguments finite.
+            return 2.0 * (2.0 * math.pi * length * rho * special.ive(1, rho / length)
+                          * math.exp(rho / length) * vertical)
+
+        points = [min(h, radius_pc / 2.0)] if not math.isinf(h) else None
+        value, _ = integrate.quad(slab, 0.0, radius_pc, points=points, limit=200,
+                                  epsrel=1e-10)
+        return value
+
+
+#: Terms of the power series of integral_0^1 t^2 exp(-x t) dt used where |x| < 1.
+_CONE_SERIES_TERMS = 18
+
+
+def _exponential_cone(radius_pc, k):
+    """integral_0^R r^2 exp(-k r) dr [pc^3] for any sign of k (broadcast).
+
+    With x = k R: R^3 sum_n (-x)^n / (n! (n + 3)) for |x| < 1 (18 terms: error below 1e-16);
+    2 P(3, x) / k^3 (regularised lower incomplete gamma) for x >= 1; and
+    R^3 (e^y (y^2 - 2 y + 2) - 2) / y^3 with y = -x for x <= -1.
+    """
+    radius_pc, k = np.broadcast_arrays(np.asarray(radius_pc, float), np.asarray(k, float))
+    x = radius_pc * k
+    out = np.empty(x.shape)
+    small = np.abs(x) < 1.0
+    if small.any():
+        xs = x[small]
+        series = np.zeros(xs.shape)
+        term = np.ones(xs.shape)  # (-x)^n / n!
+        for n in range(_CONE_SERIES_TERMS):
+            series += term / (n + 3)
+            term = term * (-xs) / (n + 1)
+        out[small] = radius_pc[small] ** 3 * series
+    pos = x >= 1.0
+    if pos.any():
+        out[pos] = 2.0 * special.gammainc(3.0, x[pos]) / k[pos] ** 3
+    neg = x <= -1.0
+    if neg.any():
+        y = -x[neg]
+        out[neg] = radius_pc[neg] ** 3 * (np.exp(y) * (y * y - 2.0 * y + 2.0) - 2.0) / y**3
+    return out
 
 
 def power_law_cl(lmax, cl_100=6e-7, slope=1.2):
@@ -706,6 +805,10 @@ class MockSpec:
     generation_mag_limit : float, optional
         Draw sources down to this magnitude instead of the one set by
         ``measurement.detection_floor``.
+    extinction : countscale.extinction.ExtinctionMap, optional
+        Galactic dust in front of every source: each source is seen A = R E(B-V) mag fainter
+        (at its map pixel) before detection and noise; the truth counts stay in intrinsic
+        magnitudes. The catalogue then has a column ``extinction`` (A, mag).
     """
 
     galaxies: SchechterGalaxies | MassFunctionGalaxies | None = None
@@ -718,6 +821,7 @@ class MockSpec:
     seed: int | None = None
     footprint: Footprint | None = None
     generation_mag_limit: float | None = None
+    extinction: Any = None
 
     def __post_init__(self):
         checks = (
@@ -738,6 +842,12 @@ class MockSpec:
                 )
         if self.galaxies is None and self.stars is None:
             raise InputError("a mock needs `galaxies` or `stars`; got neither")
+        if self.extinction is not None:
+            from countscale.extinction import ExtinctionMap
+
+            if not isinstance(self.extinction, ExtinctionMap):
+                raise InputTypeError(f"`extinction` must be None or an ExtinctionMap; got "
+                                     f"{type(self.extinction).__name__}")
         if self.clustering is not None and self.galaxies is None:
             raise InputError("`clustering` applies to galaxies; got clustering without galaxies")
         limits = _real_tuple("mag_limits", self.mag_limits)
@@ -1089,6 +1199,16 @@ def _sin_galactic_latitude(ra, dec):
     )
 
 
+def _galactic_x(ra, dec):
+    """cos b cos l (direction cosine toward the galactic centre) of ICRS positions in degrees."""
+    row = geo.icrs_to_galactic_matrix()[0]
+    ra_r, dec_r = np.radians(ra), np.radians(dec)
+    cos_dec = np.cos(dec_r)
+    return row[0] * cos_dec * np.cos(ra_r) + row[1] * cos_dec * np.sin(ra_r) + row[2] * np.sin(
+        dec_r
+    )
+
+
 def _points_in_cells(cells, order, rng):
     """Uniform positions inside NEST cells of `order` (one per entry of `cells`)."""
     sub = geo.HEALPIX_MAX_ORDER - order
@@ -1237,7 +1357,17 @@ class _MockRun:
         # centre's.
         reach = 1.05 * np.degrees(hp.max_pixrad(nside))
         s_bound = np.sin(np.radians(np.maximum(abs_b - reach, 0.0)))
-        bound = stars.density_per_sr(s_bound, self.m_gen)
+        radial = not math.isinf(stars.scale_length_pc)
+        if radial:
+            # With a radial gradient the density also grows toward the galactic centre: the
+            # smallest inverse length k in a cell takes the lowest |b| and the direction
+            # closest to the centre, each at most one cell radius from the centre's.
+            to_centre = np.degrees(np.arccos(np.clip(_galactic_x(lon, lat), -1.0, 1.0)))
+            cos_bound = np.cos(np.radians(np.maximum(to_centre - reach, 0.0)))
+            bound = stars.density_at_inverse_length(
+                stars.inverse_length(s_bound, cos_bound), self.m_gen)
+        else:
+            bound = stars.density_per_sr(s_bound, self.m_gen)
         process = _CellProcess(cells, order, bound * hp.nside2pixarea(nside), self._rng_star)
         for start in range(0, process.total, _CHUNK_PROPOSALS):
             rng = self._rng_star.spawn(1)[0]
@@ -1246,9 +1376,16 @@ class _MockRun:
             )
             s = np.abs(_sin_galactic_latitude(ra, dec))
             keep = self.footprint.contains(ra, dec)
-            keep &= rng.random(ra.size) * bound[index] <= stars.density_per_sr(s, self.m_gen)
-            ra, dec, s = ra[keep], dec[keep], s[keep]
-            abs_mag, distance = self._star_marks(s, rng)
+            if radial:
+                k = stars.inverse_length(s, _galactic_x(ra, dec))
+                keep &= rng.random(ra.size) * bound[index] <= stars.density_at_inverse_length(
+                    k, self.m_gen)
+                ra, dec, k = ra[keep], dec[keep], k[keep]
+                abs_mag, distance = self._star_marks_radial(k, rng)
+            else:
+                keep &= rng.random(ra.size) * bound[index] <= stars.density_per_sr(s, self.m_gen)
+                ra, dec, s = ra[keep], dec[keep], s[keep]
+                abs_mag, distance = self._star_marks(s, rng)
             mag_true = abs_mag + 5.0 * np.log10(distance) - 5.0
             columns = {"z": np.full(ra.size, np.nan), "abs_mag": abs_mag, "distance_pc": distance}
             yield self._measure(_STAR, ra, dec, mag_true, columns, rng)
@@ -1281,14 +1418,54 @@ class _MockRun:
             distance[far] = special.gammaincinv(3.0, p) * h / s[far]
         return np.asarray(stars.abs_mag)[k], distance
 
+    def _star_marks_radial(self, k, rng):
+        """Class and distance of stars along directions of inverse length ``k`` [pc^-1]."""
+        stars = self.spec.stars
+        radius = stars._radius_pc(self.m_gen)  # (K,)
+        weight = np.asarray(stars.density_pc3) * _exponential_cone(radius[None, :], k[:, None])
+        cumulative = np.cumsum(weight, axis=1)
+        pick = (rng.random(k.size) * cumulative[:, -1])[:, None]
+        cls = np.minimum((cumulative < pick).sum(axis=1), len(radius) - 1)
+        r_max = radius[cls]
+        x_max = r_max * k
+        distance = np.empty(k.size)
+        # Density r^2 exp(-k r) on [0, R]. 0 <= k R < 0.5: r^3 uniform, kept with probability
+        # exp(-k r) >= e^-0.5; k R >= 0.5: the inverse incomplete gamma function; k < 0 (the
+        # density grows outward): the cumulative distribution inverted by bisection.
+        todo = np.flatnonzero((x_max >= 0.0) & (x_max < 0.5))
+        while todo.size:
+            r = r_max[todo] * np.cbrt(rng.random(todo.size))
+            ok = rng.random(todo.size) <= np.exp(-r * k[todo])
+            distance[todo[ok]] = r[ok]
+            todo = todo[~ok]
+        far = np.flatnonzero(x_max >= 0.5)
+        if far.size:
+            p = rng.random(far.size) * special.gammainc(3.0, x_max[far])
+            distance[far] = special.gammaincinv(3.0, p) / k[far]
+        grow = np.flatnonzero(x_max < 0.0)
+        if grow.size:
+            target = rng.random(grow.size) * _exponential_cone(r_max[grow], k[grow])
+            lo, hi = np.zeros(grow.size), r_max[grow].copy()
+            for _ in range(60):  # 2^-60 of R: far below float64's resolution of R
+                mid = 0.5 * (lo + hi)
+                below = _exponential_cone(mid, k[grow]) < target
+                lo, hi = np.where(below, mid, lo), np.where(below, hi, mid)
+            distance[grow] = 0.5 * (lo + hi)
+        return np.asarray(stars.abs_mag)[cls], distance
+
     def _measure(self, population, ra, dec, mag_true, columns, rng):
         """Depth, detection and noise for one chunk; tally the truth; build the frame."""
         meas = self.measurement
         n = ra.size
         m50 = self.depth.m50_mag[hp.ang2pix(meas.depth_nside, ra, dec, lonlat=True)]
-        completeness = self.depth.completeness_at(mag_true, ra, dec)
+        seen = mag_true  # as it arrives at the telescope: behind the Galaxy's dust, if any
+        if self.spec.extinction is not None:
+            extinction = self.spec.extinction.extinction_at(ra, dec)
+            columns = {**columns, "extinction": extinction}
+            seen = mag_true + extinction
+        completeness = self.depth.completeness_at(seen, ra, dec)
         detected = rng.random(n) < completeness
-        mag = mag_true + meas.sigma(mag_true, m50) * rng.standard_normal(n)
+        mag = seen + meas.sigma(seen, m50) * rng.standard_normal(n)
         mag_err = meas.sigma(mag, m50)
         self.n_generated[population] += n
         self.n_detected[population] += int(detected.sum())
@@ -1326,6 +1503,8 @@ class _MockRun:
             wanted.append("log10_mass")
         if self.spec.stars is not None:
             wanted.append("distance_pc")
+        if self.spec.extinction is not None:
+            wanted.append("extinction")
         if self.include_undetected:
             wanted.append("detected")
         for name in wanted:
@@ -1391,6 +1570,8 @@ def _star_truth(stars):
         "abs_mag": list(stars.abs_mag),
         "density_pc3": list(stars.density_pc3),
         "scale_height_pc": stars.scale_height_pc,
+        **({} if math.isinf(stars.scale_length_pc) else
+           {"scale_length_pc": stars.scale_length_pc}),
     }
 
 
@@ -1412,9 +1593,15 @@ def _expected(spec, footprint, limits, galaxy_model):
         lon, lat = hp.pix2ang(2**order, cells, nest=True, lonlat=True)
         s = np.abs(_sin_galactic_latitude(lon, lat))
         area = fraction * hp.nside2pixarea(2**order)
-        on_footprint["stars"] = tuple(
-            float(np.dot(area, spec.stars.density_per_sr(s, m))) for m in limits
-        )
+        if math.isinf(spec.stars.scale_length_pc):
+            on_footprint["stars"] = tuple(
+                float(np.dot(area, spec.stars.density_per_sr(s, m))) for m in limits
+            )
+        else:
+            cos_x = _galactic_x(lon, lat)
+            on_footprint["stars"] = tuple(
+                float(np.dot(area, spec.stars.density_per_sr(s, m, cos_x))) for m in limits
+            )
     return {"sky": sky, "footprint": on_footprint}
 
 
@@ -1587,6 +1774,8 @@ def _make_iv(spec, footprint):
         raise InputTypeError(f"`footprint` must be a Footprint; got {type(footprint).__name__}")
     if footprint.area_sr <= 0:
         raise InputError("`footprint` must have area > 0; got an empty footprint")
+    if spec.extinction is not None:
+        spec.extinction.check_covers(footprint, where="`spec.extinction`")
     return footprint
 
 
@@ -1845,7 +2034,7 @@ _GALAXY_KEYS = {
                               "m_sun", "z_range", "kcorrection_beta"),
 }
 _SECTION_KEYS = {
-    "stars": ("abs_mag", "density_pc3", "scale_height_pc"),
+    "stars": ("abs_mag", "density_pc3", "scale_height_pc", "scale_length_pc"),
     "clustering": ("kind", "nside", "cl_100", "slope", "cl_file"),
     "measurement": ("m50", "width", "m50_scatter", "depth_nside", "sigma_at_m50", "sigma_max",
                     "sigma_floor", "detection_floor"),

@@ -2,7 +2,9 @@
 
 ``countscale run`` and ``countscale demo`` are thin layers over :func:`run_survey`. A run is a
 list of stages (:data:`STAGES`); each declares the run-file sections it needs and runs only
-when all of them are present. Later stages (number counts, luminosity function, cosmic
+when all of them are present (and its optional ``when`` condition holds: the contamination
+stage runs with a classifier or ``[contamination]``, the sky model for stars or with
+``[sky_model]``). Later stages (number counts, luminosity function, cosmic
 variance, totals) are added to :data:`STAGES` by their modules' issues; a section the file has
 but no stage reads yet is listed in the results under ``run.sections_not_run``, not ignored
 silently.
@@ -35,6 +37,7 @@ Examples
 
 from __future__ import annotations
 
+import math
 import os
 import warnings
 from collections.abc import Callable, Mapping
@@ -46,7 +49,8 @@ import numpy as np
 
 from countscale.errors import InputError, InputTypeError
 
-__all__ = ["STAGES", "RunContext", "RunResult", "Stage", "run_survey"]
+__all__ = ["STAGES", "RunContext", "RunResult", "Stage", "plan_population", "run_cosmology",
+           "run_survey"]
 
 
 @dataclass(frozen=True)
@@ -61,14 +65,21 @@ class Stage:
         Run-file sections that must all be present for the stage to run.
     run : callable
         ``run(ctx: RunContext) -> result``; the result has ``to_dict()`` (JSON-ready).
-    columns : tuple of str
-        Per-source tally columns the stage reads.
+    columns : tuple of str, or callable
+        Per-source tally columns the stage reads, or ``columns(runfile) -> tuple`` when they
+        depend on the run file.
+    when : callable, optional
+        ``when(runfile) -> bool``: a further condition for running (None: always).
+    reads : tuple of str
+        Optional sections the stage reads when present (so they are not reported as not run).
     """
 
     name: str
     sections: tuple[str, ...]
     run: Callable[[RunContext], Any]
-    columns: tuple[str, ...] = ()
+    columns: tuple[str, ...] | Callable[[Any], tuple[str, ...]] = ()
+    when: Callable[[Any], bool] | None = None
+    reads: tuple[str, ...] = ()
 
 
 @dataclass
@@ -92,6 +103,8 @@ class RunContext:
         Results of the stages run so far, by stage name.
     footprint : countscale.footprint.Footprint or None
         Built by the tally stage.
+    extinction : countscale.extinction.ExtinctionMap or None
+        Read by the tally stage from ``[extinction]``; magnitudes are then dereddened.
     """
 
     runfile: Any
@@ -102,6 +115,7 @@ class RunContext:
     columns: tuple[str, ...] = ()
     results: dict[str, Any] = field(default_factory=dict)
     footprint: Any = None
+    extinction: Any = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -194,8 +208,9 @@ def _stage_tally(ctx: RunContext) -> Any:
     if footprint.area_sr <= 0:
         raise InputError(f"{runfile.location('footprint')}: the footprint is empty (area 0)")
     ctx.footprint = footprint
+    ctx.extinction = _extinction_map(runfile, footprint)
     mag_bins = runfile.counts.bins if "counts" in runfile.present else None
-    columns = tuple(c for c in ctx.columns if c in ("coverage", "region")
+    columns = tuple(c for c in ctx.columns if c in ("coverage", "region", "cell")
                     or getattr(source, c, None) is not None)
     return tally(
         source, footprint,
@@ -206,7 +221,25 @@ def _stage_tally(ctx: RunContext) -> Any:
         scheduler=ctx.scheduler,
         chunk_rows=runfile.engine.chunk_rows,
         progress=ctx.progress,
+        extinction=ctx.extinction,
     )
+
+
+def _extinction_map(runfile: Any, footprint: Any) -> Any:
+    """The ``[extinction]`` map, checked to cover the footprint; None without the section."""
+    if "extinction" not in runfile.present:
+        return None
+    from countscale.extinction import ExtinctionMap
+
+    section = runfile.extinction
+    where = runfile.location("extinction", "map")
+    try:
+        extinction = ExtinctionMap.read(section.map, coefficient=section.coefficient,
+                                        band=section.band, nest=section.nest)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+    extinction.check_covers(footprint, where=where)
+    return extinction
 
 
 @dataclass(frozen=True, eq=False)
@@ -225,6 +258,29 @@ class StageResult:
 
 #: Magnitude grid step of the curves stored for figures (mag).
 _CURVE_STEP_MAG = 0.02
+
+
+def _extinction_shift(ctx: RunContext, regions: Any, depth: Any) -> dict:
+    """How far the dust moves each region's completeness limit (for the report)."""
+    import healpy as hp
+
+    ext = ctx.extinction
+    order = int(regions.order)
+    x, y, z = hp.pix2vec(2**order, regions.cells, nest=True)
+    ra, dec = hp.vec2ang(np.stack([x, y, z], axis=-1), lonlat=True)
+    a_mag = ext.extinction_at(ra, dec)
+    m50 = depth.m50_mag[hp.vec2pix(depth.nside, x, y, z, nest=depth.nest)]
+    per_region = [float(np.nanmean(a_mag[regions.labels == k])) if np.any(
+        regions.labels == k) else None for k in range(regions.n_regions)]
+    return {
+        **ext.summary(ctx.footprint),
+        "region_mean_extinction_mag": per_region,
+        "m50_dereddened_min": float(np.nanmin(m50)),
+        "m50_dereddened_max": float(np.nanmax(m50)),
+        "note": ("magnitudes are dereddened per source (m - R E(B-V) at its pixel), and the "
+                 "completeness limit of each part of the footprint moved brighter by its "
+                 "extinction"),
+    }
 
 
 def _depth_offsets(table: Any, depth: Any, footprint: Any) -> tuple[np.ndarray, float]:
@@ -284,6 +340,14 @@ def _stage_completeness(ctx: RunContext) -> StageResult:
             "m50_max": float(values.max()) if values.size else None,
             "shifted_injections": table.ra_deg is not None,
         }
+    extinction_info = None
+    if ctx.extinction is not None:
+        # Counts are in dereddened magnitudes: each part of the sky is complete to m50 - A.
+        from countscale.extinction import dereddened_depth
+
+        observed_depth = depth
+        depth = dereddened_depth(observed_depth, fit, ctx.extinction, ctx.footprint)
+        extinction_info = _extinction_shift(ctx, tally_result.regions, depth)
     per_region, total = cm.region_effective_areas(ctx.footprint, tally_result.regions, fit,
                                                   depth)
     recovery = cm.binned_recovery(fit_table, bin_width=0.1)
@@ -303,6 +367,7 @@ def _stage_completeness(ctx: RunContext) -> StageResult:
         "m90": fit.m90.to_json(),
         "params": {k: float(v) for k, v in fit.params_.items()},
         "depth_map": depth_info,
+        "extinction": extinction_info,
         "recovery": recovery.to_json(),
         "curve": {
             "mag": grid.tolist(),
@@ -316,35 +381,359 @@ def _stage_completeness(ctx: RunContext) -> StageResult:
                               "total": total})
 
 
-def _integral_with_bright_part(integral: Any, n_bright: int, area_deg2: float,
-                               rng: np.random.Generator) -> dict:
-    """N(<m) = sources observed brighter than the fit range + the model over the fit range.
+def run_cosmology(runfile: Any) -> Any:
+    """The run's cosmology from ``[cosmology]`` (a named realization or H0 and Om0)."""
+    from countscale.cosmology import get_cosmology
+
+    section = runfile.cosmology
+    if section.H0 is not None:
+        return get_cosmology(H0=section.H0, Om0=section.Om0)
+    return get_cosmology(section.name)
+
+
+#: Magnitude limits either side of the headline one at which the variance stage also reports
+#: the analytic cosmic variance (mag), and the areas of its figure's curve (deg^2).
+_VARIANCE_MAG_OFFSETS = np.arange(-3.0, 0.01, 0.5)
+_CURVE_AREAS_DEG2 = np.geomspace(1e-3, 41252.96, 47)
+
+
+def _variance_mag_limit(ctx: RunContext) -> tuple[float, str]:
+    """The magnitude limit of the variance stage's headline values, and where it came from."""
+    runfile = ctx.runfile
+    section = runfile.variance
+    tally_result = ctx.results["tally"]
+    if section.mag_limit is not None:
+        return float(section.mag_limit), "[variance] mag_limit"
+    edges = tally_result.mag_edges
+    if "counts" in runfile.present:
+        if runfile.counts.fit_range is not None:
+            return float(runfile.counts.fit_range[1]), "the faint end of [counts] fit_range"
+        completeness = ctx.results.get("completeness")
+        if completeness is not None:
+            from countscale import counts as ct
+
+            forward = ct.ForwardModel(edges, completeness["total"], None,
+                                      area_deg2=float(tally_result.area_deg2))
+            good = np.flatnonzero(forward.bin_completeness() >= 0.5)
+            if good.size:
+                return (float(edges[good[-1] + 1]),
+                        "the faint edge of the last magnitude bin at least 50 % complete")
+    return float(edges[-1]), "the faint edge of the magnitude bins"
+
+
+def _region_counts_brighter(tally_result: Any, completeness: Any,
+                            m_limit: float) -> tuple[np.ndarray, np.ndarray]:
+    """Per region: sources brighter than m_limit, completeness-corrected and raw.
+
+    Whole bins only (bins whose faint edge is at most m_limit), plus the sources brighter
+    than the first edge. With a completeness stage each bin's count in region k is divided by
+    the region's mean completeness over the bin, A_eff,k(m) / A_k.
+    """
+    edges = tally_result.mag_edges
+    histogram = tally_result.histogram[1:].sum(axis=2)  # (K, n_mag + 2)
+    used = np.flatnonzero(edges[1:] <= m_limit + 1e-9)
+    raw = histogram[:, 0] + histogram[:, used + 1].sum(axis=1)
+    if completeness is None:
+        return raw.astype(float), raw.astype(float)
+    areas = np.asarray(tally_result.region_area_deg2, dtype=float)
+    corrected = histogram[:, 0].astype(float)
+    for i in used:
+        grid = np.linspace(edges[i], edges[i + 1], 5)
+        for k, area_k in enumerate(completeness["per_region"]):
+            fraction = float(np.mean(np.asarray(area_k(grid), dtype=float))) / areas[k]
+            if fraction > 0:
+                corrected[k] += histogram[k, i + 1] / fraction
+    return corrected, raw.astype(float)
+
+
+def _nz_provider(ctx: RunContext,
+                 m_limit: float) -> tuple[Callable, str, list[str], list[str]]:
+    """The n(z) for each magnitude limit, its source, notes and warnings.
+
+    In order of preference: [variance] redshift_median (the user's explicit choice), the
+    luminosity-function stage's ``nz(z, m_limit)``, the catalogue's redshifts.
+    """
+    from countscale.variance import RedshiftDistribution
+
+    runfile, section = ctx.runfile, ctx.runfile.variance
+    notes: list[str] = []
+    cautions: list[str] = []
+    if section.redshift_median is not None:
+        fixed = RedshiftDistribution.from_median(section.redshift_median)
+        notes.append(f"n(z) is the parametric form with median z = "
+                     f"{section.redshift_median:g} from [variance] redshift_median, the same "
+                     "at every magnitude limit")
+        return (lambda m: fixed), fixed.source, notes, cautions
+    lf = ctx.results.get("luminosity_function")
+    lf_nz = None if lf is None else getattr(lf, "objects", {}).get("nz")
+    if lf_nz is not None:
+        def from_lf(m: float) -> Any:
+            z_max = 3.0
+            while True:
+                probe = np.linspace(0.0, z_max, 301)[1:]
+                values = np.asarray(lf_nz(probe, m), dtype=float)
+                if z_max >= 12.0 or not values.max() > 0 or values[-1] < 1e-4 * values.max():
+                    break
+                z_max *= 2.0
+            return RedshiftDistribution.from_function(
+                lambda z: lf_nz(z, m), z_max,
+                source=f"the luminosity function's n(z) for m < {m:g}")
+        notes.append("n(z) from the luminosity-function fit, integrated to each magnitude limit")
+        return from_lf, "the luminosity function's n(z)", notes, cautions
+    columns = ctx.results["tally"].columns or {}
+    if "redshift" in columns and "mag" in columns:
+        z = np.asarray(columns["redshift"], dtype=float)
+        mag = np.asarray(columns["mag"], dtype=float)
+        has_z = np.isfinite(z) & (z >= 0)
+        if has_z.any():
+            z_limit = float(mag[has_z].max())
+            if m_limit > z_limit + 0.05:
+                message = (f"the catalogue's redshifts reach only m = {z_limit:.4g}: n(z) for "
+                           f"sources brighter than {m_limit:g} is that of the sources brighter "
+                           f"than {z_limit:.4g}, which sit nearer and are less diluted by "
+                           "projection, so the cosmic variance is likely overestimated; give "
+                           "[variance] redshift_median or a [luminosity_function] section")
+                warnings.warn(message, UserWarning, stacklevel=3)
+                cautions.append(message)
+
+            def from_catalogue(m: float) -> Any:
+                chosen = has_z & (mag < m)
+                if chosen.sum() < 2:
+                    raise InputError(
+                        f"{runfile.location('catalog', 'redshift')}: fewer than 2 sources "
+                        f"brighter than m = {m:g} have a redshift; no n(z) for the cosmic "
+                        "variance")
+                return RedshiftDistribution.from_redshifts(z[chosen])
+            return from_catalogue, "the catalogue's redshifts", notes, cautions
+    raise InputError(
+        f"{runfile.location('variance')}: the analytic cosmic variance needs a redshift "
+        "distribution: give 'redshift_median', a [catalog] 'redshift' column or a "
+        "[luminosity_function] section")
+
+
+def _stage_variance(ctx: RunContext) -> StageResult:
+    """Cosmic variance of the footprint's mean density: jackknife and analytic, side by side.
+
+    Live objects: ``"sigma_cv"``, a :class:`countscale.variance.CosmicVariance` whose call
+    ``sigma_cv(m_limit)`` is the fractional cosmic variance of this footprint's mean surface
+    density of sources brighter than ``m_limit`` (``sigma_cv.sigma(m, mask=...)`` for another
+    footprint); absent when ``[variance].methods`` has no "analytic".
+    """
+    from countscale import variance as vr
+
+    runfile, section = ctx.runfile, ctx.runfile.variance
+    tally_result = ctx.results["tally"]
+    completeness = ctx.results.get("completeness")
+    area = float(tally_result.area_deg2)
+    m_limit, m_limit_source = _variance_mag_limit(ctx)
+    corrected, raw = _region_counts_brighter(tally_result, completeness, m_limit)
+    n_raw = float(raw.sum())
+    if n_raw <= 0:
+        raise InputError(f"{runfile.location('variance')}: no source brighter than m = "
+                         f"{m_limit:g} ({m_limit_source}); no density to estimate a variance for")
+    poisson = 1.0 / math.sqrt(n_raw)
+    density = float(corrected.sum()) / area
+    data: dict[str, Any] = {
+        "methods": list(section.methods),
+        "m_limit": m_limit,
+        "m_limit_source": m_limit_source,
+        "area_deg2": area,
+        "n_sources": int(n_raw),
+        "density_per_deg2": density,
+        "poisson_fraction": poisson,
+        "jackknife": None,
+        "analytic": None,
+        "comparison": None,
+        "warnings": [],
+    }
+    objects: dict[str, Any] = {}
+    jackknife = None
+    if "jackknife" in section.methods:
+        if tally_result.n_regions >= 3:
+            jackknife = vr.jackknife_density(corrected, tally_result.region_area_deg2, raw)
+            data["jackknife"] = jackknife.to_json()
+        else:
+            data["warnings"].append(f"{tally_result.n_regions} regions: too few for a "
+                                    "jackknife (at least 3)")
+    analytic = "analytic" in section.methods
+    if analytic and runfile.catalog.population == "stars":
+        analytic = False
+        data["warnings"].append(
+            "no analytic cosmic variance for stars: it describes galaxies tracing the "
+            "large-scale structure; stars' field-to-field scatter is the Galaxy's structure "
+            "(galactic latitude), so the counts' errors use the jackknife")
+    if analytic:
+        cosmology = run_cosmology(runfile)
+        power = vr.linear_power(cosmology, sigma8=section.sigma8, n_s=section.n_s,
+                                wiggles=section.wiggles)
+        mask = vr.footprint_mask_spectrum(ctx.footprint)
+        provider, nz_source, nz_notes, nz_cautions = _nz_provider(ctx, m_limit)
+        cv = vr.cosmic_variance(power, mask, provider, bias=section.bias, nz_source=nz_source)
+        sigma = cv(m_limit)
+        spectrum = cv.spectrum(m_limit)
+        nz = spectrum.nz
+        ell = np.unique(np.round(np.geomspace(1.0, mask.lmax, 60)))
+        limits = m_limit + _VARIANCE_MAG_OFFSETS
+        data["analytic"] = {
+            "sigma_cv": sigma,
+            "m_limit": m_limit,
+            "nz": nz.to_json(),
+            "bias": section.bias,
+            "power_spectrum": {
+                "model": "Eisenstein & Hu 1998, "
+                         + ("with baryon wiggles" if section.wiggles else "no-wiggle"),
+                "cosmology": str(cosmology.name),
+                "sigma8": power.sigma8,
+                "n_s": power.n_s,
+                "nonlinear_correction": None,
+            },
+            "angular_spectrum": {
+                "method": spectrum.method,
+                "ell": [float(v) for v in ell],
+                "cl": [float(v) for v in spectrum(ell)],
+            },
+            "mask": {"method": mask.method, "area_deg2": mask.area_deg2},
+            "by_mag_limit": {
+                "m_limit": [float(v) for v in limits],
+                "sigma_cv": [float(cv(v)) for v in limits],
+            },
+            "notes": [*power.notes, *nz_notes,
+                      "linear theory: no non-linear correction (an underestimate where "
+                      "small scales matter: small fields, bright nearby samples)"],
+        }
+        data["poisson_over_cosmic_variance"] = poisson / sigma if sigma > 0 else None
+        data["total_fraction"] = math.hypot(poisson, sigma)
+        areas = _CURVE_AREAS_DEG2[_CURVE_AREAS_DEG2 * density >= 1.0]  # at least one source
+        curve = vr.caps_curve(cv.spectrum(m_limit, lmax=2e5), areas, density_per_deg2=density)
+        curve["layout"] = "one circular field of each area"
+        curve["footprint"] = {"area_deg2": area, "cosmic_variance": sigma,
+                              "poisson": poisson}
+        data["area_curve"] = curve
+        objects["sigma_cv"] = cv
+        if jackknife is not None:
+            comparison = vr.compare_methods(sigma, jackknife)
+            data["comparison"] = comparison
+            if comparison["warning"]:
+                warnings.warn(comparison["warning"], UserWarning, stacklevel=2)
+                data["warnings"].append(comparison["warning"])
+        data["warnings"] += nz_cautions
+    return StageResult(data, objects)
+
+
+def _integral_with_bright_part(fit: Any, m_limit: float, n_bright: int, area_deg2: float,
+                               rng: np.random.Generator, sigma_cv: float | None = None) -> dict:
+    """N(<m): sources observed brighter than the fit range + the model over the fit range.
 
     The survey is taken as complete brighter than the fit range, so those sources are counted
-    as observed, with Poisson draws for their error; the model part keeps its own draws
-    (Poisson + clustering). Budget shares are of the variance of the total (for small
-    relative errors, the same shares as of its log10).
+    as observed, with Poisson draws for their error; the model part keeps its own draws.
+    Two quantities, each an Estimate, labelled in the result:
+
+    * this field's realised density (``per_deg2_this_field``): Poisson noise only (the fit's
+      Poisson covariance), the number of sources this footprint actually holds per deg²;
+    * the population's mean density (``per_deg2``): with ``sigma_cv`` (the analytic cosmic
+      variance of this footprint's mean density) the realised draws are multiplied by
+      lognormal factors of median 1 and rms ``sigma_cv`` (Poisson ⊕ cosmic variance; the
+      analytic term includes the scales a jackknife sees and the larger ones, so the
+      jackknife is not added as well). Without it, the fit's reported covariance (Poisson +
+      the jackknife's clustering excess, which misses modes larger than the footprint).
+
+    Budget shares are of the variance of log10 of each quantity.
     """
     from countscale.estimate import Estimate
+    from countscale.variance import lognormal_factor_draws
 
-    model_total = integral.total
-    draws = np.asarray(model_total.draws, dtype=float)
-    bright = rng.poisson(max(n_bright, 0), size=draws.size).astype(float)
-    total = draws + bright
-    var_model, var_bright = float(np.var(draws)), float(n_bright)
-    shares = {k: v * var_model for k, v in model_total.budget.items()}
-    shares["poisson"] = shares.get("poisson", 0.0) + var_bright
-    norm = sum(shares.values()) or 1.0
-    budget = {k: v / norm for k, v in shares.items()}
-    total_estimate = Estimate.from_draws(total, "sources", budget=budget)
-    per_deg2 = Estimate.from_draws(total / area_deg2, "deg^-2", budget=budget)
+    def with_bright(integral: Any) -> tuple[np.ndarray, dict]:
+        draws = np.asarray(integral.total.draws, dtype=float)
+        bright = rng.poisson(max(n_bright, 0), size=draws.size).astype(float)
+        total = draws + bright
+        var_model, var_bright = float(np.var(draws)), float(n_bright)
+        shares = {k: v * var_model for k, v in integral.total.budget.items()}
+        shares["poisson"] = shares.get("poisson", 0.0) + var_bright
+        norm = sum(shares.values()) or 1.0
+        return total, {k: v / norm for k, v in shares.items()}
+
+    field_total, _ = with_bright(fit.integral_counts(m_limit, area_deg2=area_deg2, rng=rng,
+                                                     covariance="poisson"))
+    field_budget = {"poisson": 1.0}
+    if sigma_cv is not None:
+        factors = lognormal_factor_draws(sigma_cv, field_total.size, rng)
+        population_total = field_total * factors
+        var_poisson = float(np.var(np.log10(field_total)))
+        var_cv = math.log1p(sigma_cv**2) / math.log(10.0) ** 2
+        norm = (var_poisson + var_cv) or 1.0
+        population_budget = {"poisson": var_poisson / norm, "cosmic_variance": var_cv / norm}
+        clustering = {
+            "method": "analytic",
+            "sigma_cv": float(sigma_cv),
+            "note": ("analytic cosmic variance of this footprint's mean density (variance "
+                     "stage): all scales, including those larger than the footprint"),
+        }
+    else:
+        population_total, population_budget = with_bright(
+            fit.integral_counts(m_limit, area_deg2=area_deg2, rng=rng))
+        clustering = {
+            "method": "jackknife" if fit.n_regions_ else "none",
+            "sigma_cv": None,
+            "note": ("jackknife over footprint regions: misses modes larger than the "
+                     "footprint, so the interval is too narrow for the population's mean; "
+                     "add a [variance] section for the analytic term"
+                     if fit.n_regions_ else
+                     "no clustering term: Poisson only (add a [variance] section)"),
+        }
+    population = Estimate.from_draws(population_total / area_deg2, "deg^-2",
+                                     budget=population_budget)
+    this_field = Estimate.from_draws(field_total / area_deg2, "deg^-2", budget=field_budget)
     return {
-        "m_limit": float(integral.m_limit),
+        "m_limit": float(m_limit),
         "area_deg2": float(area_deg2),
-        "per_deg2": per_deg2.to_json(),
-        "total": total_estimate.to_json(),
+        "per_deg2": population.to_json(),
+        "total": Estimate.from_draws(population_total, "sources",
+                                     budget=population_budget).to_json(),
+        "per_deg2_this_field": this_field.to_json(),
+        "total_this_field": Estimate.from_draws(field_total, "sources",
+                                                budget=field_budget).to_json(),
+        "definitions": {
+            "per_deg2": "the population's mean surface density (what extrapolation to other "
+                        "areas needs): Poisson noise and cosmic variance",
+            "total": "per_deg2 times this footprint's area: the expected number in a "
+                     "footprint of this area",
+            "per_deg2_this_field": "this footprint's realised surface density: Poisson noise "
+                                   "only (clustering made it what it is)",
+            "total_this_field": "the number of sources this footprint holds: Poisson noise "
+                                "only",
+        },
+        "cosmic_variance": clustering,
         "n_observed_brighter": int(n_bright),
-        "model_part": integral.to_json(),
+    }
+
+
+def _normalisation(fit: Any, sigma_cv: float | None) -> dict | None:
+    """log10_norm for the population's mean (Poisson ⊕ cosmic variance) and this field."""
+    from countscale.estimate import Estimate
+
+    names = fit.model_.param_names
+    if sigma_cv is None or "log10_norm" not in names:
+        return None
+    i = names.index("log10_norm")
+    value = float(fit.params_["log10_norm"])
+    var_poisson = float(fit.cov_poisson_[i, i])
+    var_cv = math.log1p(sigma_cv**2) / math.log(10.0) ** 2
+    total = var_poisson + var_cv
+    unit = fit.estimates_["log10_norm"].unit
+    return {
+        "reference_mag": float(fit.model_.reference_mag),
+        "log10_norm": Estimate.from_normal(
+            value, math.sqrt(total), unit,
+            budget={"poisson": var_poisson / total, "cosmic_variance": var_cv / total},
+        ).to_json(),
+        "log10_norm_this_field": Estimate.from_normal(
+            value, math.sqrt(var_poisson), unit, budget={"poisson": 1.0}).to_json(),
+        "definitions": {
+            "log10_norm": "the population's mean normalisation: Poisson noise and the "
+                          "analytic cosmic variance",
+            "log10_norm_this_field": "this footprint's realised normalisation: Poisson noise "
+                                     "only",
+        },
     }
 
 
@@ -414,8 +803,10 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     m_limit = float(main.fit_range_[1])
     edges = tally_result.mag_edges
     n_bright = int(tally_result.n_brighter + observed[edges[1:] <= fit_lo].sum())
-    integral = _integral_with_bright_part(
-        main.integral_counts(m_limit, area_deg2=area, rng=ctx.rng), n_bright, area, ctx.rng)
+    variance = ctx.results.get("variance")
+    cosmic = None if variance is None else getattr(variance, "objects", {}).get("sigma_cv")
+    sigma_cv = None if cosmic is None else float(cosmic(m_limit))
+    integral = _integral_with_bright_part(main, m_limit, n_bright, area, ctx.rng, sigma_cv)
     differential = main.differential_counts()
     preferred = None
     if comparison is not None:
@@ -425,8 +816,7 @@ def _stage_counts(ctx: RunContext) -> StageResult:
                 "model": best,
                 "criterion": "BIC",
                 "integral_counts": _integral_with_bright_part(
-                    fits[best].integral_counts(m_limit, area_deg2=area, rng=ctx.rng),
-                    n_bright, area, ctx.rng),
+                    fits[best], m_limit, n_bright, area, ctx.rng, sigma_cv),
             }
     grid = np.arange(tally_result.mag_edges[0], tally_result.mag_edges[-1] + 1e-9,
                      _CURVE_STEP_MAG)
@@ -444,6 +834,7 @@ def _stage_counts(ctx: RunContext) -> StageResult:
                      "the fit range"),
         },
         "preferred": preferred,
+        "normalisation": _normalisation(main, sigma_cv),
         "differential": differential.to_json(),
         "expected_counts": np.asarray(main.expected_counts_, dtype=float).tolist(),
         "scatter": None if scatter is None else scatter.to_json(),
@@ -457,12 +848,520 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     return StageResult(data, {"fit": main, "fits": fits, "forward": forward})
 
 
-#: The stages, in order. Later issues append luminosity_function, variance, totals.
+#: Parameter draws kept for the luminosity function's Estimates and the STY curve's band.
+_LF_DRAWS = 1000
+#: Points of the STY curve stored for the figure.
+_LF_CURVE_POINTS = 200
+
+
+def _run_cosmology(runfile: Any) -> Any:
+    """The run's astropy cosmology from ``[cosmology]`` (Planck18 when absent)."""
+    from countscale import cosmology
+
+    section = runfile.cosmology
+    if section.H0 is not None:
+        return cosmology.get_cosmology(H0=section.H0, Om0=section.Om0)
+    return cosmology.get_cosmology(section.name)
+
+
+def _lf_columns(runfile: Any) -> tuple[str, ...]:
+    """Tally columns the luminosity-function stage reads (positions only with a depth map)."""
+    section = runfile.luminosity_function
+    columns = ["mag", "redshift", "region"]
+    if section.quantity == "stellar_mass":
+        columns.append("stellar_mass")
+    if runfile.catalog.redshift_error is not None:
+        columns.append("redshift_error")
+    if "completeness" in runfile.present and runfile.completeness.depth_map is not None:
+        columns += ["ra", "dec"]
+    return tuple(columns)
+
+
+def _completeness_weights(ctx: RunContext, mag: np.ndarray, columns: Mapping[str, Any],
+                          cap: float, mag_limits: tuple[float, float]
+                          ) -> tuple[np.ndarray | None, dict | None]:
+    """1 / completeness at each source's magnitude (and position, with a depth map), capped.
+
+    The counts in the returned summary are of sources inside the apparent limits.
+    """
+    completeness = ctx.results.get("completeness")
+    if completeness is None:
+        return None, None
+    depth = completeness["depth"]
+    if depth is not None and "ra" in columns:
+        value = np.asarray(depth.completeness_at(mag, columns["ra"], columns["dec"]), float)
+        how = "at each source's magnitude and position (depth map)"
+    else:
+        value = np.asarray(completeness["fit"](mag), dtype=float)
+        how = "at each source's magnitude (one curve for the footprint)"
+    value = np.where(np.isfinite(value), value, 0.0)
+    weight = 1.0 / np.maximum(value, 1.0 / cap)
+    inside = (mag >= mag_limits[0]) & (mag <= mag_limits[1])
+    return weight, {"how": how, "cap": cap,
+                    "n_capped": int((inside & (value < 1.0 / cap)).sum()),
+                    "n_below_half": int((inside & (value < 0.5)).sum()),
+                    "min_completeness": float(value[inside].min()) if inside.any() else None}
+
+
+def _ellipse(centre: np.ndarray, cov: np.ndarray, delta_chi2: float, n: int = 121
+             ) -> np.ndarray:
+    """Points of the ellipse (x - c)^T C^-1 (x - c) = delta_chi2, shape (2, n)."""
+    t = np.linspace(0.0, 2.0 * np.pi, n)
+    values, vectors = np.linalg.eigh(cov)
+    circle = np.stack([np.cos(t), np.sin(t)])
+    return centre[:, None] + vectors @ (np.sqrt(np.maximum(values, 0.0) * delta_chi2)[:, None]
+                                        * circle)
+
+
+def _stage_luminosity_function(ctx: RunContext) -> StageResult:
+    """Luminosity (or stellar-mass) function: STY, 1/Vmax and SWML.
+
+    Reads the tally's per-source magnitudes, redshifts (and stellar masses, redshift errors,
+    positions), the footprint's measured solid angle and its regions, and the completeness
+    stage when it ran (weights 1 / completeness, capped at ``weight_cap``).
+
+    ``results["luminosity_function"]``: ``quantity``, ``selection``, ``sample`` (every source
+    left out, counted by reason), ``sty`` (the fitted parameters as Estimates under their
+    published names, ``covariance``, ``evolution``, densities, ``curve`` with its 68 % band,
+    ``ellipse``), ``vmax`` and ``swml`` (``mag`` or ``log10_mass``, ``phi``, ``phi_err``,
+    ``n`` per bin; phi per Mpc^3 per mag or dex with the run's H0), ``notes``.
+
+    Live objects (``StageResult.objects``), for the stages after it:
+
+    ``fit``
+        The :class:`countscale.lumfunc.STYFit`: ``form_`` (the fitted form at z = 0,
+        normalisation included), ``cov_`` with ``cov_names_`` (its parameter covariance),
+        ``evolution_``, ``params_``. None if STY could not be fitted and was not asked for.
+    ``model``
+        ``fit.form_`` (a Schechter, SchechterMass or DoubleSchechterMass).
+    ``evolution``
+        ``fit.evolution_`` (Lin et al. 1999 Q and P).
+    ``draw_params``
+        ``draw_params(n, rng) -> dict of arrays``: parameter sets drawn from the fit's
+        uncertainty (published names, ``Q``, ``P``; the normalisation correlated with the
+        shape).
+    ``draws``
+        The draws the Estimates were made from (``_LF_DRAWS`` of them).
+    ``nz``
+        ``nz(z, m_limit, area_sr=None) -> ndarray``: the predicted redshift distribution
+        dN/dz (per sr, or over ``area_sr``) of sources brighter than apparent magnitude
+        ``m_limit``, from the STY fit with its evolution and K-correction in the run's
+        cosmology; beyond the fitted redshift range the evolution and K-correction are
+        extrapolated (``fit_redshift_range`` says where that starts). Luminosity functions
+        only (None for a mass function).
+    ``fit_redshift_range``
+        The redshift range the fit used.
+    ``estimates``
+        Dict of :class:`countscale.estimate.Estimate` (with their draws).
+    ``sample``, ``selection``, ``vmax``, ``swml``
+        The :class:`countscale.lumfunc.Sample`, its Selection and the binned estimates.
+    """
+    from countscale import cosmology as cs
+    from countscale import lumfunc as lf
+
+    runfile, section = ctx.runfile, ctx.runfile.luminosity_function
+    tally_result = ctx.results["tally"]
+    columns = tally_result.columns
+    where = runfile.location("luminosity_function")
+    notes: list[str] = []
+    try:
+        kcorrection = cs.as_kcorrection(section.kcorrection)
+    except (InputError, InputTypeError) as exc:
+        raise InputError(f"{runfile.location('luminosity_function', 'kcorrection')}: {exc}"
+                         ) from None
+    evolution = lf.Evolution(Q=section.evolution.Q, P=section.evolution.P)
+    try:
+        selection = lf.Selection(section.mag_limits, section.redshift_range,
+                                 float(ctx.footprint.area_sr), _run_cosmology(runfile),
+                                 kcorrection, evolution)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+    mag = np.asarray(columns["mag"], dtype=float)
+    weight, weight_info = _completeness_weights(ctx, mag, columns, section.weight_cap,
+                                                section.mag_limits)
+    region = columns.get("region")
+    region_area_sr = np.asarray(tally_result.region_area_deg2, dtype=float) * (np.pi / 180) ** 2
+    if region is not None and (np.asarray(region) < 0).any():
+        notes.append("some sources fall in no jackknife region: errors of the normalisation "
+                     "are Poisson only")
+        region = None
+    mass = columns.get("stellar_mass") if section.quantity == "stellar_mass" else None
+    try:
+        sample = selection.select(
+            mag, np.asarray(columns["redshift"], dtype=float), weight=weight,
+            region=None if region is None else np.asarray(region),
+            region_area_sr=None if region is None else region_area_sr,
+            log10_mass=None if mass is None else np.asarray(mass, dtype=float),
+            redshift_error=(None if "redshift_error" not in columns
+                            else np.asarray(columns["redshift_error"], dtype=float)),
+            mass_limit_quantile=section.mass_limit_quantile,
+        )
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+
+    methods = section.methods
+    fit = draws = estimates = None
+    try:
+        fit = lf.STYFit(model=section.model, fit_evolution=section.fit_evolution or ()
+                        ).fit(sample)
+    except lf.LuminosityFunctionFitError as exc:
+        if "sty" in methods:
+            raise
+        notes.append(f"STY could not be fitted ({exc}); later stages have no model")
+    q = fit.evolution_.Q if fit is not None else evolution.Q
+    p = fit.evolution_.P if fit is not None else evolution.P
+    width = section.bin_width or (0.25 if sample.quantity == "luminosity" else 0.1)
+    edges = lf.bin_edges(sample.x(q), width)
+    vmax = lf.vmax_estimate(sample, edges=edges, Q=q, P=p) if "vmax" in methods else None
+    swml = lf.swml_estimate(sample, edges=edges, Q=q, P=p) if "swml" in methods else None
+
+    x_name = sample.x_name
+    data: dict[str, Any] = {
+        "quantity": sample.quantity,
+        "x_name": x_name,
+        "x_unit": sample.x_unit,
+        "methods": list(methods),
+        "selection": selection.describe(),
+        "kcorrection": (None if section.kcorrection is None
+                        else _plain_table(section.kcorrection)),
+        "sample": sample.describe(),
+        "completeness_weights": weight_info,
+    }
+    if fit is not None:
+        draws = fit.draw_params(_LF_DRAWS, ctx.rng)
+        estimates = fit.estimates(draws=draws)
+        sty = fit.to_json(estimates)
+        lo_x, hi_x = float(edges[0]), float(edges[-1])
+        grid = np.linspace(lo_x, hi_x, _LF_CURVE_POINTS)
+        curves = np.array([fit.form_from_draws(draws, i).density(grid)
+                           for i in range(_LF_DRAWS)])
+        sty["curve"] = {
+            x_name: grid.tolist(),
+            "phi": np.asarray(fit.form_.density(grid), dtype=float).tolist(),
+            "band_lo": np.percentile(curves, 16, axis=0).tolist(),
+            "band_hi": np.percentile(curves, 84, axis=0).tolist(),
+        }
+        names = list(fit.cov_names_[:2])
+        index = [fit.cov_names_.index(n) for n in names]
+        centre = np.array([fit.params_[n] for n in names])
+        sub = fit.cov_[np.ix_(index, index)]
+        # Delta chi^2 = 2.30 and 6.18 enclose 68.3 % and 95.4 % for two parameters jointly
+        # (Press et al. 2007, Numerical Recipes 3rd ed., section 15.6).
+        sty["ellipse"] = {
+            "names": names,
+            "centre": centre.tolist(),
+            "levels": [0.683, 0.954],
+            "delta_chi2": [2.30, 6.18],
+            "points": [_ellipse(centre, sub, d).tolist() for d in (2.30, 6.18)],
+        }
+        if "sty" in methods:
+            data["sty"] = sty
+    if vmax is not None:
+        data["vmax"] = vmax.to_json()
+    if swml is not None:
+        swml_json = swml.to_json()
+        data["swml"] = swml_json
+    data["notes"] = notes + _lf_notes(sample, fit, vmax, weight_info, estimates)
+    nz = None
+    if fit is not None and sample.quantity == "luminosity":
+        nz = fit.nz
+    objects = {
+        "fit": fit, "model": None if fit is None else fit.form_,
+        "evolution": None if fit is None else fit.evolution_,
+        "draw_params": None if fit is None else fit.draw_params,
+        "draws": draws, "nz": nz, "fit_redshift_range": selection.redshift_range,
+        "estimates": estimates or {}, "sample": sample, "selection": selection,
+        "vmax": vmax, "swml": swml,
+    }
+    return StageResult(data, objects)
+
+
+def _plain_table(value: Any) -> Any:
+    if isinstance(value, Mapping):
+        return {k: _plain_table(v) for k, v in value.items()}
+    if isinstance(value, tuple | list):
+        return [_plain_table(v) for v in value]
+    return value
+
+
+def _lf_notes(sample: Any, fit: Any, vmax: Any, weight_info: dict | None,
+              estimates: dict | None = None) -> list[str]:
+    notes = []
+    if weight_info is not None:
+        notes.append(
+            f"each galaxy is weighted by 1 / completeness {weight_info['how']}, capped at "
+            f"{weight_info['cap']:g}; of the sources inside the apparent limits, "
+            f"{weight_info['n_below_half']:,d} are less than 50 % complete and "
+            f"{weight_info['n_capped']:,d} less complete than the cap corrects (their weight is "
+            "the cap)")
+    else:
+        notes.append("no [completeness] section: the catalogue is taken as complete inside "
+                     "the apparent limits")
+    if sample.redshift_sampling is not None:
+        notes.append(sample.redshift_sampling["assumption"])
+    if fit is not None:
+        evo = fit.evolution_
+        fitted = fit.fitted_evolution_
+        names = ("Q", "P") if sample.quantity == "luminosity" else ("P",)
+        fixed = [n for n in names if n not in fitted]
+        if fixed:
+            notes.append("evolution " + ", ".join(f"{n} = {getattr(evo, n):g}" for n in fixed)
+                         + " taken from the run file, not fitted")
+        if "P" in fitted:
+            notes.append("P is fitted from the redshift distribution, which also feels "
+                         "large-scale structure along the line of sight; its error does not "
+                         "hold that")
+        density = ("luminosity_density_mag" if sample.quantity == "luminosity"
+                   else "mass_density_msun_mpc3")
+        if estimates is not None and density not in estimates:
+            notes.append(f"no {density.split('_density')[0]} density: alpha <= -2 in some "
+                         "parameter draws, where the total diverges (the number density down "
+                         "to the sample's faintest galaxy is given)")
+        if fit.normalisation_["jackknife_relative_variance"] is not None:
+            notes.append("the normalisation's cosmic variance is the jackknife's over the "
+                         "footprint's regions, which cannot see structure larger than the "
+                         "footprint: an underestimate (the [variance] stage gives the analytic "
+                         "value)")
+        if sample.n < 1000:
+            notes.append(f"STY on {sample.n} galaxies: with a few hundred galaxies the fitted "
+                         "faint-end slope and normalisation are biased and their errors "
+                         "underestimated for steep slopes (Willmer 1997, AJ 114, 898)")
+    if vmax is not None and not np.all(vmax.complete):
+        notes.append("1/Vmax bins marked incomplete hold luminosities no galaxy could have "
+                     "everywhere in the bin; their 1/Vmax average covers only the visible part")
+    if sample.redshift_error is not None:
+        notes.append("photometric redshifts: STY convolves the form with each galaxy's "
+                     "redshift error (Gaussian, through dm/dz); 1/Vmax and SWML take the "
+                     "redshifts as exact")
+    return notes
+
+
+#: The stages, in order (a totals stage goes last, with a later issue).
+
+
+def _wants_contamination(runfile: Any) -> bool:
+    return runfile.catalog.classifier is not None or "contamination" in runfile.present
+
+
+def _stage_contamination(ctx: RunContext) -> StageResult:
+    """Stars among the sources per magnitude bin: from the classifier, or a star catalogue.
+
+    With ``[catalog] classifier`` the tally already left the stars out of every count (and of
+    the fits); this reports how many it left out per bin. With ``[contamination]`` a star
+    catalogue of the same survey is tallied over the same footprint, bins and extinction and
+    subtracted bin by bin; the earlier count fit saw the uncorrected counts.
+    """
+    from countscale import contamination as cn
+
+    runfile = ctx.runfile
+    tally_result = ctx.results["tally"]
+    edges = tally_result.mag_edges
+    if runfile.catalog.classifier is not None:
+        result = cn.from_classifier(tally_result.counts, tally_result.excluded_counts, edges)
+        notes = [f"sources with [catalog] classifier >= {_classifier_threshold(runfile):g} "
+                 "are stars: the tally left them out of every count and fit "
+                 f"(ledger reason {tally_result.excluded_reason})"]
+        return StageResult({**result.to_json(), "notes": notes}, {"contamination": result})
+    from countscale.catalog import CatalogSource
+    from countscale.tally import tally
+
+    section = runfile.contamination
+    columns = {k: section.columns[k] or runfile.catalog[k] for k in ("ra", "dec", "mag")}
+    where = runfile.location("contamination", "star_catalog")
+    try:
+        source = CatalogSource(list(section.star_catalog), population="stars", **columns)
+        stars = tally(source, ctx.footprint, regions=tally_result.regions, mag_bins=edges,
+                      columns=(), engine=ctx.engine, scheduler=ctx.scheduler,
+                      chunk_rows=runfile.engine.chunk_rows, progress=ctx.progress,
+                      extinction=ctx.extinction)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+    result = cn.subtract_stars(tally_result.counts, stars.counts, edges)
+    notes = [
+        "stars from the star catalogue in each bin were subtracted from the catalogue's sources; "
+        "their Poisson error is added to the galaxies' (conservative when the star catalogue "
+        "lists the very stars of the galaxy catalogue)",
+        "the number-count fit above used the uncorrected counts (stars included); use the "
+        "corrected counts here, or a classifier column, where stars matter",
+    ]
+    data = {**result.to_json(), "star_catalog_ledger": stars.ledger.to_dict(), "notes": notes}
+    return StageResult(data, {"contamination": result, "star_tally": stars})
+
+
+def _classifier_threshold(runfile: Any) -> float:
+    from countscale.catalog import DEFAULT_CLASSIFIER_THRESHOLD
+
+    value = runfile.catalog.classifier_threshold
+    return DEFAULT_CLASSIFIER_THRESHOLD if value is None else float(value)
+
+
+def _sky_mag_limit(runfile: Any) -> float | None:
+    if runfile.sky_model.mag_limit is not None:
+        return float(runfile.sky_model.mag_limit)
+    limit = runfile.totals.whole_sky_mag_limit
+    return None if limit is None else float(limit)
+
+
+def _wants_sky_model(runfile: Any) -> bool:
+    asked = runfile.catalog.population == "stars" or "sky_model" in runfile.present
+    return asked and _sky_mag_limit(runfile) is not None
+
+
+def _covariate_maps(runfile: Any, ctx: RunContext) -> list:
+    from countscale.skymodel import CovariateMap
+
+    maps = []
+    for i, item in enumerate(runfile.sky_model.maps or ()):
+        try:
+            maps.append(CovariateMap.read(item.name, item.path, nest=item.nest,
+                                          transform=item.transform))
+        except InputError as exc:
+            raise InputError(f"{runfile.location('sky_model', f'maps[{i}]')}: {exc}") from None
+    if ctx.extinction is not None:
+        maps.append(CovariateMap("ebv", ctx.extinction.ebv, nest=ctx.extinction.nest,
+                                 path=ctx.extinction.path))
+    return maps
+
+
+def _stage_sky_model(ctx: RunContext) -> StageResult:
+    """Fit the counts per field/region on sky covariates; integrate over the target sky.
+
+    Live objects for later stages (the totals stage reads these): ``model`` (the fitted
+    :class:`countscale.skymodel.SkyModel`), ``prediction`` (its
+    :class:`~countscale.skymodel.SkyPrediction` over the target: ``total`` Estimate with draws,
+    ``fraction_outside_area``/``fraction_outside_total``, ``warnings``), ``draws`` (the total's
+    Monte Carlo draws), ``naive`` (plain area scaling, an Estimate), ``target`` (the target
+    Footprint), ``units`` (the fitted :class:`~countscale.skymodel.SkyUnits`) and ``mag_limit``.
+    """
+    from countscale import skymodel as sk
+    from countscale.tally import CELL_ORDER
+
+    runfile = ctx.runfile
+    section = runfile.sky_model
+    tally_result = ctx.results["tally"]
+    mag_limit = _sky_mag_limit(runfile)
+    columns = tally_result.columns
+    brighter = columns["mag"] < mag_limit
+    notes = []
+    completeness = ctx.results.get("completeness")
+    kappa = None
+    if completeness is not None:
+        counts = ctx.results.get("counts")
+        density = None
+        if counts is not None:
+            model = counts["fit"].model_
+            density = model.density
+        kappa = sk.cell_completeness(mag_limit, completeness["fit"], completeness["depth"],
+                                     density=density)
+    else:
+        notes.append("no [completeness] section: the counts brighter than the limit are taken "
+                     "as complete")
+    units = sk.SkyUnits.from_footprint(ctx.footprint, columns["cell"][brighter],
+                                       source_order=CELL_ORDER, regions=tally_result.regions,
+                                       completeness=kappa)
+    low = units.completeness[units.area_deg2 > 0]
+    if low.size and low.min() < 0.9:
+        notes.append(f"completeness of the sources brighter than {mag_limit:g} falls to "
+                     f"{low.min():.2f} in places: the total leans on the completeness model "
+                     "there")
+    maps = _covariate_maps(runfile, ctx)
+    sets = section.covariate_sets
+    if sets is None:
+        if runfile.catalog.population == "stars":
+            sets = sk.DEFAULT_STAR_SETS
+        else:
+            names = tuple(m.name for m in maps)
+            sets = ((), names) if names else ((),)
+    where = runfile.location("sky_model")
+    try:
+        model = sk.SkyModel(sets, section.likelihood).fit(units, maps)
+        target = sk.target_sky_footprint(runfile.totals.target_sky)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", sk.SkyModelWarning)  # reported in results
+            prediction = model.predict(target, nside=section.nside, n_draws=section.draws,
+                                       rng=ctx.rng)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+    for text in prediction.warnings:
+        warnings.warn(text, sk.SkyModelWarning, stacklevel=2)
+    n_observed = int(units.counts.sum())
+    naive = sk.naive_total(n_observed, tally_result.area_deg2, prediction.target_area_deg2,
+                           n_draws=section.draws, rng=ctx.rng)
+    l_deg, b_deg = units.unit_lb()
+    best = model.best_
+    fit_warnings = []
+    for fit in model.fits_:
+        if fit.likelihood_ == "poisson" and fit.dof_ > 0 and fit.pearson_chi2_ / fit.dof_ > 2:
+            ratio = fit.pearson_chi2_ / fit.dof_
+            fit_warnings.append(
+                f"covariates {list(fit.names_)}: the counts scatter {ratio:.1f} times more than "
+                "Poisson between units; the negative-binomial likelihood would widen the "
+                "interval accordingly")
+    naive_ratio = naive.median / prediction.total.median if prediction.total.median > 0 else None
+    data = {
+        "mag_limit": mag_limit,
+        "population": runfile.catalog.population,
+        "target_sky": {
+            "items": ([item.to_dict() for item in runfile.totals.target_sky]
+                      if runfile.totals.target_sky is not None else "whole sky"),
+            "area_deg2": prediction.target_area_deg2,
+            "nside": prediction.nside,
+        },
+        "total": prediction.total.to_json(),
+        "naive": naive.to_json(),
+        "naive_over_model": naive_ratio,
+        "naive_note": ("plain area scaling: the sources observed brighter than the limit times "
+                       "target area / surveyed area, as if the population were the same "
+                       "everywhere and the survey complete"),
+        "fraction_outside_observed_range": {
+            "area": prediction.fraction_outside_area,
+            "total": prediction.fraction_outside_total,
+        },
+        "model": model.to_json(),
+        "prediction": prediction.to_json(),
+        "units": {
+            "n_units": units.n_units,
+            "n_fields": units.n_fields,
+            "order": units.order,
+            "n_observed": n_observed,
+            "l_deg": l_deg.tolist(),
+            "b_deg": b_deg.tolist(),
+            "counts": units.counts.tolist(),
+            "area_deg2": units.unit_area_deg2.tolist(),
+            "exposure_deg2": units.unit_exposure_deg2.tolist(),
+            "expected_best": best.expected_.tolist(),
+            "completeness_min": float(low.min()) if low.size else None,
+        },
+        "extinction": None if ctx.extinction is None else {
+            "note": "counts are in dereddened magnitudes (see the tally and completeness)"},
+        "warnings": [*prediction.warnings, *fit_warnings],
+        "notes": notes + list(model.notes_),
+    }
+    objects = {"model": model, "prediction": prediction, "draws": prediction.draws,
+               "naive": naive, "target": target, "units": units, "mag_limit": mag_limit}
+    return StageResult(data, objects)
+
+
+#: The stages, in order. A later issue adds totals (after sky_model).
 STAGES: list[Stage] = [
-    Stage("tally", ("catalog", "footprint"), _stage_tally),
+    Stage("tally", ("catalog", "footprint"), _stage_tally, reads=("extinction",)),
     Stage("completeness", ("completeness",), _stage_completeness),
+    Stage("luminosity_function", ("luminosity_function",), _stage_luminosity_function,
+          columns=_lf_columns, reads=("cosmology",)),
+    Stage("variance", ("variance",), _stage_variance, columns=("mag", "redshift"),
+          reads=("cosmology",)),
     Stage("counts", ("counts",), _stage_counts, columns=("mag", "mag_error")),
+    Stage("contamination", ("catalog",), _stage_contamination, when=_wants_contamination,
+          reads=("contamination",)),
+    Stage("sky_model", ("catalog", "footprint"), _stage_sky_model, columns=("mag", "cell"),
+          when=_wants_sky_model, reads=("sky_model",)),
 ]
+
+
+def _stage_columns(stage: Stage, runfile: Any) -> tuple[str, ...]:
+    """A stage's tally columns: a tuple, or a function of the run file."""
+    return tuple(stage.columns(runfile)) if callable(stage.columns) else stage.columns
+
 
 #: Sections read by the run itself rather than by a stage.
 _RUN_SECTIONS = frozenset({"survey", "catalog", "footprint", "output", "engine"})
@@ -561,10 +1460,11 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     if out_dir.exists() and not out_dir.is_dir():
         raise InputError(f"`out_dir` '{out_dir}' exists and is not a folder")
 
-    to_run = [s for s in STAGES if all(name in runfile.present for name in s.sections)]
-    read = _RUN_SECTIONS.union(*(s.sections for s in STAGES))
+    to_run = [s for s in STAGES if all(name in runfile.present for name in s.sections)
+              and (s.when is None or s.when(runfile))]
+    read = _RUN_SECTIONS.union(*(s.sections for s in STAGES), *(s.reads for s in STAGES))
     not_run = tuple(sorted(name for name in runfile.present if name not in read))
-    columns = tuple(dict.fromkeys(c for s in to_run for c in s.columns))
+    columns = tuple(dict.fromkeys(c for s in to_run for c in _stage_columns(s, runfile)))
     ctx = RunContext(runfile=runfile, engine=engine, scheduler=scheduler,
                      rng=np.random.default_rng(seed), progress=progress, columns=columns)
     for stage in to_run:
@@ -600,3 +1500,60 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
         stages=tuple(s.name for s in to_run), sections_not_run=not_run,
         stage_results=dict(ctx.results), results=results,
     )
+
+
+# --------------------------------------------------------------------------------------------
+# A survey's population, for planning
+# --------------------------------------------------------------------------------------------
+
+
+def plan_population(runfile: Any, seed: int | None = 0, progress: bool | None = None) -> Any:
+    """The population a run file's survey measures, for :mod:`countscale.planning`.
+
+    Runs the tally, completeness, variance and counts stages in memory (no report is
+    written; the variance stage runs with ``[variance]``'s defaults when the file has no such
+    section) and returns a :class:`countscale.planning.Population`: the population's mean
+    N(<m) per deg² at the counts' faint limit, the integral-count slope d log10 N(<m) / dm
+    there (from the fitted model), the n(z) and bias of the analytic cosmic variance, and its
+    power spectrum.
+
+    Raises
+    ------
+    InputError
+        The run file has no [counts] section, or the variance stage has no n(z).
+    """
+    from countscale.planning import population
+    from countscale.runfile import RunFile, load_runfile
+
+    if not isinstance(runfile, RunFile):
+        if not isinstance(runfile, str | os.PathLike):
+            raise InputTypeError(
+                f"`runfile` must be a path or a RunFile; got {type(runfile).__name__}")
+        runfile = load_runfile(runfile)
+    runfile.require("catalog", "footprint", "counts", needed_by="countscale plan")
+    engine, scheduler = _engine_iv(runfile, None, None)
+    forced = ("variance",)
+    to_run = [s for s in STAGES if s.name in forced
+              or all(name in runfile.present for name in s.sections)]
+    to_run = [s for s in to_run if s.name in ("tally", "completeness", "luminosity_function",
+                                               "variance", "counts")]
+    columns = tuple(dict.fromkeys(c for s in to_run for c in _stage_columns(s, runfile)))
+    ctx = RunContext(runfile=runfile, engine=engine, scheduler=scheduler,
+                     rng=np.random.default_rng(_seed_iv(seed)), progress=progress,
+                     columns=columns)
+    if "analytic" not in runfile.variance.methods:
+        raise InputError(f"{runfile.location('variance', 'methods')}: planning needs the "
+                         "\"analytic\" method")
+    for stage in to_run:
+        ctx.results[stage.name] = stage.run(ctx)
+    counts = ctx.results["counts"]
+    cosmic = ctx.results["variance"]["sigma_cv"]
+    integral = counts.data["integral_counts"]
+    m_limit = float(integral["m_limit"])
+    density = float(integral["per_deg2"]["median"])
+    model = counts["fit"].model_
+    slope = float(model.density(m_limit)) / (density * math.log(10.0))
+    return population(
+        surface_density_per_deg2=density, nz=cosmic.nz(m_limit), bias=runfile.variance.bias,
+        slope=slope, mag_limit=m_limit, power=cosmic.power,
+        source=f"measured by the run file {runfile.label}")

@@ -4,6 +4,12 @@ Topics
 ------
 footprint_figure
     Whole-sky view of where a footprint lies, and a zoom that shows its edges and holes.
+completeness_figure, counts_figure
+    The completeness curve; the number counts with their fits.
+luminosity_function_figure
+    1/Vmax, SWML and the STY curve on one plot, and the M*-alpha error ellipse.
+sky_model_figure, contamination_figure
+    The sky model (densities per unit, residuals, totals); stars among the sources per bin.
 """
 
 from __future__ import annotations
@@ -212,8 +218,347 @@ def counts_figure(counts, path, title=None):
     _save(fig, path)
 
 
+def sky_model_figure(sky, path, title=None):
+    """The sky model: densities per unit against latitude, residuals, and the totals.
+
+    Parameters
+    ----------
+    sky : mapping
+        The ``sky_model`` block of ``results.json``.
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    units = sky["units"]
+    l_deg = np.asarray(units["l_deg"], dtype=float)
+    b_deg = np.asarray(units["b_deg"], dtype=float)
+    n = np.asarray(units["counts"], dtype=float)
+    exposure = np.asarray(units["exposure_deg2"], dtype=float)
+    expected = np.asarray(units["expected_best"], dtype=float)
+    ok = exposure > 0
+    best = max(sky["model"]["sets"], key=lambda s: s["weight"])
+    fig = plt.figure(figsize=(14, 4.9))
+    grid = fig.add_gridspec(1, 3, width_ratios=[1.15, 1.0, 1.15])
+    ax = fig.add_subplot(grid[0])
+    density = np.where(ok, n / np.where(ok, exposure, 1.0), np.nan)
+    error = np.where(ok, np.sqrt(np.maximum(n, 1.0)) / np.where(ok, exposure, 1.0), np.nan)
+    colour = np.cos(np.radians(l_deg))
+    points = ax.scatter(np.abs(b_deg[ok]), density[ok], c=colour[ok], cmap="coolwarm",
+                        vmin=-1, vmax=1, s=22, zorder=3, label="observed (corrected for "
+                        "completeness)")
+    ax.errorbar(np.abs(b_deg[ok]), density[ok], yerr=error[ok], fmt="none", ecolor="grey",
+                lw=0.8, zorder=2)
+    ax.scatter(np.abs(b_deg[ok]), (expected / np.where(ok, exposure, 1.0))[ok], marker="_",
+               s=120, color="k", lw=1.2, zorder=4,
+               label=f"best model ({', '.join(best['covariates']) or 'constant'})")
+    fig.colorbar(points, ax=ax, label="cos l (+1 toward the galactic centre)", shrink=0.85)
+    ax.set_yscale("log")
+    ax.set_xlabel("|galactic latitude b| [deg]")
+    ax.set_ylabel(f"sources brighter than {sky['mag_limit']:g} per deg²")
+    ax.set_title(f"{units['n_units']} units in {units['n_fields']} fields", fontsize=10)
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=7.5, loc="upper right")
+
+    res = fig.add_subplot(grid[1])
+    ratio = np.where(ok & (expected > 0), n / np.where(expected > 0, expected, 1.0), np.nan)
+    ratio_err = np.where(ok & (expected > 0), np.sqrt(np.maximum(n, 1.0))
+                         / np.where(expected > 0, expected, 1.0), np.nan)
+    res.errorbar(l_deg[ok], ratio[ok], yerr=ratio_err[ok], fmt="none", ecolor="grey", lw=0.8)
+    sc = res.scatter(l_deg[ok], ratio[ok], c=np.abs(b_deg[ok]), cmap="viridis", s=22, zorder=3)
+    fig.colorbar(sc, ax=res, label="|b| [deg]", shrink=0.85)
+    res.axhline(1.0, color="k", lw=0.8)
+    res.set_xlim(0, 360)
+    res.set_xticks(np.arange(0, 361, 60))
+    res.set_xlabel("galactic longitude l [deg]")
+    res.set_ylabel("observed / best model")
+    res.set_title("Residuals (Poisson error bars)", fontsize=10)
+    res.grid(alpha=0.3)
+
+    tot = fig.add_subplot(grid[2])
+    rows = [("plain area scaling", sky["naive"], "tab:grey")]
+    for entry in sky["prediction"]["per_set"]:
+        name = ", ".join(entry["covariates"]) or "constant"
+        rows.append((f"{name}\n(weight {entry['weight']:.2f})", entry["total"], "tab:blue"))
+    rows.append(("sky model (all sets)", sky["total"], "tab:red"))
+    for i, (_label, est, colour_) in enumerate(rows):
+        y = len(rows) - 1 - i
+        lo95, hi95 = est["interval_95"]
+        lo68, hi68 = est["interval_68"]
+        tot.plot([lo95, hi95], [y, y], color=colour_, lw=1.2)
+        tot.plot([lo68, hi68], [y, y], color=colour_, lw=4.5, solid_capstyle="butt")
+        tot.plot(est["median"], y, "o", color="white", mec=colour_, ms=6)
+    tot.set_yticks(range(len(rows)))
+    tot.set_yticklabels([r[0] for r in reversed(rows)], fontsize=7.5)
+    tot.set_xscale("log")
+    area = sky["target_sky"]["area_deg2"]
+    tot.set_xlabel(f"sources over the target sky ({area:,.0f} deg²)")
+    outside = sky["fraction_outside_observed_range"]["area"]
+    tot.set_title("Totals: median, 68 % (thick) and 95 %"
+                  + (f"\n{100 * outside:.3g} % of the target is an extrapolation"
+                     if outside > 0 else ""), fontsize=10)
+    tot.grid(alpha=0.3, which="both", axis="x")
+    if title:
+        fig.suptitle(title, fontsize=11)
+    fig.tight_layout()
+    _save(fig, path)
+
+
+def contamination_figure(contamination, path, title=None):
+    """Stars among the sources: counts per bin and the contamination fraction."""
+    plt = _pyplot()
+    edges = np.asarray(contamination["mag_edges"], dtype=float)
+    mid = 0.5 * (edges[1:] + edges[:-1])
+
+    def values(key):
+        return np.array([np.nan if v is None else v for v in contamination[key]], dtype=float)
+
+    sources, stars, galaxies = values("n_sources"), values("n_stars"), values("n_galaxies")
+    fraction = values("fraction")
+    bounds = np.array([[np.nan, np.nan] if v[0] is None else v
+                       for v in contamination["fraction_interval_68"]], dtype=float)
+    fig, (ax, frac) = plt.subplots(2, 1, figsize=(8, 6.5), sharex=True,
+                                   gridspec_kw={"height_ratios": [1.4, 1]})
+    shown = sources > 0
+    ax.step(mid[shown], sources[shown], where="mid", color="k", label="all sources")
+    ax.step(mid[shown], np.where(stars[shown] > 0, stars[shown], np.nan), where="mid",
+            color="tab:orange", label="stars")
+    ax.step(mid[shown], np.where(galaxies[shown] > 0, galaxies[shown], np.nan), where="mid",
+            color="tab:blue", label="galaxies (sources − stars)")
+    ax.set_yscale("log")
+    ax.set_ylabel("sources per bin")
+    ax.legend(fontsize=8)
+    ax.grid(alpha=0.3, which="both")
+    method = ("star/galaxy classifier" if contamination["method"] == "classifier"
+              else "star catalogue subtracted")
+    ax.set_title(title or f"Stars among the sources ({method})", fontsize=11)
+    yerr = np.abs(np.stack([fraction - bounds[:, 0], bounds[:, 1] - fraction]))[:, shown]
+    frac.errorbar(mid[shown], fraction[shown], yerr=yerr, fmt="o", ms=3.5,
+                  color="tab:orange", lw=0.9)
+    frac.set_ylim(-0.05, 1.05)
+    frac.set_ylabel("star fraction (68 %)")
+    frac.set_xlabel("magnitude")
+    frac.grid(alpha=0.3)
+    fig.tight_layout()
+    _save(fig, path)
+
+
+def luminosity_function_figure(lf, path, title=None):
+    """Luminosity (or mass) function: the three estimators on one plot, and the M*-alpha
+    error ellipse.
+
+    Parameters
+    ----------
+    lf : mapping
+        The ``luminosity_function`` block of ``results.json``.
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    x_name = lf["x_name"]
+    is_mag = x_name == "mag"
+    per = "mag" if is_mag else "dex"
+    sty = lf.get("sty")
+    fig, (ax, el) = plt.subplots(1, 2, figsize=(12, 5.2),
+                                 gridspec_kw={"width_ratios": [1.6, 1]})
+    shown_y = []
+    if sty is not None:
+        curve = sty["curve"]
+        grid = np.asarray(curve[x_name])
+        ax.fill_between(grid, curve["band_lo"], curve["band_hi"], color="tab:red", alpha=0.25,
+                        lw=0, label="STY, 68 % band")
+        label = "STY " + sty["model"].replace("_", "-")
+        ax.plot(grid, curve["phi"], color="tab:red", lw=1.6, label=label)
+        shown_y += list(curve["phi"])
+    for key, style, colour, name in (("vmax", "o", "k", "1/Vmax"),
+                                     ("swml", "s", "tab:blue", "SWML")):
+        block = lf.get(key)
+        if block is None:
+            continue
+        x = np.asarray(block[x_name])
+        phi = np.asarray(block["phi"])
+        err = np.asarray(block["phi_err"])
+        complete = np.asarray(block["complete"], dtype=bool)
+        # Log axis: a lower error bar reaching 0 is drawn down to 1/10 of the point.
+        lower = np.minimum(err, 0.9 * phi)
+        offset = 0.03 if key == "swml" else -0.03  # side by side, not on top of each other
+        ax.errorbar(x[complete] + offset, phi[complete],
+                    yerr=np.stack([lower, err])[:, complete], fmt=style, ms=3.5,
+                    color=colour, mfc=colour, lw=0.8,
+                    label=f"{name}, 68 %")
+        if (~complete).any():
+            ax.errorbar(x[~complete] + offset, phi[~complete],
+                        yerr=np.stack([lower, err])[:, ~complete], fmt=style, ms=3.5,
+                        color=colour, mfc="none", lw=0.6, alpha=0.7,
+                        label=f"{name}, bin only partly observable")
+        shown_y += list(phi[phi > 0])
+    ax.set_yscale("log")
+    if shown_y:
+        positive = np.asarray([v for v in shown_y if v > 0])
+        ax.set_ylim(0.3 * positive.min(), 4 * positive.max())
+    if is_mag:
+        ax.invert_xaxis()
+        ax.set_xlabel("absolute magnitude M + Q z (evolution-corrected to z = 0)"
+                      if lf["selection"]["evolution"]["Q"] else "absolute magnitude M")
+    else:
+        ax.set_xlabel("log10 stellar mass [Msun]")
+    ax.set_ylabel(f"φ [Mpc⁻³ {per}⁻¹] (H0 = {lf['selection']['H0']:g})")
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=8, loc="lower left")
+    n_used = lf["sample"]["n_used"]
+    z_lo, z_hi = lf["selection"]["redshift_range"]
+    ax.set_title(f"{n_used:,d} galaxies, {z_lo:g} < z < {z_hi:g}", fontsize=10)
+
+    if sty is not None:
+        ellipse = sty["ellipse"]
+        centre = ellipse["centre"]
+        for points, level, ls in zip(ellipse["points"], ellipse["levels"], ("-", "--"),
+                                     strict=True):
+            el.plot(points[0], points[1], ls, color="tab:red", lw=1.3,
+                    label=f"{100 * level:.1f} % joint region")
+        el.plot(centre[0], centre[1], "+", color="tab:red", ms=10, mew=1.5, label="STY best fit")
+        names = ellipse["names"]
+        labels = {"m_star": "M* [mag]", "alpha": "α", "log10_mass_star": "log10 M* [Msun]",
+                  "alpha_1": "α₁"}
+        el.set_xlabel(labels.get(names[0], names[0]))
+        el.set_ylabel(labels.get(names[1], names[1]))
+        if names[0] == "m_star":
+            el.invert_xaxis()
+        el.grid(alpha=0.3)
+        el.legend(fontsize=8)
+        errs = [sty[n]["interval_68"] for n in names]
+        short = {"m_star": "M*", "alpha": "α", "log10_mass_star": "log10 M*", "alpha_1": "α₁"}
+        el.set_title("\n".join(
+            f"{short.get(n, n)} = {c:.3f} (68 %: {e[0]:.3f} to {e[1]:.3f})"
+            for n, c, e in zip(names, centre, errs, strict=True)), fontsize=9)
+    else:
+        el.text(0.5, 0.5, "STY not run", ha="center", va="center")
+        el.set_axis_off()
+    if title:
+        fig.suptitle(title)
+    fig.tight_layout(rect=(0, 0, 1, 0.95))
+    _save(fig, path)
+
+
 def _save(fig, path):
     plt = _pyplot()
     with atomic_path(path, suffix=".png") as tmp:
         fig.savefig(tmp, dpi=110, format="png")
     plt.close(fig)
+
+
+def variance_figure(variance, path, title=None):
+    """Fractional Poisson and cosmic-variance errors of the mean density against area.
+
+    Parameters
+    ----------
+    variance : mapping
+        The ``variance`` block of ``results.json`` (its ``area_curve``: circular fields with
+        the survey's own n(z), bias and surface density; ``area_curve.footprint``: the
+        survey's own footprint, with its real shape).
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    curve = variance["area_curve"]
+    area = np.asarray(curve["area_deg2"])
+    fig, ax = plt.subplots(figsize=(8, 5.5))
+    ax.loglog(area, curve["poisson"], "--", color="tab:blue", lw=1.4,
+              label="Poisson, 1/√N")
+    ax.loglog(area, curve["cosmic_variance"], "-", color="tab:red", lw=1.4,
+              label="cosmic variance (analytic, one circular field)")
+    ax.loglog(area, curve["total"], "-", color="k", lw=2.0, alpha=0.7,
+              label="Poisson ⊕ cosmic variance")
+    own = curve["footprint"]
+    ax.plot([own["area_deg2"]], [own["cosmic_variance"]], "o", color="tab:red", ms=8,
+            mec="k", label=f"this footprint's cosmic variance (its real shape): "
+                           f"{own['cosmic_variance']:.3g}")
+    ax.plot([own["area_deg2"]], [own["poisson"]], "s", color="tab:blue", ms=7, mec="k",
+            label=f"this footprint's Poisson error: {own['poisson']:.3g}")
+    jackknife = variance.get("jackknife")
+    if jackknife and jackknife.get("clustering_fraction", 0) > 0:
+        ax.plot([own["area_deg2"]], [jackknife["clustering_fraction"]], "D", mfc="none",
+                mec="tab:purple", ms=8, mew=1.5,
+                label=f"jackknife clustering excess ({jackknife['n_regions']} regions): "
+                      f"{jackknife['clustering_fraction']:.3g}")
+    cross = curve.get("crossover_area_deg2")
+    if cross:
+        ax.axvline(cross, color="grey", ls=":", lw=1)
+        ax.text(cross, 0.62, f" cosmic variance > Poisson\n above {cross:.3g} deg²",
+                transform=ax.get_xaxis_transform(), fontsize=8, color="dimgrey")
+    analytic = variance["analytic"]
+    nz = analytic["nz"]
+    ax.set_xlabel("area [deg²]")
+    ax.set_ylabel("fractional error of the mean surface density (1σ)")
+    ax.set_title(title or "Poisson and cosmic variance against area", fontsize=11)
+    ax.text(0.99, 0.99, f"m < {variance['m_limit']:g}; {variance['density_per_deg2']:.4g} per "
+            f"deg²\nn(z) median {nz['median']:.3g}; bias {analytic['bias']:g}\n"
+            f"{analytic['power_spectrum']['model']}, linear",
+            transform=ax.transAxes, ha="right", va="top", fontsize=8,
+            bbox={"fc": "white", "ec": "0.8", "alpha": 0.9})
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=7.5, loc="lower left")
+    fig.tight_layout()
+    _save(fig, path)
+
+
+def plan_figure(plan, path, title=None):
+    """Survey plan: fractional error of the surface density against area, by layout.
+
+    Parameters
+    ----------
+    plan : mapping
+        The JSON of ``countscale plan`` (``curve`` of the main layout, ``layouts``,
+        ``target_precision``, ``required_area_deg2``).
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    curve = plan["curve"]
+    area = np.array([p["area_deg2"] for p in curve])
+    fig, ax = plt.subplots(figsize=(8.5, 5.8))
+    layout = plan["layout"]
+    ax.loglog(area, [p["poisson"] for p in curve], "--", color="tab:blue", lw=1.3,
+              label="Poisson, 1/√N")
+    ax.loglog(area, [p["cosmic_variance"] for p in curve], "-", color="tab:red", lw=1.3,
+              label=f"cosmic variance, {layout['description']}")
+    ax.loglog(area, [p["total"] for p in curve], "-", color="k", lw=2.2,
+              label="total (Poisson ⊕ cosmic variance)")
+    styles = {"contiguous": ("tab:green", "-."), "strip": ("tab:purple", ":"),
+              "fields": ("tab:orange", (0, (5, 2)))}
+    for kind, entry in plan["layouts"].items():
+        other = entry.get("curve")
+        if kind == layout["kind"] or not other:
+            continue
+        color, style = styles[kind]
+        ax.loglog([p["area_deg2"] for p in other], [p["total"] for p in other], ls=style,
+                  color=color, lw=1.4, label=f"total, {entry['description']}")
+    target = plan.get("target_precision")
+    if target:
+        ax.axhline(target, color="grey", lw=1, ls=":")
+        required = plan.get("required_area_deg2")
+        if required:
+            ax.plot([required], [target], "o", color="k", ms=7)
+            right = np.log(required / area[0]) > 0.6 * np.log(area[-1] / area[0])
+            ax.annotate(f"target {target:g}: {required:,.3g} deg²", (required, target),
+                        xytext=(-8, -14) if right else (8, 8), textcoords="offset points",
+                        fontsize=8.5, ha="right" if right else "left")
+        else:
+            ax.text(area[0], target * 1.08, f"target {target:g}: not reachable (floor "
+                    f"{plan['floor_precision']:.3g})", fontsize=8.5, color="grey")
+    cross = plan.get("crossover_area_deg2")
+    if cross:
+        ax.axvline(cross, color="grey", lw=0.8, ls="--", alpha=0.6)
+        ax.text(cross, 0.62, f" cosmic variance > Poisson\n above {cross:.3g} deg²",
+                transform=ax.get_xaxis_transform(), fontsize=8, color="dimgrey")
+    pop = plan["population"]
+    ax.text(0.99, 0.99, f"{plan['quantity']}\n{pop['surface_density_per_deg2']:.4g} per deg²; "
+            f"n(z) median {pop['redshift_median']:.3g}; bias {pop['bias']:g}\nlinear theory "
+            "(an underestimate for small fields)", transform=ax.transAxes, ha="right",
+            va="top", fontsize=8, bbox={"fc": "white", "ec": "0.8", "alpha": 0.9})
+    ax.set_xlabel("total survey area [deg²]")
+    ax.set_ylabel("fractional error of the surface density (1σ)")
+    ax.set_title(title or "Survey plan: precision against area", fontsize=11)
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=7.5, loc="lower left")
+    fig.tight_layout()
+    _save(fig, path)

@@ -127,6 +127,8 @@ def render_markdown(results: Mapping[str, Any]) -> str:
         "|---|---:|---:|",
     ]
     out += [f"| {lo:.4g}–{hi:.4g} | {n:,d} | {d:.4g} |" for lo, hi, n, d in _bin_rows(results)]
+    if tally.get("extinction"):
+        out += ["", _extinction_line(tally["extinction"])]
     out += [
         "",
         f"Brighter than the first edge: {tally['n_brighter']:,d}; at or fainter than the last "
@@ -143,10 +145,26 @@ def render_markdown(results: Mapping[str, Any]) -> str:
         out += ["", *_completeness_markdown(results["completeness"])]
         if "completeness" in figures:
             out += ["", f"![completeness]({figures['completeness']})"]
+    if "luminosity_function" in results:
+        out += ["", *_luminosity_function_markdown(results["luminosity_function"])]
+        if "luminosity_function" in figures:
+            out += ["", f"![luminosity function]({figures['luminosity_function']})"]
+    if "variance" in results:
+        out += ["", *_variance_markdown(results["variance"])]
+        if "variance" in figures:
+            out += ["", f"![cosmic variance against area]({figures['variance']})"]
     if "counts" in results:
         out += ["", *_counts_markdown(results["counts"])]
         if "counts" in figures:
             out += ["", f"![number counts]({figures['counts']})"]
+    if "contamination" in results:
+        out += ["", *_contamination_markdown(results["contamination"])]
+        if "contamination" in figures:
+            out += ["", f"![stars among the sources]({figures['contamination']})"]
+    if "sky_model" in results:
+        out += ["", *_sky_model_markdown(results["sky_model"])]
+        if "sky_model" in figures:
+            out += ["", f"![sky model]({figures['sky_model']})"]
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         out += ["", "## Not run", "", f"The run file has {listed}; this version of countscale "
@@ -181,7 +199,116 @@ def _completeness_markdown(comp: Mapping[str, Any]) -> list[str]:
                "the shape at one depth and the map places it tile by tile"
                if depth.get("shifted_injections") else ""),
         ]
+    extinction = comp.get("extinction")
+    if extinction:
+        per_region = [a for a in extinction["region_mean_extinction_mag"] if a is not None]
+        out += [
+            f"- extinction: counts are in dereddened magnitudes, so each part of the footprint "
+            f"is complete to a limit moved brighter by its extinction: m50 (dereddened) from "
+            f"{extinction['m50_dereddened_min']:.3f} to {extinction['m50_dereddened_max']:.3f}; "
+            f"mean extinction per region from {min(per_region):.3f} to "
+            f"{max(per_region):.3f} mag",
+        ]
     out += ["", "Intervals are 68 %; they reflect the finite number of injections only."]
+    return out
+
+
+def _extinction_line(ext: Mapping[str, Any]) -> str:
+    source = (f"band `{ext['band']}`, {ext['coefficient_source']}" if ext.get("band")
+              else "given in the run file")
+    return (f"Magnitudes are dereddened per source: m − R·E(B−V) at the source's pixel of "
+            f"`{ext['path']}` (nside {ext['nside']}), R = {ext['coefficient']:g} ({source}). "
+            f"Over the footprint E(B−V) runs from {ext['ebv_min']:.3g} to {ext['ebv_max']:.3g} "
+            f"(extinction {ext['extinction_mean_mag']:.3g} mag on average, "
+            f"{ext['extinction_max_mag']:.3g} at most).")
+
+
+def _contamination_markdown(cont: Mapping[str, Any]) -> list[str]:
+    method = ("a star/galaxy classifier column" if cont["method"] == "classifier"
+              else "a star catalogue of the same footprint, subtracted bin by bin")
+    out = [
+        "## Stars among the sources",
+        "",
+        f"From {method}. The star fraction is stars / all sources in the bin, with its 68 % "
+        "interval" + (" (Clopper-Pearson)." if cont["method"] == "classifier" else "."),
+        "",
+        "| magnitude | sources | stars | galaxies | star fraction |",
+        "|---|---:|---:|---:|---:|",
+    ]
+    edges = cont["mag_edges"]
+    for i, n in enumerate(cont["n_sources"]):
+        if not n:
+            continue
+        stars, gal = cont["n_stars"][i], cont["n_galaxies"][i]
+        frac, (lo, hi) = cont["fraction"][i], cont["fraction_interval_68"][i]
+        star_text = f"{stars:,.0f}" + (f" ± {cont['n_stars_err'][i]:,.0f}"
+                                       if cont["n_stars_err"][i] else "")
+        out.append(f"| {edges[i]:.4g}–{edges[i + 1]:.4g} | {n:,.0f} | {star_text} | "
+                   f"{gal:,.0f} ± {cont['n_galaxies_err'][i]:,.0f} | "
+                   + ("–" if frac is None else f"{frac:.3f} ({lo:.3f}–{hi:.3f})") + " |")
+    for note in cont.get("notes", []):
+        out += ["", f"Note: {note.rstrip('.')}."]
+    return out
+
+
+def _target_item_text(item: Mapping[str, Any]) -> str:
+    kind = item["kind"]
+    if kind == "galactic_latitude_above":
+        return f"|b| ≥ {item['b_deg']:g}°"
+    if kind == "galactic_latitude_below":
+        return f"|b| < {item['b_deg']:g}°"
+    params = ", ".join(f"{k} {v}" for k, v in item.items() if k != "kind")
+    return f"{kind} ({params})"
+
+
+def _sky_model_markdown(sky: Mapping[str, Any]) -> list[str]:
+    target = sky["target_sky"]
+    items = target["items"]
+    target_text = items if isinstance(items, str) else " ∪ ".join(
+        _target_item_text(item) for item in items)
+    total, naive = sky["total"], sky["naive"]
+    units = sky["units"]
+    outside = sky["fraction_outside_observed_range"]
+    out = [
+        "## Sky model: a population that changes across the sky",
+        "",
+        f"Counts of {units['n_observed']:,d} sources brighter than {sky['mag_limit']:g} in "
+        f"{units['n_units']} units ({units['n_fields']} separate fields, split along the "
+        f"jackknife regions) fitted on sky covariates, then integrated over the target sky "
+        f"({target_text}; {target['area_deg2']:,.1f} deg² at nside {target['nside']}).",
+        "",
+        f"- **sources brighter than {sky['mag_limit']:g} over the target sky: "
+        f"{_estimate(total)}** (95 %: {total['interval_95'][0]:.3g}–"
+        f"{total['interval_95'][1]:.3g})"
+        + (f" — **{100 * outside['area']:.3g} % of the target ({100 * outside['total']:.3g} % "
+           "of this total) lies outside the covariate range the survey observed: an "
+           "extrapolation, with a widened interval**" if outside["area"] > 0 else
+           "; every part of the target lies within the covariate range the fields observed"),
+        f"- plain area scaling: {_estimate(naive)}"
+        + (f", {sky['naive_over_model']:.3g} × the model" if sky.get("naive_over_model")
+           else "") + f" ({sky['naive_note']})",
+        "- budget (shares of the variance of log10 of the total): "
+        + ", ".join(f"{k} {v:.0%}" for k, v in total.get("budget", {}).items()),
+        "",
+        "| covariates | weight (AIC) | dispersion α | χ²/dof | total (68 %) |",
+        "|---|---:|---:|---:|---|",
+    ]
+    for fit, entry in zip(sky["model"]["sets"], sky["prediction"]["per_set"], strict=True):
+        chi = fit["pearson_chi2"] / fit["dof"] if fit["dof"] > 0 else float("nan")
+        out.append(f"| {', '.join(fit['covariates']) or '(constant)'} | {fit['weight']:.3f} | "
+                   f"{fit['dispersion']:.3g} | {chi:.2f} | {_estimate(entry['total'])} |")
+    out += [
+        "",
+        f"The model is log-linear in the covariates ({sky['model']['likelihood'].replace('_', ' ')}"
+        " likelihood); the total's draws mix the sets by their Akaike weights, so the spread "
+        "between sets is part of the interval. Completeness of the counted sources: at least "
+        + (f"{units['completeness_min']:.3f}" if units.get("completeness_min") is not None
+           else "1 (taken as complete)") + ".",
+    ]
+    for text in sky.get("warnings", []):
+        out += ["", f"**Warning:** {text.rstrip('.')}."]
+    for note in sky.get("notes", []):
+        out += ["", f"Note: {note.rstrip('.')}."]
     return out
 
 
@@ -221,12 +348,15 @@ def _counts_markdown(counts: Mapping[str, Any]) -> list[str]:
             out.append(f"| {name} | {alt['deviance']:.1f} | {alt['dof']} | {alt['aic']:.1f} | "
                        f"{alt['bic']:.1f} |")
     integral = counts["integral_counts"]
-    out += [
-        "",
-        f"Integral counts N(<{integral['m_limit']:g}) = {_estimate(integral['per_deg2'])}; over "
-        f"the footprint's {integral['area_deg2']:.4g} deg²: {_estimate(integral['total'])} "
-        f"({integral['note']}).",
-    ]
+    out += ["", *_integral_markdown(integral)]
+    normalisation = counts.get("normalisation")
+    if normalisation:
+        out += [
+            "",
+            f"Normalisation log10 n at m = {normalisation['reference_mag']:g}: population mean "
+            f"{_estimate(normalisation['log10_norm'])} (Poisson ⊕ cosmic variance); this "
+            f"field {_estimate(normalisation['log10_norm_this_field'])} (Poisson only).",
+        ]
     preferred = counts.get("preferred")
     if preferred:
         out += [
@@ -237,6 +367,168 @@ def _counts_markdown(counts: Mapping[str, Any]) -> list[str]:
         ]
     for note in counts.get("notes", []):
         out += ["", f"Note: {note.rstrip('.')}."]
+    return out
+
+
+_LF_LABELS = {
+    "m_star": "M* [mag]", "alpha": "α", "phi_star": "φ* [Mpc⁻³]",
+    "log10_mass_star": "log10 M* [Msun]", "alpha_1": "α₁", "alpha_2": "α₂",
+    "phi_star_1": "φ*₁ [Mpc⁻³ dex⁻¹]", "phi_star_2": "φ*₂ [Mpc⁻³ dex⁻¹]",
+    "Q": "Q [mag per unit z]", "P": "P",
+    "luminosity_density_mag": "luminosity density [mag Mpc⁻³]",
+    "mass_density_msun_mpc3": "stellar mass density [Msun Mpc⁻³]",
+    "number_density_mpc3": "number density [Mpc⁻³]",
+}
+
+
+def _luminosity_function_markdown(lf: Mapping[str, Any]) -> list[str]:
+    sel, sample = lf["selection"], lf["sample"]
+    what = "Luminosity function" if lf["quantity"] == "luminosity" else "Stellar-mass function"
+    z_lo, z_hi = sel["redshift_range"]
+    out = [
+        f"## {what}",
+        "",
+        f"{sample['n_used']:,d} galaxies with {sel['mag_limits'][0]:g} ≤ m ≤ "
+        f"{sel['mag_limits'][1]:g} and {z_lo:g} ≤ z ≤ {z_hi:g}, over "
+        f"{sel['area_sr']:.5g} sr ({sel['volume_mpc3']:.4g} Mpc³ comoving), in "
+        f"{sel['cosmology']} (H0 = {sel['H0']:g}; densities per Mpc³ with that H0). "
+        f"Left out: {sample['n_outside_mag_limits']:,d} outside the apparent limits, "
+        f"{sample['n_no_redshift']:,d} without a redshift, "
+        f"{sample['n_outside_redshift_range']:,d} outside the redshift range"
+        + (f", {sample['n_no_stellar_mass']:,d} without a stellar mass, "
+           f"{sample['n_outside_mass_limits']:,d} outside the mass-completeness limits"
+           if lf["quantity"] == "stellar_mass" else "") + ".",
+    ]
+    limit = sample.get("mass_limit")
+    if limit is not None:
+        pairs = ", ".join(f"{m:.2f} at z = {z:.3g}" for z, m in zip(limit["z"],
+                                                                     limit["log10_mass"],
+                                                                     strict=True))
+        out += ["", f"Mass-completeness limit: {limit['assumption']}. log10 M_lim [Msun]: "
+                    f"{pairs}."]
+    sty = lf.get("sty")
+    if sty is not None:
+        evo = sty["evolution"]
+        fitted = ", ".join(evo["fitted"]) or "none"
+        evolution = (f"evolution Q = {evo['Q']:.3g}, P = {evo['P']:.3g}"
+                     if lf["quantity"] == "luminosity" else f"density evolution P = {evo['P']:.3g}")
+        count_error = ("jackknife over regions" if sty["normalisation"]["n_regions"] >= 3
+                       else "Poisson")
+        out += [
+            "",
+            f"STY maximum likelihood ({sty['model'].replace('_', ' ')}; {evolution}; fitted: "
+            f"{fitted}). Intervals are 68 %; the "
+            "shape's errors come from the likelihood's curvature, the normalisation's also "
+            f"from the count ({count_error}) and the shape.",
+            "",
+            "| parameter | value | budget |",
+            "|---|---|---|",
+        ]
+        for name, value in sty.items():
+            if isinstance(value, Mapping) and "median" in value:
+                budget = ", ".join(f"{k} {v:.0%}" for k, v in value.get("budget", {}).items())
+                label = _LF_LABELS.get(name, name)
+                if name == "number_density_mpc3":
+                    label += f" (brighter than {sty['number_density_limit']:.4g})" \
+                        if lf["quantity"] == "luminosity" else \
+                        f" (above {sty['number_density_limit']:.4g} dex)"
+                out.append(f"| {label} | {_estimate(value)} | {budget} |")
+    for key, name in (("vmax", "1/Vmax"), ("swml", "SWML")):
+        block = lf.get(key)
+        if block is None:
+            continue
+        x = block[lf["x_name"]]
+        out += ["", f"{name}: {len(x)} bins from {block['bin_lower'][0]:g} to "
+                    f"{block['bin_upper'][-1]:g}; errors: {block['error_kind']}."]
+    for note in lf.get("notes", []):
+        out += ["", f"Note: {note.rstrip('.')}."]
+    return out
+
+
+def _integral_markdown(integral: Mapping[str, Any]) -> list[str]:
+    m = integral["m_limit"]
+    clustering = integral.get("cosmic_variance") or {}
+    if "per_deg2_this_field" not in integral:  # results written before the two definitions
+        return [f"Integral counts N(<{m:g}) = {_estimate(integral['per_deg2'])}."]
+    kind = {"analytic": "Poisson ⊕ analytic cosmic variance",
+            "jackknife": "Poisson + jackknife clustering (misses modes larger than the "
+                         "footprint: too narrow)",
+            "none": "Poisson only"}.get(clustering.get("method"), "")
+    return [
+        f"Integral counts N(<{m:g}), sources per deg² ({integral['note']}):",
+        "",
+        "| quantity | per deg² (68 %; 95 %) | over the footprint | errors |",
+        "|---|---|---|---|",
+        f"| population's mean density | {_estimate(integral['per_deg2'])}; 95 %: "
+        f"{_interval(integral['per_deg2']['interval_95'])} | {_estimate(integral['total'])} | "
+        f"{kind} |",
+        f"| this field's realised density | {_estimate(integral['per_deg2_this_field'])}; "
+        f"95 %: {_interval(integral['per_deg2_this_field']['interval_95'])} | "
+        f"{_estimate(integral['total_this_field'])} | Poisson only |",
+        "",
+        "The population's mean density is what an extrapolation to other areas needs; this "
+        "field's realised density is what this footprint holds (clustering made it what it "
+        "is, so only Poisson noise blurs it)."
+        + (f" Cosmic variance of this footprint's mean: σ = {clustering['sigma_cv']:.3g}."
+           if clustering.get("sigma_cv") is not None else ""),
+    ]
+
+
+def _interval(pair: list[float]) -> str:
+    return f"{pair[0]:.5g}–{pair[1]:.5g}"
+
+
+def _variance_markdown(variance: Mapping[str, Any]) -> list[str]:
+    m = variance["m_limit"]
+    out = [
+        "## Cosmic variance",
+        "",
+        f"Fractional (1σ) errors of the footprint's mean surface density of sources brighter "
+        f"than m = {m:g} ({variance['m_limit_source']}; {variance['n_sources']:,d} sources "
+        f"over {variance['area_deg2']:.4g} deg²):",
+        "",
+        "| error | fraction | what it is |",
+        "|---|---:|---|",
+        f"| Poisson | {variance['poisson_fraction']:.3g} | 1/√N |",
+    ]
+    jackknife = variance.get("jackknife")
+    if jackknife:
+        out.append(f"| jackknife clustering excess | {jackknife['clustering_fraction']:.3g} | "
+                   f"{jackknife['n_regions']} regions; total jackknife "
+                   f"{jackknife['sigma_fraction']:.3g}; sees scales smaller than the "
+                   "footprint only |")
+    analytic = variance.get("analytic")
+    if analytic:
+        out.append(f"| cosmic variance (analytic) | {analytic['sigma_cv']:.3g} | all scales, for "
+                   "this footprint's shape |")
+        out.append(f"| Poisson ⊕ cosmic variance | {variance['total_fraction']:.3g} | "
+                   "the error of the population's mean density |")
+        nz = analytic["nz"]
+        power = analytic["power_spectrum"]
+        ratio = variance.get("poisson_over_cosmic_variance")
+        out += [
+            "",
+            f"Poisson / cosmic variance = {ratio:.3g}." if ratio is not None else "",
+            "",
+            f"Analytic: {analytic['angular_spectrum']['method']} ({power['model']}, "
+            f"{power['cosmology']}, σ8 = {power['sigma8']:g}, n_s = {power['n_s']:g}), bias "
+            f"{analytic['bias']:g}, n(z) from {nz['source']} (median z = {nz['median']:.3g}); "
+            f"mask spectrum from the {analytic['mask']['method']}.",
+        ]
+        by_limit = analytic.get("by_mag_limit")
+        if by_limit:
+            pairs = ", ".join(f"{a:g}: {b:.3g}" for a, b in zip(by_limit["m_limit"],
+                                                                by_limit["sigma_cv"],
+                                                                strict=True))
+            out += ["", f"Analytic cosmic variance by magnitude limit: {pairs}."]
+        for note in analytic.get("notes", []):
+            out += ["", f"Note: {note.rstrip('.')}."]
+    comparison = variance.get("comparison")
+    if comparison and comparison.get("analytic_over_jackknife") is not None:
+        out += ["", f"Analytic / jackknife clustering excess = "
+                    f"{comparison['analytic_over_jackknife']:.3g}."]
+    for warning in variance.get("warnings", []):
+        out += ["", f"**Warning:** {warning.rstrip('.')}."]
     return out
 
 
@@ -269,6 +561,17 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
         comp = results["completeness"]
         lines += ["", f"completeness    {comp['model']}: m50 {_estimate(comp['m50'])}, "
                       f"m90 {_estimate(comp['m90'])}"]
+    if "variance" in results:
+        variance = results["variance"]
+        parts = [f"Poisson {variance['poisson_fraction']:.3g}"]
+        if variance.get("jackknife"):
+            parts.append(f"jackknife clustering {variance['jackknife']['clustering_fraction']:.3g}")
+        if variance.get("analytic"):
+            parts.append(f"cosmic variance (analytic) {variance['analytic']['sigma_cv']:.3g}")
+            parts.append(f"total {variance['total_fraction']:.3g}")
+        lines += ["", f"cosmic variance m < {variance['m_limit']:g}, fractional 1σ: "
+                      + "; ".join(parts)]
+        lines += [f"                warning: {w}" for w in variance.get("warnings", [])]
     if "counts" in results:
         fit = results["counts"]["fit"]
         integral = results["counts"]["integral_counts"]
@@ -279,9 +582,45 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
             f"number counts   {fit['model']} over {fit['fit_range'][0]:g}–{fit['fit_range'][1]:g}"
             f" mag: " + "; ".join(params),
             f"                deviance {fit['deviance']:.1f} / {fit['dof']} dof; "
-            f"N(<{integral['m_limit']:g}) = {_estimate(integral['per_deg2'])}",
+            f"N(<{integral['m_limit']:g}) population mean = {_estimate(integral['per_deg2'])}",
         ]
+        if "per_deg2_this_field" in integral:
+            lines.append(f"                N(<{integral['m_limit']:g}) this field = "
+                         f"{_estimate(integral['per_deg2_this_field'])} (Poisson only)")
         lines += [f"                note: {note}" for note in results["counts"].get("notes", [])]
+    if "luminosity_function" in results:
+        lf = results["luminosity_function"]
+        sty = lf.get("sty")
+        head = "luminosity fn" if lf["quantity"] == "luminosity" else "mass function"
+        line = f"{head:<16}{lf['sample']['n_used']:,d} galaxies"
+        if sty is not None:
+            params = [f"{k} {_estimate(v)}" for k, v in sty.items()
+                      if isinstance(v, Mapping) and "median" in v
+                      and not k.endswith(("density_mag", "_mpc3"))]
+            line += ": STY " + "; ".join(params)
+        lines += ["", line]
+        shown = [name for key, name in (("vmax", "1/Vmax"), ("swml", "SWML")) if key in lf]
+        if shown:
+            lines.append(f"                {' and '.join(shown)} in "
+                         f"{len(lf[('vmax' if 'vmax' in lf else 'swml')]['phi'])} bins")
+    if "contamination" in results:
+        cont = results["contamination"]
+        fractions = [f for f in cont["fraction"] if f is not None]
+        lines += ["", f"stars among     {cont['method']}: star fraction per bin from "
+                      f"{min(fractions):.3f} to {max(fractions):.3f}" if fractions else
+                  "stars among     no source"]
+    if "sky_model" in results:
+        sky = results["sky_model"]
+        outside = sky["fraction_outside_observed_range"]
+        lines += [
+            "",
+            f"sky model       N(<{sky['mag_limit']:g}) over the target sky "
+            f"({sky['target_sky']['area_deg2']:,.0f} deg²): {_estimate(sky['total'])}",
+            f"                plain area scaling: {_estimate(sky['naive'])}",
+        ]
+        if outside["area"] > 0:
+            lines.append(f"                WARNING: {100 * outside['area']:.3g} % of the target "
+                         "lies outside the covariate range observed (an extrapolation)")
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         lines += ["", f"not run yet     {listed}",
@@ -299,7 +638,9 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
 
 
 FIGURE_NAMES = {"footprint": "footprint.png", "completeness": "completeness.png",
-                "counts": "counts.png"}
+                "counts": "counts.png", "luminosity_function": "luminosity_function.png",
+                "variance": "variance.png", "contamination": "contamination.png",
+                "sky_model": "sky_model.png"}
 
 
 def figure_names(results: Mapping[str, Any], formats: Iterable[str],
@@ -314,7 +655,11 @@ def figure_names(results: Mapping[str, Any], formats: Iterable[str],
     names = []
     if footprint is not None:
         names.append("footprint")
-    names += [name for name in ("completeness", "counts") if name in results]
+    names += [name for name in ("completeness", "counts", "luminosity_function")
+              if name in results]
+    if (results.get("variance") or {}).get("area_curve"):
+        names.append("variance")
+    names += [name for name in ("contamination", "sky_model") if name in results]
     return {name: FIGURE_NAMES[name] for name in names}
 
 
@@ -357,6 +702,15 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
                 results["completeness"], p, title=f"{title}: detection completeness"),
             "counts": lambda p: plots.counts_figure(
                 results["counts"], p, title=f"{title}: differential number counts"),
+            "luminosity_function": lambda p: plots.luminosity_function_figure(
+                results["luminosity_function"], p, title=f"{title}: "
+                + ("luminosity" if results["luminosity_function"]["quantity"] == "luminosity"
+                   else "stellar-mass") + " function"),
+            "variance": lambda p: plots.variance_figure(
+                results["variance"], p, title=f"{title}: Poisson and cosmic variance"),
+            "contamination": lambda p: plots.contamination_figure(results["contamination"], p),
+            "sky_model": lambda p: plots.sky_model_figure(
+                results["sky_model"], p, title=f"{title}: sky model"),
         }
         for name in figure_names(results, formats, footprint):
             figures[name] = drawers[name]

@@ -40,6 +40,15 @@ What the validated values look like
   ``Table(kind="redshift", redshift=(a, b))``.
 * ``[cosmology]`` holds either ``name`` (default ``"Planck18"``) with ``H0 = Om0 = None``, or
   ``H0`` and ``Om0`` with ``name = None``.
+* ``[totals].target_sky`` is a tuple of :class:`FootprintItem` (any kind but ``occupancy``), or
+  None for the whole sky; :func:`countscale.skymodel.target_sky_footprint` builds it.
+* ``[extinction]`` has ``map`` (a path) and exactly one of ``coefficient`` (R) and ``band`` (a
+  name of :data:`countscale.extinction.COEFFICIENTS`).
+* ``[sky_model].covariate_sets`` is a tuple of tuples of names (None: the defaults for the
+  population), checked against the galactic basis, the ``maps`` (tables with ``name``,
+  ``path``, ``nest``, ``transform``) and ``ebv`` when there is an ``[extinction]`` section.
+* ``[catalog]`` may name a ``classifier`` column and a ``classifier_threshold`` (None: 0.5);
+  ``[contamination]`` (galaxies only, not with a classifier) names a ``star_catalog``.
 
 Errors
 ------
@@ -634,6 +643,83 @@ def _volume() -> Check:
     return check
 
 
+def _power_of_two(lo: int, hi: int) -> Check:
+    rule = f"must be a power of 2 in [{lo}, {hi}]"
+
+    def check(value: Any, where: _Where) -> int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise where.type_error(rule, value)
+        if not (lo <= value <= hi and value & (value - 1) == 0):
+            raise where.value_error(rule, value)
+        return value
+
+    return check
+
+
+def _extinction_band() -> Check:
+    def check(value: Any, where: _Where) -> str:
+        # Imported here: reading a run file without [extinction] does not load healpy.
+        from countscale.extinction import COEFFICIENTS
+
+        return _choice(COEFFICIENTS)(value, where)
+
+    return check
+
+
+_NAME_RULE = "must be a covariate name (a non-empty string)"
+
+
+def _covariate_sets() -> Check:
+    rule = ("must be a list of covariate sets, each a list of distinct covariate names "
+            "(an empty list: a constant density)")
+
+    def one_set(value: Any, where: _Where) -> tuple[str, ...]:
+        if not isinstance(value, list):
+            raise where.type_error(rule, value)
+        names = tuple(_text(_NAME_RULE)(item, where.item(i)) for i, item in enumerate(value))
+        if len(set(names)) != len(names):
+            raise where.value_error("must not repeat a covariate", value)
+        return names
+
+    def check(value: Any, where: _Where) -> tuple[tuple[str, ...], ...]:
+        if not isinstance(value, list):
+            raise where.type_error(rule, value)
+        if not value:
+            raise where.value_error(rule, value)
+        sets = tuple(one_set(item, where.item(i)) for i, item in enumerate(value))
+        if len({frozenset(x) for x in sets}) != len(sets):
+            raise where.value_error("must not list the same covariate set twice", value)
+        return sets
+
+    return check
+
+
+def _covariate_maps() -> Check:
+    item = _table(
+        {
+            "name": Key(_text(_NAME_RULE), REQUIRED),
+            "path": Key(_path(), REQUIRED),
+            "nest": Key(_boolean()),
+            "transform": Key(_choice(["linear", "log"]), "linear"),
+        },
+        rule="must be a table {name = , path = } (optional nest, transform)",
+    )
+    rule = "must be a list of covariate maps {name = , path = }"
+
+    def check(value: Any, where: _Where) -> tuple[Table, ...]:
+        if not isinstance(value, list):
+            raise where.type_error(rule, value)
+        maps = tuple(item(entry, where.item(i)) for i, entry in enumerate(value))
+        names = [m.name for m in maps]
+        for i, name in enumerate(names):
+            if name in names[:i]:
+                raise where.item(i).key("name").value_error("must differ from the other maps'",
+                                                            name)
+        return maps
+
+    return check
+
+
 _REDSHIFT_RULE = "must be two increasing redshifts [a, b] with 0 <= a < b"
 _RA_DEG = _real(0.0, 360.0, unit="degrees")
 _DEC_DEG = _real(-90.0, 90.0, unit="degrees")
@@ -813,9 +899,47 @@ def _footprint_items(*, min_len: int) -> Check:
     return check
 
 
+#: Footprint kinds a target sky may use: those that describe sky, not the catalogue.
+_TARGET_KINDS = tuple(kind for kind in ITEM_KINDS if kind != "occupancy")
+
+
+def _target_sky_items() -> Check:
+    items = _footprint_items(min_len=1)
+
+    def check(value: Any, where: _Where) -> tuple[FootprintItem, ...]:
+        checked = items(value, where)
+        for i, item in enumerate(checked):
+            if item.kind not in _TARGET_KINDS:
+                raise InputError(
+                    f"{where.item(i)} must be a sky shape, one of "
+                    + ", ".join(f"'{k}'" for k in _TARGET_KINDS)
+                    + f"; got '{item.kind}' (it describes the catalogue, not a target)"
+                )
+        return checked
+
+    return check
+
+
 # --------------------------------------------------------------------------------------------
 # Rules linking keys of one section
 # --------------------------------------------------------------------------------------------
+
+
+def _check_catalog(table: Table, where: _Where) -> Table:
+    if table.classifier_threshold is not None and table.classifier is None:
+        raise where.key("classifier_threshold").value_error(
+            "needs a 'classifier' column", table.classifier_threshold)
+    return table
+
+
+def _check_extinction(table: Table, where: _Where) -> Table:
+    if table.map is None:  # section absent
+        return table
+    if (table.coefficient is None) == (table.band is None):
+        given = "both" if table.coefficient is not None else "neither"
+        raise InputError(f"{where.prefix} needs exactly one of 'coefficient' (R = A / E(B-V)) "
+                         f"and 'band'; got {given}")
+    return table
 
 
 def _check_footprint(table: Table, where: _Where) -> Table:
@@ -861,6 +985,28 @@ def _check_counts(table: Table, where: _Where) -> Table:
     return table
 
 
+def _check_luminosity_function(table: Table, where: _Where) -> Table:
+    if table.quantity is None:  # section absent
+        return table
+    if table.model == "double_schechter" and table.quantity != "stellar_mass":
+        raise where.key("model").value_error(
+            'is a stellar-mass form (Baldry et al. 2012); it needs quantity = "stellar_mass"',
+            table.model,
+        )
+    if table.quantity == "stellar_mass":
+        if table.fit_evolution is not None:
+            raise where.key("fit_evolution").value_error(
+                'applies to luminosity functions; quantity is "stellar_mass"',
+                list(table.fit_evolution),
+            )
+        if table.evolution.Q != 0:
+            raise where.key("evolution").value_error(
+                'Q applies to luminosity functions (quantity is "stellar_mass"); give Q = 0',
+                table.evolution.Q,
+            )
+    return table
+
+
 def _check_cosmology(table: Table, where: _Where) -> Table:
     has_params = table.H0 is not None or table.Om0 is not None
     if table.name is not None and has_params:
@@ -890,7 +1036,7 @@ def _check_engine(table: Table, where: _Where) -> Table:
 
 
 # --------------------------------------------------------------------------------------------
-# The schema: every section and key of a run file (DESIGN.md section 4)
+# The schema: every section and key of a run file (the user-visible contract)
 # --------------------------------------------------------------------------------------------
 
 SECTIONS: dict[str, Section] = {
@@ -919,6 +1065,10 @@ SECTIONS: dict[str, Section] = {
             "id": Key(_column),
             "weight": Key(_column),
             "population": Key(_choice(["galaxies", "stars"]), "galaxies"),
+            # Star/galaxy classifier: probability of being a star (or a 0/1 flag) and the
+            # value from which a source counts as a star (default 0.5 in the catalogue reader).
+            "classifier": Key(_column),
+            "classifier_threshold": Key(_real(0.0, 1.0, lo_open=True)),
             # Magnitudes that catalogues use to mean "no measurement"; common figures, no
             # source.
             "sentinels": Key(
@@ -926,7 +1076,11 @@ SECTIONS: dict[str, Section] = {
                 [99, -99, 99.99],
             ),
             "require_redshift": Key(_boolean(), False),
-        }
+            # 1-sigma redshift errors (photometric redshifts): the luminosity-function fit
+            # then convolves its model with them.
+            "redshift_error": Key(_column),
+        },
+        check=_check_catalog,
     ),
     "footprint": Section(
         {
@@ -991,13 +1145,39 @@ SECTIONS: dict[str, Section] = {
             # Luminosity (Q, mag per unit redshift) and density (P) evolution in the form of
             # Lin et al. 1999, ApJ 518, 533 (eq. 5); 0 and 0 mean no evolution.
             "evolution": Key(_table({"Q": Key(_real(), 0.0), "P": Key(_real(), 0.0)}), {}),
-        }
+            # What is estimated: the luminosity function, or the stellar-mass function of
+            # the [catalog] 'stellar_mass' column (log10 Msun).
+            "quantity": Key(_choice(["luminosity", "stellar_mass"]), "luminosity"),
+            # The form STY fits; double_schechter is Baldry et al. 2012 (MNRAS 421, 621, eq. 6).
+            "model": Key(_choice(["schechter", "double_schechter"]), "schechter"),
+            # Evolution parameters fitted instead of fixed (their `evolution` values start the
+            # fit): Q jointly with the shape, P from the redshift distribution.
+            "fit_evolution": Key(_subset(["Q", "P"])),
+            # Bins of 1/Vmax and SWML; default 0.25 mag or 0.1 dex (choice of this project).
+            "bin_width": Key(_real(0.0, lo_open=True)),
+            # Largest completeness weight 1 / completeness (completeness below 1 / weight_cap
+            # is not fully corrected, and the report says how many sources that touches).
+            "weight_cap": Key(_real(1.0), 5.0),
+            # Mass-to-light percentile that sets the mass-completeness limit per redshift.
+            "mass_limit_quantile": Key(_real(0.5, 1.0, hi_open=True), 0.95),
+        },
+        check=_check_luminosity_function,
     ),
     "variance": Section(
         {
             "methods": Key(_subset(["jackknife", "analytic"]), ["jackknife", "analytic"]),
             "regions": Key(_integer(2), 24),
             "bias": Key(_real(0.0, lo_open=True), 1.0),
+            # A parametric n(z) with this median (Smail et al. 1994, MNRAS 270, 245 form)
+            # instead of the luminosity function's or the catalogue's redshifts.
+            "redshift_median": Key(_real(0.0, 20.0, lo_open=True)),
+            # Magnitude limit of the headline values (default: the counts' faint limit).
+            "mag_limit": Key(_real()),
+            # Power-spectrum normalisation and tilt (default: the cosmology's own, else
+            # Planck 2018's); baryon wiggles in the Eisenstein & Hu transfer function.
+            "sigma8": Key(_real(0.0, 3.0, lo_open=True)),
+            "n_s": Key(_real(0.0, 2.0, lo_open=True, hi_open=True)),
+            "wiggles": Key(_boolean(), True),
         }
     ),
     "totals": Section(
@@ -1008,6 +1188,46 @@ SECTIONS: dict[str, Section] = {
             "stars": Key(_boolean(), False),
             # Chabrier 2003, PASP 115, 763: the IMF most stellar-mass catalogues assume.
             "imf": Key(_choice(["kroupa", "chabrier", "salpeter"]), "chabrier"),
+            # The part of the sky totals are for (union of footprint items); absent: all of it.
+            "target_sky": Key(_target_sky_items()),
+        }
+    ),
+    "extinction": Section(
+        {
+            # A HEALPix map of E(B-V) (any nside, RING or NEST, full or partial sky).
+            "map": Key(_path(), REQUIRED),
+            # R = A_band / E(B-V): given, or looked up by band name.
+            "coefficient": Key(_real(0.0, lo_open=True, unit="(A_band / E(B-V))")),
+            "band": Key(_extinction_band()),
+            "nest": Key(_boolean()),
+        },
+        check=_check_extinction,
+    ),
+    "sky_model": Section(
+        {
+            "mag_limit": Key(_real()),
+            "covariate_sets": Key(_covariate_sets()),
+            "maps": Key(_covariate_maps(), []),
+            "likelihood": Key(_choice(["negative_binomial", "poisson"]), "negative_binomial"),
+            "nside": Key(_power_of_two(1, 1024), 64),
+            "draws": Key(_integer(100, 1_000_000), 4000),
+        }
+    ),
+    "contamination": Section(
+        {
+            # A star catalogue of the same survey over the same footprint, subtracted from the
+            # galaxy counts bin by bin.
+            "star_catalog": Key(
+                _list_of(
+                    _path("must be a file path or glob pattern (a non-empty string)"),
+                    min_len=1,
+                    rule="must be a list of file paths or glob patterns (at least one)",
+                ),
+                REQUIRED,
+            ),
+            # Its columns, when they differ from [catalog]'s names.
+            "columns": Key(_table({"ra": Key(_column), "dec": Key(_column),
+                                   "mag": Key(_column)}), {}),
         }
     ),
     "cosmology": Section(
@@ -1054,8 +1274,67 @@ def _check_redshifts_for_lf(
         )
 
 
+def _check_masses_for_mf(
+    sections: Mapping[str, Table], present: frozenset[str], where: _Where
+) -> None:
+    if ({"luminosity_function", "catalog"} <= present
+            and sections["luminosity_function"].quantity == "stellar_mass"
+            and sections["catalog"].stellar_mass is None):
+        raise InputError(
+            f"{where.in_section('luminosity_function').prefix} quantity = \"stellar_mass\" "
+            "needs a stellar mass per source; got no [catalog] 'stellar_mass' column"
+        )
+
+
+def _check_sky_model(
+    sections: Mapping[str, Table], present: frozenset[str], where: _Where
+) -> None:
+    if "sky_model" not in present:
+        return
+    here = where.in_section("sky_model")
+    section = sections["sky_model"]
+    if section.mag_limit is None and sections["totals"].whole_sky_mag_limit is None:
+        raise InputError(f"{here.prefix} needs a magnitude limit: give 'mag_limit', or "
+                         "[totals] 'whole_sky_mag_limit'; got neither")
+    from countscale.skymodel import BASIS
+
+    known = [*BASIS, *(m.name for m in section.maps)]
+    if "extinction" in present:
+        known.append("ebv")
+    for i, item in enumerate(section.maps):
+        if item.name in BASIS or (item.name == "ebv" and "extinction" in present):
+            raise here.key("maps").item(i).key("name").value_error(
+                "must differ from the galactic basis' names and 'ebv' (the [extinction] map)",
+                item.name)
+    for i, names in enumerate(section.covariate_sets or ()):
+        for j, name in enumerate(names):
+            if name not in known:
+                hint = (" ('ebv' needs an [extinction] section)" if name == "ebv" else "")
+                raise here.key("covariate_sets").item(i).item(j).value_error(
+                    "must be a covariate of the galactic basis or a map named in 'maps'"
+                    + hint, name, _did_you_mean(name, known, _show) or
+                    "; expected one of " + ", ".join(known))
+
+
+def _check_contamination(
+    sections: Mapping[str, Table], present: frozenset[str], where: _Where
+) -> None:
+    if "contamination" not in present or "catalog" not in present:
+        return
+    here = where.in_section("contamination")
+    if sections["catalog"].population != "galaxies":
+        raise InputError(f"{here.prefix} subtracts stars from galaxy counts; got [catalog] "
+                         f"population = {_show(sections['catalog'].population)}")
+    if sections["catalog"].classifier is not None:
+        raise InputError(f"{here.prefix} and [catalog] 'classifier' both remove stars; give "
+                         f"one of them; got classifier = {_show(sections['catalog'].classifier)}")
+
+
 _FILE_CHECKS: tuple[Callable[[Mapping[str, Table], frozenset[str], _Where], None], ...] = (
     _check_redshifts_for_lf,
+    _check_masses_for_mf,
+    _check_sky_model,
+    _check_contamination,
 )
 
 

@@ -36,6 +36,18 @@ Counting rules
 * Redshift bins (optional) are half-open too; sources without a finite redshift, or outside the
   edges, are in every other histogram and counted in ``n_redshift_unbinned``.
 
+Extinction and star/galaxy classification (optional)
+----------------------------------------------------
+* With an ``extinction`` map, every in-footprint source is counted (and its ``mag`` column
+  kept) at its dereddened magnitude m − A, A = R · E(B−V) at the source's map pixel.
+* With a ``classifier`` column in the source, in-footprint sources of the other class (stars,
+  classifier >= ``classifier_threshold``, in a galaxy catalogue; galaxies in a star catalogue)
+  are left out of every histogram and counted in the ledger as rejected for
+  ``star_by_classifier`` (or ``galaxy_by_classifier``), and per region and magnitude in
+  ``excluded_histogram``, so the contamination they would have caused is known bin by bin.
+  Sources with a NaN classifier are kept (they cannot be classified) and counted in the note
+  ``classifier_missing``; a classifier value outside [0, 1] is an error.
+
 Coverage weights
 ----------------
 The footprint's coverage fractions travel with the counts in two forms: ``region_area_deg2``
@@ -105,6 +117,8 @@ from countscale.footprint import Footprint, Regions
 
 __all__ = [
     "BLOCK_ROWS",
+    "CELL_ORDER",
+    "CLASSIFIER_REASONS",
     "COLUMNS",
     "DEFAULT_MAG_GRID",
     "ENGINES",
@@ -134,7 +148,21 @@ COLUMNS = {
     "weight": np.float32,
     "coverage": np.float32,
     "region": np.int32,
+    "cell": np.int32,
+    "redshift_error": np.float32,
+    # Positions, for per-source completeness from a depth map (float32: 0.1 arcsec).
+    "ra": np.float32,
+    "dec": np.float32,
 }
+
+#: HEALPix order of the ``cell`` column (NEST index of each source's cell): 3.4 arcmin cells,
+#: fine enough to place a source within a small field and to evaluate sky covariates there,
+#: and 12 * 4**10 < 2**31 fits int32.
+CELL_ORDER = 10
+
+#: Ledger reasons for in-footprint sources of the other class than the catalogue's population.
+CLASSIFIER_REASONS = {"galaxies": "star_by_classifier", "stars": "galaxy_by_classifier"}
+NOTE_CLASSIFIER_MISSING = "classifier_missing"
 
 ENGINES = ("local", "dask")
 
@@ -247,6 +275,12 @@ def _readonly(array: np.ndarray) -> np.ndarray:
     return view
 
 
+def _add_optional(a: np.ndarray | None, b: np.ndarray | None) -> np.ndarray | None:
+    if a is None:
+        return b
+    return a if b is None else a + b
+
+
 @dataclass(frozen=True, eq=False)
 class Tally:
     """Counts and kept columns of the in-footprint sources, and the row ledger.
@@ -279,6 +313,14 @@ class Tally:
     mag_grid : str
         ``"given"`` (bins from the caller) or ``"default"`` (:data:`DEFAULT_MAG_GRID`, trimmed
         to the occupied bins).
+    excluded_histogram : int64 ndarray, shape (n_regions + 1, n_mag + 2), or None
+        With a classifier: the in-footprint sources of the other class (left out of
+        ``histogram``), by region slot and magnitude slot as in ``histogram``.
+    excluded_reason : str or None
+        The ledger reason those sources are counted under (:data:`CLASSIFIER_REASONS`).
+    extinction : dict or None
+        With an extinction map: its description (path, nside, R, band); magnitudes are
+        dereddened.
     """
 
     ledger: Ledger
@@ -292,6 +334,9 @@ class Tally:
     columns: Mapping[str, np.ndarray] = field(default_factory=dict)
     redshift_edges: np.ndarray | None = None
     mag_grid: str = "given"
+    excluded_histogram: np.ndarray | None = None
+    excluded_reason: str | None = None
+    extinction: Mapping[str, Any] | None = None
 
     def __post_init__(self) -> None:
         n_mag = len(self.mag_edges) - 1
@@ -302,7 +347,13 @@ class Tally:
                 f"`histogram` must be int64 of shape {shape}; got {self.histogram.dtype} "
                 f"of shape {self.histogram.shape}"
             )
-        for name in ("mag_edges", "histogram", "region_area_deg2", "redshift_edges"):
+        if self.excluded_histogram is not None and self.excluded_histogram.shape != shape[:2]:
+            raise InputError(
+                f"`excluded_histogram` must have shape {shape[:2]}; got "
+                f"{self.excluded_histogram.shape}"
+            )
+        for name in ("mag_edges", "histogram", "region_area_deg2", "redshift_edges",
+                     "excluded_histogram"):
             value = getattr(self, name)
             if value is not None:
                 object.__setattr__(self, name, _readonly(value))
@@ -351,6 +402,13 @@ class Tally:
         if self.redshift_edges is None:
             return None
         return self.histogram[1:, 1:-1, :-1]
+
+    @property
+    def excluded_counts(self) -> np.ndarray | None:
+        """int64 (n_mag,): in-footprint sources the classifier left out, per magnitude bin."""
+        if self.excluded_histogram is None:
+            return None
+        return self.excluded_histogram[:, 1:-1].sum(axis=0)
 
     @property
     def n_redshift_unbinned(self) -> int:
@@ -423,6 +481,9 @@ class Tally:
             columns={k: np.concatenate([v, other.columns[k]]) for k, v in self.columns.items()},
             redshift_edges=self.redshift_edges,
             mag_grid=self.mag_grid,
+            excluded_histogram=_add_optional(self.excluded_histogram, other.excluded_histogram),
+            excluded_reason=self.excluded_reason or other.excluded_reason,
+            extinction=self.extinction,
         )
 
     def __add__(self, other: object) -> Tally:
@@ -440,12 +501,20 @@ class Tally:
             return self
         cube = np.concatenate([self.histogram[:, :1], self.histogram[:, lo + 1:hi + 1],
                                self.histogram[:, -1:]], axis=1)
+        excluded = self.excluded_histogram
+        if excluded is not None:
+            # Excluded sources in trimmed bins join the brighter/fainter overflow slots.
+            excluded = np.concatenate([excluded[:, :lo + 1].sum(axis=1, keepdims=True),
+                                       excluded[:, lo + 1:hi + 1],
+                                       excluded[:, hi + 1:].sum(axis=1, keepdims=True)], axis=1)
         return Tally(
             ledger=self.ledger, mag_edges=self.mag_edges[lo:hi + 1], histogram=cube,
             regions=self.regions, region_area_deg2=self.region_area_deg2,
             area_deg2=self.area_deg2, area_uncertainty_deg2=self.area_uncertainty_deg2,
             footprint_summary=self.footprint_summary, columns=self.columns,
             redshift_edges=self.redshift_edges, mag_grid=self.mag_grid,
+            excluded_histogram=excluded, excluded_reason=self.excluded_reason,
+            extinction=self.extinction,
         )
 
     # -- output -----------------------------------------------------------------------------
@@ -473,6 +542,15 @@ class Tally:
                 "n_unassigned": self.n_unassigned,
             },
         }
+        if self.excluded_histogram is not None:
+            out["classifier"] = {
+                "reason": self.excluded_reason,
+                "excluded_counts": [int(c) for c in self.excluded_counts],
+                "excluded_brighter": int(self.excluded_histogram[:, 0].sum()),
+                "excluded_fainter": int(self.excluded_histogram[:, -1].sum()),
+            }
+        if self.extinction is not None:
+            out["extinction"] = dict(self.extinction)
         if self.redshift_edges is not None:
             out["redshift_bins"] = {
                 "edges": [float(e) for e in self.redshift_edges],
@@ -537,8 +615,12 @@ class _Plan:
 
     def __init__(self, footprint: Footprint, regions: Regions, mag_edges: np.ndarray,
                  redshift_edges: np.ndarray | None, columns: tuple[str, ...],
-                 rules: ValidationRules, track_ids: bool):
+                 rules: ValidationRules, track_ids: bool, extinction: Any = None,
+                 classifier: tuple[float, str, str] | None = None):
         self.footprint = footprint
+        self.extinction = extinction
+        # (threshold, population kept, ledger reason) when the source has a classifier column
+        self.classifier = classifier
         self.regions = regions
         self.mag = _Binner(mag_edges)
         self.redshift_edges = redshift_edges
@@ -596,9 +678,12 @@ class _BlockResult:
     ledger: Ledger
     columns: dict[str, np.ndarray]
     ids: np.ndarray | None = None
-    id_slot: np.ndarray | None = None      # histogram index, -1 outside the footprint
+    # histogram index; -1 outside the footprint; -2 - k for a source the classifier left out,
+    # k its index in the excluded histogram
+    id_slot: np.ndarray | None = None
     id_wrapped: np.ndarray | None = None   # RA was normalised from [-180, 0)
     id_colpos: np.ndarray | None = None    # row in `columns`, -1 outside the footprint
+    excluded: np.ndarray | None = None     # flat excluded histogram (with a classifier)
 
 
 def _pixels(order: int, ra: np.ndarray, dec: np.ndarray) -> np.ndarray:
@@ -623,6 +708,52 @@ def _in_pixel_order(mixed: np.ndarray, pix: np.ndarray) -> np.ndarray:
     return mixed[np.argsort(pix[mixed])]  # ties in any order: results go back by row number
 
 
+def _classify(plan: _Plan, valid: ValidChunk, inside: np.ndarray
+              ) -> tuple[np.ndarray, int, int]:
+    """Sources of the other class among those inside: (mask, how many, unclassified kept)."""
+    threshold, population, _ = plan.classifier
+    values = valid.classifier
+    with np.errstate(invalid="ignore"):
+        bad = (values < 0.0) | (values > 1.0) | np.isinf(values)
+    if bad.any():
+        row = int(np.flatnonzero(bad)[0])
+        raise InputError(
+            f"`classifier` values must be in [0, 1] (probability of being a star, or a 0/1 "
+            f"flag; NaN for unclassified); got {float(values[row])!r} in '{valid.source}' at row "
+            f"{int(valid.row_in_file[row])}"
+        )
+    with np.errstate(invalid="ignore"):
+        star = values >= threshold
+        other = star if population == "galaxies" else values < threshold  # NaN: kept
+    other &= inside
+    missing = int(np.count_nonzero(np.isnan(values) & inside))
+    return other, int(np.count_nonzero(other)), missing
+
+
+def _dereddened(plan: _Plan, valid: ValidChunk, rows: np.ndarray) -> np.ndarray:
+    """Magnitudes of ``rows`` minus the extinction at their positions."""
+    mag = valid.mag[rows]
+    if plan.extinction is None or rows.size == 0:
+        return mag
+    extinction = plan.extinction.extinction_at(valid.ra[rows], valid.dec[rows])
+    if np.isnan(extinction).any():
+        row = int(rows[np.flatnonzero(np.isnan(extinction))[0]])
+        raise InputError(
+            f"`extinction` map has no E(B-V) at the source in '{valid.source}' row "
+            f"{int(valid.row_in_file[row])} (RA {valid.ra[row]:.6f}, Dec {valid.dec[row]:.6f})"
+        )
+    return mag - extinction
+
+
+def _region_offsets(plan: _Plan, pix: np.ndarray, offset_table: np.ndarray | None
+                    ) -> tuple[np.ndarray, np.ndarray | None]:
+    """(region + 1) * n_mag_slots of each pixel, and the region labels when looked up."""
+    if offset_table is not None:
+        return offset_table[pix >> plan.region_shift if plan.region_shift else pix], None
+    region = plan.region_of(pix)
+    return (region + 1) * plan.n_mag_slots, region
+
+
 def _tally_block(plan: _Plan, chunk: CatalogChunk, valid: ValidChunk,
                  rejected: Mapping[str, int], notes: Mapping[str, int]) -> _BlockResult:
     """Footprint test, binning and histogram of one validated block."""
@@ -641,22 +772,33 @@ def _tally_block(plan: _Plan, chunk: CatalogChunk, valid: ValidChunk,
         state = np.zeros(0, dtype=np.int8)
         inside = np.zeros(0, dtype=bool)
         mixed = np.zeros(0, dtype=np.int64)
+    n_inside = int(np.count_nonzero(inside))
+    excluded_histogram = excluded_slot = None
+    other_rows = np.zeros(0, dtype=np.int64)
+    n_other = n_missing = 0
+    if plan.classifier is not None and n:
+        other, n_other, n_missing = _classify(plan, valid, inside)
+        if n_other:
+            inside = inside & ~other
+            other_rows = np.flatnonzero(other)
     sel = np.flatnonzero(inside)
     pix_in = pix[sel]
-    region = None
-    slot = plan.mag.slots(valid.mag[sel])
-    if offset_table is not None:
-        # (region + 1) * n_mag_slots in one lookup.
-        slot += offset_table[pix_in >> plan.region_shift if plan.region_shift else pix_in]
-    else:
-        region = plan.region_of(pix_in)
-        slot += (region + 1) * plan.n_mag_slots
+    mag_in = _dereddened(plan, valid, sel)
+    slot = plan.mag.slots(mag_in)
+    offset, region = _region_offsets(plan, pix_in, offset_table)
+    slot += offset
     if plan.redshift_edges is not None:
         z = valid.redshift[sel]
         z_slot = np.searchsorted(plan.redshift_edges, z, side="right") - 1
         z_slot[(z_slot < 0) | (z_slot >= plan.n_z_slots - 1)] = plan.n_z_slots - 1
         slot = slot * plan.n_z_slots + z_slot
     histogram = np.bincount(slot, minlength=plan.n_slots).astype(np.int64, copy=False)
+    if plan.classifier is not None:
+        n_excluded_slots = (plan.regions.n_regions + 1) * plan.n_mag_slots
+        excluded_slot = plan.mag.slots(_dereddened(plan, valid, other_rows))
+        excluded_slot += _region_offsets(plan, pix[other_rows], offset_table)[0]
+        excluded_histogram = np.bincount(excluded_slot, minlength=n_excluded_slots).astype(
+            np.int64, copy=False)
 
     columns: dict[str, np.ndarray] = {}
     for name in plan.columns:
@@ -669,15 +811,34 @@ def _tally_block(plan: _Plan, chunk: CatalogChunk, valid: ValidChunk,
             if mixed.size:
                 coverage[mixed] = plan.footprint.weight_at(valid.ra[mixed], valid.dec[mixed])
             columns[name] = coverage[sel]
+        elif name == "cell":
+            columns[name] = _cells(plan, pix_in, valid, sel)
+        elif name == "mag":
+            columns[name] = mag_in.astype(np.float32)
         else:
             columns[name] = getattr(valid, name)[sel].astype(np.float32)
 
-    result = _BlockResult(histogram, Ledger.from_chunk(valid, rejected, notes, inside), columns)
+    ledger = Ledger.from_chunk(valid, rejected, notes, inside)
+    if plan.classifier is not None:
+        reason = plan.classifier[2]
+        ledger = Ledger(
+            rows_read=ledger.rows_read,
+            rows_in_footprint=ledger.rows_in_footprint,
+            rows_outside_footprint=n - n_inside,
+            rows_rejected={**ledger.rows_rejected,
+                           reason: ledger.rows_rejected.get(reason, 0) + n_other},
+            notes={**ledger.notes,
+                   NOTE_CLASSIFIER_MISSING: ledger.notes.get(NOTE_CLASSIFIER_MISSING, 0)
+                   + n_missing},
+        )
+    result = _BlockResult(histogram, ledger, columns, excluded=excluded_histogram)
     if plan.track_ids and valid.id is not None:
         # int32 halves what every task sends back per id (slots and block rows fit easily).
         index_type = np.int32 if plan.n_slots < 2**31 else np.int64
         full_slot = np.full(n, -1, dtype=index_type)
         full_slot[sel] = slot
+        if other_rows.size:
+            full_slot[other_rows] = -2 - excluded_slot
         colpos = np.full(n, -1, dtype=np.int64)
         colpos[sel] = np.arange(sel.size)
         ra, missing = chunk.ra, chunk.id_missing
@@ -699,6 +860,13 @@ def _tally_block(plan: _Plan, chunk: CatalogChunk, valid: ValidChunk,
     return result
 
 
+def _cells(plan: _Plan, pix_in: np.ndarray, valid: ValidChunk, sel: np.ndarray) -> np.ndarray:
+    """NEST cell of :data:`CELL_ORDER` of each kept source (int32)."""
+    if plan.pix_order >= CELL_ORDER:
+        return (pix_in >> (2 * (plan.pix_order - CELL_ORDER))).astype(np.int32)
+    return _pixels(CELL_ORDER, valid.ra[sel], valid.dec[sel]).astype(np.int32)
+
+
 def _validate_and_tally(plan: _Plan, chunk: CatalogChunk) -> _BlockResult:
     valid, rejected, notes = validate_chunk(chunk, plan.rules, copy=False)
     return _tally_block(plan, chunk, valid, rejected, notes)
@@ -712,11 +880,13 @@ class _Accumulator:
         self.histogram = np.zeros(plan.n_slots, dtype=np.int64)
         self.ledger = Ledger()
         self.columns: dict[str, list[np.ndarray]] = {k: [] for k in plan.columns}
+        self.excluded: np.ndarray | None = None
         self.n_kept_columns = 0
         self.id_parts: list[tuple[np.ndarray, ...]] = []
 
     def add(self, block: _BlockResult) -> None:
         self.histogram += block.histogram
+        self.excluded = _add_optional(self.excluded, block.excluded)
         self.ledger = self.ledger + block.ledger
         n_in = block.ledger.rows_in_footprint
         for name, values in block.columns.items():
@@ -730,7 +900,7 @@ class _Accumulator:
 
     def result(self) -> _BlockResult:
         columns = {k: _concat(v, COLUMNS[k]) for k, v in self.columns.items()}
-        out = _BlockResult(self.histogram, self.ledger, columns)
+        out = _BlockResult(self.histogram, self.ledger, columns, excluded=self.excluded)
         if self.plan.track_ids:
             if self.id_parts:
                 ids, slot, wrapped, colpos = (np.concatenate(p) for p in zip(*self.id_parts,
@@ -754,7 +924,7 @@ def _blocks(chunk: CatalogChunk, block_rows: int) -> Iterator[CatalogChunk]:
         yield chunk
         return
     names = ("ra", "dec", "mag", "redshift", "mag_error", "stellar_mass", "id", "id_missing",
-             "weight")
+             "weight", "classifier", "redshift_error")
     for start in range(0, n, block_rows):
         stop = start + block_rows
         arrays = {k: (None if getattr(chunk, k) is None else getattr(chunk, k)[start:stop])
@@ -961,7 +1131,7 @@ class _TaskIds:
 
 def _summary_part(part: _BlockResult) -> tuple[_BlockResult, Any]:
     """On the worker: what the driver always needs (counts, ledger, columns, the id range)."""
-    small = _BlockResult(part.histogram, part.ledger, part.columns)
+    small = _BlockResult(part.histogram, part.ledger, part.columns, excluded=part.excluded)
     if part.ids is None or part.ids.size == 0:
         return small, "none"
     if part.ids.dtype == object:
@@ -992,6 +1162,15 @@ def _reject_duplicates(part: _BlockResult, slot: np.ndarray, wrapped: np.ndarray
     histogram = part.histogram - np.bincount(slot[inside], minlength=len(part.histogram))
     rejected = dict(part.ledger.rows_rejected)
     rejected["duplicate_id"] = rejected.get("duplicate_id", 0) + n_dup
+    # Sources the classifier had left out: the duplicate rule comes first (as when tallied
+    # in one pass), so they move from the classifier's reason to duplicate_id.
+    other = slot <= -2
+    n_other = int(np.count_nonzero(other))
+    excluded = part.excluded
+    if n_other:
+        excluded = excluded - np.bincount(-2 - slot[other], minlength=len(excluded))
+        reason = next(r for r in CLASSIFIER_REASONS.values() if r in rejected)
+        rejected[reason] -= n_other
     notes = dict(part.ledger.notes)
     n_wrapped = int(np.count_nonzero(wrapped))
     if n_wrapped:
@@ -999,14 +1178,14 @@ def _reject_duplicates(part: _BlockResult, slot: np.ndarray, wrapped: np.ndarray
     ledger = Ledger(
         rows_read=part.ledger.rows_read,
         rows_in_footprint=part.ledger.rows_in_footprint - n_in,
-        rows_outside_footprint=part.ledger.rows_outside_footprint - (n_dup - n_in),
+        rows_outside_footprint=part.ledger.rows_outside_footprint - (n_dup - n_in - n_other),
         rows_rejected=rejected,
         notes=notes,
     )
     keep = np.ones(part.ledger.rows_in_footprint, dtype=bool)
     keep[colpos[inside]] = False
     columns = {k: v[keep] for k, v in part.columns.items()}
-    return _BlockResult(histogram, ledger, columns)
+    return _BlockResult(histogram, ledger, columns, excluded=excluded)
 
 
 #: How long to try reaching a scheduler before giving up.
@@ -1123,10 +1302,12 @@ def _run_dask(summary: _catalog.CatalogSummary, plan: _Plan, scheduler: Any, bar
 
 
 def _columns_iv(columns: Any, source: CatalogSource) -> tuple[str, ...]:
-    available = [c for c in COLUMNS if c in ("coverage", "region")
+    available = [c for c in COLUMNS if c in ("coverage", "region", "cell")
                  or getattr(source, c, None) is not None]
     if columns is None:
-        return tuple(available)
+        # ``cell`` only on request: it serves the sky model, not every caller; positions
+        # likewise (8 bytes per source, for completeness from a depth map).
+        return tuple(c for c in available if c not in ("cell", "ra", "dec"))
     if isinstance(columns, str) or not isinstance(columns, Sequence | set | frozenset):
         raise InputTypeError(f"`columns` must be a list of column names; got {columns!r}")
     out = []
@@ -1148,7 +1329,7 @@ def tally(source: CatalogSource, footprint: Footprint, *, regions: Regions | Non
           n_regions: int = 24, mag_bins: Any = None, redshift_bins: Any = None,
           columns: Sequence[str] | None = None, engine: str = "local", scheduler: Any = None,
           chunk_rows: int = 2_000_000, threads: int | None = None,
-          progress: bool | None = None) -> Tally:
+          progress: bool | None = None, extinction: Any = None) -> Tally:
     """Count the catalogue's sources in the footprint per region and magnitude bin.
 
     Parameters
@@ -1167,9 +1348,10 @@ def tally(source: CatalogSource, footprint: Footprint, *, regions: Regions | Non
         Adds a redshift axis to the histogram (needs a ``redshift`` column).
     columns : sequence of str, optional
         Per-source columns to keep for in-footprint sources (names from :data:`COLUMNS`);
-        default every one the source can give. ``()`` keeps none, so memory does not grow with
-        the catalogue; each kept column costs 4 bytes per in-footprint source (8 while the
-        blocks are joined at the end).
+        default every one the source can give except ``cell`` (the NEST cell of
+        :data:`CELL_ORDER`) and the positions ``ra``, ``dec``, kept only when asked for.
+        ``()`` keeps none, so memory does not grow with the catalogue; each kept column costs
+        4 bytes per in-footprint source (8 while the blocks are joined at the end).
     engine : {"local", "dask"}
         ``"local"``: this process. ``"dask"``: a ``distributed`` cluster (see ``scheduler``);
         integer counts, ledger and columns are identical to the local engine's.
@@ -1184,6 +1366,9 @@ def tally(source: CatalogSource, footprint: Footprint, *, regions: Regions | Non
         1 runs everything on the calling thread.
     progress : bool, optional
         Show a tqdm bar on stderr; default only when stderr is a terminal.
+    extinction : countscale.extinction.ExtinctionMap, optional
+        Deredden every in-footprint source (see "Extinction and star/galaxy classification" in
+        the module docstring). The map must have a value at every pixel of the footprint.
 
     Returns
     -------
@@ -1235,9 +1420,23 @@ def tally(source: CatalogSource, footprint: Footprint, *, regions: Regions | Non
             raise InputError("`redshift_bins` needs a `redshift` column in the catalogue source")
         redshift_edges = _edges_iv(redshift_bins, "redshift_bins")
     kept = _columns_iv(columns, source)
+    extinction_summary = None
+    if extinction is not None:
+        from countscale.extinction import ExtinctionMap
+
+        if not isinstance(extinction, ExtinctionMap):
+            raise InputTypeError(
+                f"`extinction` must be an ExtinctionMap; got {type(extinction).__name__}")
+        extinction.check_covers(footprint, where="`extinction`")
+        extinction_summary = extinction.summary(footprint)
+    classifier = None
+    if getattr(source, "classifier", None) is not None:
+        classifier = (source.classifier_threshold, source.population,
+                      CLASSIFIER_REASONS[source.population])
 
     plan = _Plan(footprint, regions, mag_edges, redshift_edges, kept, source.rules(),
-                 track_ids=engine == "dask" and source.id is not None)
+                 track_ids=engine == "dask" and source.id is not None, extinction=extinction,
+                 classifier=classifier)
     summary = source.check()
     with contextlib.ExitStack() as stack:
         pending_summary = None
@@ -1256,6 +1455,11 @@ def tally(source: CatalogSource, footprint: Footprint, *, regions: Regions | Non
                              else pending_summary.result())
 
     n_mag, n_z = len(mag_edges) - 1, plan.n_z_slots - 1
+    excluded = None
+    if classifier is not None:
+        excluded = (np.zeros((regions.n_regions + 1) * plan.n_mag_slots, dtype=np.int64)
+                    if part.excluded is None else part.excluded)
+        excluded = excluded.reshape(regions.n_regions + 1, n_mag + 2)
     # The summary holds the footprint's area and its uncertainty (the same properties).
     area_deg2 = footprint_summary.get("area_deg2")
     area_uncertainty_deg2 = footprint_summary.get("area_uncertainty_deg2")
@@ -1272,6 +1476,9 @@ def tally(source: CatalogSource, footprint: Footprint, *, regions: Regions | Non
         columns=part.columns,
         redshift_edges=redshift_edges,
         mag_grid=grid,
+        excluded_histogram=excluded,
+        excluded_reason=None if classifier is None else classifier[2],
+        extinction=extinction_summary,
     ).check()
     _catalog.require_rows(result.ledger)
     if result.n_unassigned:

@@ -25,6 +25,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from countscale import cosmology
+from countscale.extinction import ExtinctionMap
 from countscale.footprint import Footprint
 from countscale.lumfunc import Evolution
 from countscale.mock import (
@@ -84,6 +85,74 @@ SENTINEL_MAG = 99.0
 SAMPLE_ROWS = 1000
 PARQUET_OPTIONS = dict(compression="zstd", compression_level=9, use_dictionary=False,
                        row_group_size=1 << 20)
+
+# -- The Fernhollow Star Fields: a companion snapshot programme for stars ----------------------
+# Fields (galactic l, b in degrees) across latitude and longitude, both hemispheres; the four
+# at |b| = 15 toward the galactic centre and anticentre and the two at the poles bound the
+# covariates the sky model uses over the target |b| > 20 (so the total needs no extrapolation).
+STAR_FIELDS_LB = (
+    (0.0, 15.0), (180.0, 15.0), (0.0, -15.0), (180.0, -15.0),
+    (290.0, 15.0), (75.0, -15.0), (185.0, 20.0), (103.0, -20.0), (20.0, 25.0), (138.0, -25.0),
+    (147.0, 30.0), (16.0, -30.0), (240.0, 35.0), (310.0, -35.0), (18.0, 40.0), (200.0, -40.0),
+    (235.0, 50.0), (84.0, -50.0), (157.0, 60.0), (351.0, -60.0), (323.0, 70.0), (264.0, -70.0),
+    (141.0, 80.0), (178.0, -80.0), (0.0, 89.5), (0.0, -89.5),
+)
+# Each field's radius is chosen so that it holds about STARS_PER_FIELD stars brighter than
+# STAR_RADIUS_MAG, between 0.05 and 1.5 degrees (small near the plane, large near the poles).
+STARS_PER_FIELD = 3000
+STAR_RADIUS_MAG = 19.8
+STAR_RADIUS_RANGE_DEG = (0.05, 1.5)
+STAR_MAX_ORDER = 13
+# A disk with a radial gradient (thin-disk scale height 300 pc, scale length 2.6 kpc; Juric et
+# al. 2008, ApJ 673, 864, from memory) and the mock's default star classes.
+STAR_MODEL = DiskStars(scale_length_pc=2600.0)
+STAR_MEASUREMENT = Measurement(m50=19.5, width=0.15, m50_scatter=0.1, depth_nside=64,
+                               sigma_floor=0.01)
+N_STAR_INJECTIONS = 4000
+STAR_INJECTION_MAGS = (16.5, 21.5)
+STAR_TRUTH_MAGS = (16.0, 17.0, 18.0, 18.5, 19.0)
+STAR_SKY_MAG = 18.5            # the run's whole_sky_mag_limit: m50 - 1, complete everywhere
+STAR_TARGET_B = 20.0           # target_sky: |b| > 20 degrees
+# A synthetic E(B-V) map of our own (no real dust map): a screen that thickens toward the
+# plane as 1 / sin|b| (a plane-parallel layer) with a longitude gradient, a north-south
+# asymmetry and a patchy term; capped where it would be extreme. sdss_r coefficient.
+EBV_NSIDE = 64
+EBV_BAND = "sdss_r"
+
+
+def synthetic_ebv(nside):
+    """E(B-V) per RING pixel: 0.03 / max(sin|b|, 0.05) (1 + 0.4 cos l)(1 + 0.15 sin b) x patches."""
+    from countscale.skymodel import galactic_lb
+
+    pix = np.arange(hp.nside2npix(nside))
+    l_deg, b_deg = galactic_lb(round(math.log2(nside)), hp.ring2nest(nside, pix))
+    lr, br = np.radians(l_deg), np.radians(b_deg)
+    layer = 0.03 / np.maximum(np.abs(np.sin(br)), 0.05)
+    patches = 1.0 + 0.2 * np.sin(3.0 * lr) * np.cos(5.0 * br)
+    ebv = layer * (1.0 + 0.4 * np.cos(lr)) * (1.0 + 0.15 * np.sin(br)) * patches
+    return np.round(np.minimum(ebv, 1.5), 4).astype(np.float32)
+
+
+def star_field_footprint():
+    """The star fields as caps (ICRS centres from galactic l, b), and their table."""
+    from astropy.coordinates import SkyCoord
+    import astropy.units as u
+
+    l_deg, b_deg = np.array(STAR_FIELDS_LB).T
+    icrs = SkyCoord(l=l_deg * u.deg, b=b_deg * u.deg, frame="galactic").icrs
+    ra = decimal_round(icrs.ra.deg, 4)
+    dec = decimal_round(icrs.dec.deg, 4)
+    lr, br = np.radians(l_deg), np.radians(b_deg)
+    density = STAR_MODEL.density_per_sr(np.abs(np.sin(br)), STAR_RADIUS_MAG,
+                                        np.cos(br) * np.cos(lr)) / (180 / math.pi) ** 2
+    radius = np.sqrt(STARS_PER_FIELD / density / math.pi)
+    radius = decimal_round(np.clip(radius, *STAR_RADIUS_RANGE_DEG), 3)
+    table = pd.DataFrame({"l": l_deg, "b": b_deg, "ra": ra, "dec": dec, "radius": radius})
+    footprint = None
+    for row in table.itertuples():
+        cap = Footprint.cap(row.ra, row.dec, row.radius, max_order=STAR_MAX_ORDER)
+        footprint = cap if footprint is None else footprint | cap
+    return footprint, table
 
 
 # --------------------------------------------------------------------------------------------
@@ -321,9 +390,9 @@ def build(out, small=False, plots=True):
     (out / "survey.toml").write_text(
         runfile_text("survey.toml", box_spec, "catalog.parquet", "galaxies", SPECZ_MAG,
                      (14.0, 24.0, 18.0, 21.8), 22.0), encoding="utf-8")
-    (out / "stars.toml").write_text(
-        runfile_text("stars.toml", box_spec, "stars.parquet", "stars", None,
-                     (14.0, 24.0, 16.0, 21.8), 22.0), encoding="utf-8")
+
+    # -- the star fields ----------------------------------------------------------------------
+    star_truth = build_star_fields(out, small)
 
     # -- truth --------------------------------------------------------------------------------
     truth = {
@@ -357,6 +426,7 @@ def build(out, small=False, plots=True):
             "h": H,
         },
         "mock": mock.truth.to_dict(),
+        "star_fields": star_truth,
         # Parquet and FITS bytes carry the writer's version; the reproduction test compares
         # bytes when these match and decoded content when they do not.
         "written_with": written_with(),
@@ -365,6 +435,135 @@ def build(out, small=False, plots=True):
     if plots:
         make_plots(out, mock, catalogue, holes, footprint, box_spec)
     return truth
+
+
+# --------------------------------------------------------------------------------------------
+def build_star_fields(out, small):
+    """The star fields: catalogue, injections, depth, E(B-V) map, run file; their truth."""
+    from countscale.mock import expected_counts
+    from countscale.skymodel import target_sky_footprint
+    from countscale.runfile import FootprintItem, Table
+
+    star_seed = int(np.random.SeedSequence(SEED).spawn(4)[3].generate_state(1)[0])
+    footprint, fields = star_field_footprint()
+    if small:  # a handful of the fields, for a quick build
+        footprint = None
+        fields = fields.iloc[[0, 1, 2, 3, 24, 25]].reset_index(drop=True)
+        for row in fields.itertuples():
+            cap = Footprint.cap(row.ra, row.dec, row.radius, max_order=STAR_MAX_ORDER)
+            footprint = cap if footprint is None else footprint | cap
+    ebv = synthetic_ebv(EBV_NSIDE)
+    hp.write_map(out / "ebv.fits", ebv, overwrite=True, dtype=np.float32,
+                 column_names=["EBV"], column_units="mag",
+                 extra_header=[("COMMENT", "Synthetic E(B-V) for the fictional demo; not a "
+                                           "real dust map")])
+    extinction = ExtinctionMap.read(out / "ebv.fits", band=EBV_BAND)
+    spec = MockSpec(
+        stars=STAR_MODEL,
+        measurement=STAR_MEASUREMENT,
+        injections=Injections(n=N_STAR_INJECTIONS // (4 if small else 1),
+                              mag_range=STAR_INJECTION_MAGS),
+        mag_limits=STAR_TRUTH_MAGS,
+        seed=star_seed,
+        extinction=extinction,
+    )
+    mock = make_mock(spec, footprint=footprint)
+    rows, dropped, _ = catalogue_rows(mock, footprint, "star")
+    stars = pd.DataFrame({"id": np.arange(1, rows["ra"].size + 1, dtype=np.int64), **rows})
+    write_parquet(stars, out / "star_fields.parquet")
+    write_csv(mock.injections, out / "star_injections.csv",
+              {"mag": "%.4f", "ra": "%.6f", "dec": "%.6f"})
+    depth = np.where(np.isnan(mock.depth.m50_mag), hp.UNSEEN, np.round(mock.depth.m50_mag, 3))
+    hp.write_map(out / "star_depth.fits", depth, partial=True, overwrite=True,
+                 dtype=np.float32, column_names=["M50"], column_units="mag",
+                 extra_header=[("COMMENT", "Fernhollow Star Fields: observed r-band m50")])
+    caps = ",\n".join(f"  {{cap = {{ra = {r.ra!r}, dec = {r.dec!r}, radius = {r.radius!r}}}}}"
+                      for r in fields.itertuples())
+    (out / "stars.toml").write_text(star_runfile_text(caps), encoding="utf-8")
+
+    target_items = (FootprintItem("galactic_latitude_above", Table(b_deg=STAR_TARGET_B)),)
+    target = target_sky_footprint(target_items)
+    expected = expected_counts(spec, STAR_TRUTH_MAGS, footprint=target)
+    truth = mock.truth.to_dict()
+    truth.pop("cl", None)
+    return {
+        "file": "star_fields.parquet",
+        "rows": len(stars),
+        "dropped_by_rounding": dropped,
+        "n_fields": len(fields),
+        "fields": fields.to_dict(orient="list"),
+        "area_deg2": footprint.area_deg2,
+        "extinction_map": {"file": "ebv.fits", "nside": EBV_NSIDE, "band": EBV_BAND,
+                           "coefficient": extinction.coefficient,
+                           "formula": synthetic_ebv.__doc__.split(": ", 1)[1]},
+        "target_sky": {"galactic_latitude_above": STAR_TARGET_B,
+                       "area_deg2": target.area_deg2},
+        "sky_mag_limit": STAR_SKY_MAG,
+        "mag_limits": list(STAR_TRUTH_MAGS),
+        "n_expected_target": list(expected["footprint"]["stars"]),
+        "n_expected_sky": list(expected["sky"]["stars"]),
+        "mock": truth,
+    }
+
+
+def star_runfile_text(caps):
+    return f"""# {SURVEY}: the Star Fields (fictional demo; see README.md). Run with:
+#   countscale run demo_data/stars.toml
+# Paths are relative to this file's folder.
+
+[survey]
+name = "{SURVEY} (Star Fields)"
+description = "{len(STAR_FIELDS_LB)} small r-band star fields across the sky, m50 ~ {STAR_MEASUREMENT.m50} (a mock)"
+
+[catalog]
+paths = ["star_fields.parquet"]
+ra = "ra"
+dec = "dec"
+mag = "mag_r"
+mag_error = "mag_r_err"
+id = "id"
+population = "stars"
+
+[footprint]
+max_order = {STAR_MAX_ORDER}
+include = [
+{caps},
+]
+
+[extinction]
+map = "ebv.fits"
+band = "{EBV_BAND}"
+
+[completeness]
+injections = "star_injections.csv"
+model = "logistic"
+depth_map = "star_depth.fits"
+
+[counts]
+bins = {{start = 12.0, stop = 21.0, width = 0.2}}
+model = "power_law"
+fit_range = [14.0, {STAR_SKY_MAG}]
+
+[sky_model]
+likelihood = "negative_binomial"
+nside = 64
+draws = 4000
+
+[variance]
+methods = ["jackknife", "analytic"]
+regions = 24
+
+[totals]
+whole_sky_mag_limit = {STAR_SKY_MAG}
+target_sky = [{{galactic_latitude_above = {STAR_TARGET_B}}}]
+stars = true
+
+[cosmology]
+name = "Planck18"
+
+[output]
+dir = "countscale_demo_out"
+"""
 
 
 # --------------------------------------------------------------------------------------------

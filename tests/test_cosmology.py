@@ -431,6 +431,50 @@ def test_kcorrection_specifications():
     assert cs.as_kcorrection(table) is table
 
 
+def test_polynomial_kcorrection_is_the_polynomial_and_every_form_is_accepted():
+    # K(z) = sum c_n z^n, checked against numpy's own polynomial evaluation (Horner by hand).
+    coefficients = [0.02, 1.2, -0.3, 0.05]
+    k = cs.as_kcorrection({"form": "polynomial", "coefficients": coefficients})
+    z = np.array([0.0, 0.1, 0.55, 1.3])
+    expected = ((0.05 * z - 0.3) * z + 1.2) * z + 0.02
+    np.testing.assert_allclose(k(z), expected, rtol=1e-14)
+    assert isinstance(k(0.3), float)
+    assert k(0.0) == 0.02
+    # Explicit forms give the same functions as the short ones.
+    assert cs.as_kcorrection({"form": "power_law", "beta": -0.7})(0.8) == (
+        cs.kcorrection_power_law(0.8, -0.7))
+    table = cs.as_kcorrection({"form": "table", "z": [0.0, 1.0], "k": [0.0, 0.4]})
+    assert table(0.25) == pytest.approx(0.1, abs=1e-15)
+    # The run file's tables hold tuples (frozen): accepted too.
+    assert cs.PolynomialKCorrection((0.0, 1.0))(0.5) == 0.5
+    assert cs.as_kcorrection(k) is k
+
+
+def test_polynomial_kcorrection_errors():
+    with pytest.raises(
+        InputError, match=r"`coefficients` must hold 1 to 10 numbers \(c0, c1, ...\); got 0"
+    ):
+        cs.PolynomialKCorrection(())
+    with pytest.raises(InputError, match=r"`coefficients` must be finite; got nan \(at index 1\)"):
+        cs.PolynomialKCorrection([0.0, float("nan")])
+    with pytest.raises(InputTypeError, match=r"`coefficients` must be a list of numbers"):
+        cs.PolynomialKCorrection(1.5)
+    with pytest.raises(
+        InputError,
+        match=r"`kcorrection` form must be one of power_law, table, polynomial; got "
+        r"'polynomal' \(did you mean 'polynomial'\?\)",
+    ):
+        cs.as_kcorrection({"form": "polynomal", "coefficients": [0.0]})
+    with pytest.raises(
+        InputError,
+        match=r"`kcorrection` with form 'polynomial' must have the keys \['coefficients'\] "
+        r"besides 'form'; got \['beta'\]",
+    ):
+        cs.as_kcorrection({"form": "polynomial", "beta": 1.0})
+    with pytest.raises(InputError, match=r"`z` must be finite and >= 0; got -0.1"):
+        cs.PolynomialKCorrection([0.0, 1.0])(-0.1)
+
+
 def test_kcorrection_errors():
     with pytest.raises(InputError, match=r"`beta` must be finite; got inf"):
         cs.kcorrection_power_law(0.5, float("inf"))
@@ -461,7 +505,8 @@ def test_kcorrection_errors():
         cs.as_kcorrection({"bta": 1.0})
     with pytest.raises(
         InputError,
-        match=r"`kcorrection` must have the keys \{'beta'\} or \{'z', 'k'\}; got \['z'\]",
+        match=r"`kcorrection` must have the keys \{'beta'\} or \{'z', 'k'\} or "
+        r"\{'form', ...\}; got \['z'\]",
     ):
         cs.as_kcorrection({"z": [0, 1]})
     with pytest.raises(

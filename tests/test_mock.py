@@ -838,7 +838,7 @@ def test_inputs_are_not_modified():
 DEMO_DATA_FILES = (
     "catalog.parquet", "catalog_sample.csv", "stars.parquet", "holes.csv", "injections.csv",
     "depth.fits", "footprint.fits", "footprint_moc.fits", "survey.toml", "stars.toml",
-    "truth.json",
+    "star_fields.parquet", "star_injections.csv", "star_depth.fits", "ebv.fits", "truth.json",
 )
 DEMO_FIGURES = ("demo_footprint.png", "demo_magnitudes.png")
 
@@ -877,7 +877,8 @@ def test_demo_files_are_there_and_within_budget(demo_truth):
 
     info = demo_truth["catalogue"]
     for number in (info["rows"], info["rows_valid"], info["rows_with_z_spec"],
-                   demo_truth["stars_catalogue"]["rows"], demo_truth["footprint"]["n_holes"]):
+                   demo_truth["stars_catalogue"]["rows"], demo_truth["footprint"]["n_holes"],
+                   demo_truth["star_fields"]["rows"], demo_truth["star_fields"]["n_fields"]):
         assert spaced(number) in readme or str(number) in readme, number
     assert f"{demo_truth['footprint']['area_deg2']:.4f} deg²" in readme
 

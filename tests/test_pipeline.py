@@ -138,16 +138,21 @@ def test_counts_bins_and_variance_regions_from_the_run_file(tmp_path):
         regions = 6
         """)
     runfile, _df = make_survey(tmp_path, extra=extra)
-    result = run_survey(runfile, out_dir=tmp_path / "out", seed=1, progress=False)
+    # The catalogue is unclustered: the jackknife finds no clustering excess, and the
+    # variance stage says so beside the analytic value.
+    with pytest.warns(UserWarning, match="the jackknife finds no clustering excess"):
+        result = run_survey(runfile, out_dir=tmp_path / "out", seed=1, progress=False)
     tally_part = result.results["tally"]
     np.testing.assert_allclose(tally_part["mag_bins"]["edges"], 18.0 + 0.5 * np.arange(13))
     assert tally_part["mag_bins"]["grid"] == "given"
     assert tally_part["regions"]["n_regions"] == 6
-    # The counts stage ran on these bins; no stage reads [variance] beyond its regions yet.
-    assert result.stages == ("tally", "counts")
+    # The counts stage ran on these bins, after the variance stage (its jackknife over the
+    # 6 regions, and the analytic value from the catalogue's redshifts).
+    assert result.stages == ("tally", "variance", "counts")
+    assert result.results["variance"]["jackknife"]["n_regions"] == 6
     assert result.results["counts"]["differential"]["mag_lo"][0] == 18.0
-    assert result.results["run"]["sections_not_run"] == ["variance"]
-    assert "## Not run" in (tmp_path / "out" / "report.md").read_text()
+    assert result.results["run"]["sections_not_run"] == []
+    assert "## Not run" not in (tmp_path / "out" / "report.md").read_text()
 
 
 def test_same_seed_same_results_json(tmp_path):
@@ -342,3 +347,56 @@ def test_dask_run_gives_the_same_results_json_apart_from_the_engine(tmp_path):
     assert a["run"].pop("engine") == "local" and b["run"].pop("engine") == "dask"
     assert a == b
     assert remote.tally.ledger.rows_rejected["duplicate_id"] == 5
+
+
+# --------------------------------------------------------------------------------------------
+# The variance stage's n(z) and populations
+# --------------------------------------------------------------------------------------------
+
+
+def _with_catalog_lines(runfile, lines):
+    text = runfile.read_text().replace('id = "OBJID"\n', 'id = "OBJID"\n' + lines)
+    runfile.write_text(text)
+    return runfile
+
+
+def test_variance_stage_uses_a_median_redshift_when_given(tmp_path):
+    extra = "\n[counts]\nbins = {start = 18.0, stop = 24.0, width = 0.5}\n" \
+            "\n[variance]\nregions = 6\nredshift_median = 0.7\nbias = 1.5\nmag_limit = 23.0\n"
+    runfile, _ = make_survey(tmp_path, extra=extra)
+    with pytest.warns(UserWarning, match="jackknife finds no clustering excess"):
+        result = run_survey(runfile, out_dir=tmp_path / "out", seed=2, progress=False)
+    analytic = result.results["variance"]["analytic"]
+    assert analytic["nz"]["median"] == pytest.approx(0.7, rel=2e-3)
+    assert analytic["bias"] == 1.5
+    assert result.results["variance"]["m_limit"] == 23.0
+    assert result.results["variance"]["m_limit_source"] == "[variance] mag_limit"
+    # The counts' population interval carries it; the this-field one is Poisson only.
+    integral = result.results["counts"]["integral_counts"]
+    assert integral["cosmic_variance"]["method"] == "analytic"
+    assert integral["per_deg2_this_field"]["budget"] == {"poisson": 1.0}
+
+
+def test_variance_stage_without_any_redshift_is_a_clear_error(tmp_path):
+    runfile, _ = make_survey(tmp_path, extra="\n[variance]\nregions = 6\n")
+    text = runfile.read_text().replace('redshift = "Z"\n', "")
+    runfile.write_text(text)
+    with pytest.raises(InputError, match=r"survey.toml: \[variance\]: the analytic cosmic "
+                                         r"variance needs a redshift distribution: give "
+                                         r"'redshift_median'"):
+        run_survey(runfile, out_dir=tmp_path / "out", seed=2, progress=False)
+
+
+def test_variance_stage_for_stars_keeps_the_jackknife_only(tmp_path):
+    extra = "\n[counts]\nbins = {start = 18.0, stop = 24.0, width = 0.5}\n" \
+            "\n[variance]\nregions = 6\n"
+    runfile, _ = make_survey(tmp_path, extra=extra)
+    _with_catalog_lines(runfile, 'population = "stars"\n')
+    result = run_survey(runfile, out_dir=tmp_path / "out", seed=2, progress=False)
+    variance = result.results["variance"]
+    assert variance["analytic"] is None
+    assert variance["jackknife"]["n_regions"] == 6
+    assert "no analytic cosmic variance for stars" in variance["warnings"][0]
+    assert result.results["counts"]["integral_counts"]["cosmic_variance"]["method"] == \
+        "jackknife"
+    assert "variance" not in result.results.get("figures", {})

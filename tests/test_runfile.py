@@ -50,6 +50,7 @@ FULL = textwrap.dedent(
     population = "galaxies"
     sentinels = [99, -99.0, -1]
     require_redshift = true
+    redshift_error = "Z_PHOT_ERR"
 
     [footprint]
     max_order = 14
@@ -86,11 +87,22 @@ FULL = textwrap.dedent(
     mag_limits = [-24.5, -17]
     kcorrection = {form = "polynomial", coefficients = [0.0, 1.2, -0.3]}
     evolution = {Q = 1.6, P = -0.5}
+    quantity = "luminosity"
+    model = "schechter"
+    fit_evolution = ["Q"]
+    bin_width = 0.2
+    weight_cap = 4.0
+    mass_limit_quantile = 0.9
 
     [variance]
     methods = ["jackknife"]
     regions = 40
     bias = 1.3
+    redshift_median = 0.6
+    mag_limit = 24.5
+    sigma8 = 0.8
+    n_s = 0.96
+    wiggles = false
 
     [totals]
     whole_sky_mag_limit = 24.0
@@ -98,6 +110,24 @@ FULL = textwrap.dedent(
     faint_limit = 30.0
     stars = true
     imf = "kroupa"
+    target_sky = [{galactic_latitude_above = 30}, {cap = {ra = 10.0, dec = 5.0, radius = 3}}]
+
+    [extinction]
+    map = "dust/ebv.fits"
+    band = "sdss_r"
+    nest = false
+
+    [sky_model]
+    mag_limit = 21.5
+    covariate_sets = [["log_sin_b"], ["log_sin_b", "cos_l_cos_b", "ebv", "depth"], []]
+    maps = [{name = "depth", path = "inj/m50.fits", nest = true, transform = "log"}]
+    likelihood = "poisson"
+    nside = 32
+    draws = 2000
+
+    [contamination]
+    star_catalog = ["stars/*.parquet"]
+    columns = {ra = "RA_STAR", dec = "DEC_STAR", mag = "R_STAR"}
 
     [cosmology]
     H0 = 70.0
@@ -115,7 +145,13 @@ FULL = textwrap.dedent(
 )
 
 # Keys that FULL cannot use together with the keys it uses (name excludes H0/Om0).
-ALTERNATES = ['[cosmology]\nname = "WMAP9"\n']
+ALTERNATES = [
+    '[cosmology]\nname = "WMAP9"\n',
+    # [catalog] classifier and [contamination] both remove stars: one at a time.
+    '[catalog]\nclassifier = "P_STAR"\nclassifier_threshold = 0.7\n',
+    # [extinction] takes a band name or its coefficient R.
+    '[extinction]\nmap = "ebv.fits"\ncoefficient = 2.285\n',
+]
 
 MINIMAL = textwrap.dedent(
     """\
@@ -224,15 +260,37 @@ def test_full_runfile_round_trip(full_file: Path) -> None:
     assert lf.kcorrection == {"form": "polynomial", "coefficients": (0.0, 1.2, -0.3)}
     assert isinstance(lf.kcorrection, Table)
     assert lf.evolution == {"Q": 1.6, "P": -0.5}
+    assert (lf.quantity, lf.model, lf.fit_evolution) == ("luminosity", "schechter", ("Q",))
+    assert (lf.bin_width, lf.weight_cap, lf.mass_limit_quantile) == (0.2, 4.0, 0.9)
+    assert rf.catalog.redshift_error == "Z_PHOT_ERR"
 
-    assert rf.variance == {"methods": ("jackknife",), "regions": 40, "bias": 1.3}
-    assert rf.totals == {
+    assert rf.variance == {"methods": ("jackknife",), "regions": 40, "bias": 1.3,
+                           "redshift_median": 0.6, "mag_limit": 24.5, "sigma8": 0.8,
+                           "n_s": 0.96, "wiggles": False}
+    totals = dict(rf.totals)
+    target = totals.pop("target_sky")
+    assert totals == {
         "whole_sky_mag_limit": 24.0,
         "volume": {"kind": "redshift", "redshift": (0.0, 3.0)},
         "faint_limit": 30.0,
         "stars": True,
         "imf": "kroupa",
     }
+    assert [(item.kind, item.params) for item in target] == [
+        ("galactic_latitude_above", {"b_deg": 30.0}),
+        ("cap", {"ra_deg": 10.0, "dec_deg": 5.0, "radius_deg": 3.0}),
+    ]
+    assert rf.extinction == {"map": base / "dust" / "ebv.fits", "coefficient": None,
+                             "band": "sdss_r", "nest": False}
+    sky = rf.sky_model
+    assert sky.mag_limit == 21.5
+    assert sky.covariate_sets == (("log_sin_b",), ("log_sin_b", "cos_l_cos_b", "ebv", "depth"),
+                                  ())
+    assert [dict(m) for m in sky.maps] == [{"name": "depth", "path": base / "inj" / "m50.fits",
+                                            "nest": True, "transform": "log"}]
+    assert (sky.likelihood, sky.nside, sky.draws) == ("poisson", 32, 2000)
+    assert rf.contamination.star_catalog == (base / "stars" / "*.parquet",)
+    assert rf.contamination.columns == {"ra": "RA_STAR", "dec": "DEC_STAR", "mag": "R_STAR"}
     assert rf.cosmology == {"name": None, "H0": 70.0, "Om0": 0.3}
     assert rf.output == {"dir": base / "out" / "run1", "formats": ("json", "png")}
     assert rf.engine == {"kind": "dask", "scheduler": "tcp://127.0.0.1:8786", "chunk_rows": 500_000}
@@ -274,7 +332,9 @@ def test_defaults_are_filled(tmp_path: Path) -> None:
     assert rf.output.dir == tmp_path / "countscale_out"
     assert rf.output.formats == ("json", "markdown", "html", "png")
     assert rf.cosmology == {"name": "Planck18", "H0": None, "Om0": None}
-    assert rf.variance == {"methods": ("jackknife", "analytic"), "regions": 24, "bias": 1.0}
+    assert rf.variance == {"methods": ("jackknife", "analytic"), "regions": 24, "bias": 1.0,
+                           "redshift_median": None, "mag_limit": None, "sigma8": None,
+                           "n_s": None, "wiggles": True}
 
 
 def test_defaults_inside_sections_and_items(tmp_path: Path) -> None:
@@ -316,12 +376,16 @@ def test_defaults_inside_sections_and_items(tmp_path: Path) -> None:
     assert lf.methods == ("vmax", "sty", "swml")
     assert lf.kcorrection is None
     assert lf.evolution == {"Q": 0.0, "P": 0.0}
+    assert (lf.quantity, lf.model, lf.fit_evolution, lf.bin_width) == (
+        "luminosity", "schechter", None, None)
+    assert (lf.weight_cap, lf.mass_limit_quantile) == (5.0, 0.95)
     assert rf.totals == {
         "whole_sky_mag_limit": None,
         "volume": None,
         "faint_limit": None,
         "stars": False,
         "imf": "chabrier",
+        "target_sky": None,
     }
     assert "totals" in rf.present
 
@@ -1008,6 +1072,55 @@ BAD = [
             " got no [catalog] 'redshift' column"
         ),
     ),
+    (
+        "double-schechter-needs-masses",
+        MINIMAL + "[luminosity_function]\nredshift_range = [0.1, 1]\nmag_limits = [14, 19]\n"
+        'model = "double_schechter"\n',
+        InputError,
+        exact(
+            f"{F}: [luminosity_function] 'model' is a stellar-mass form (Baldry et al. 2012); "
+            'it needs quantity = "stellar_mass"; got "double_schechter"'
+        ),
+    ),
+    (
+        "fit-evolution-of-a-mass-function",
+        MINIMAL + "[luminosity_function]\nredshift_range = [0.1, 1]\nmag_limits = [14, 19]\n"
+        'quantity = "stellar_mass"\nfit_evolution = ["Q"]\n',
+        InputError,
+        exact(
+            f"{F}: [luminosity_function] 'fit_evolution' applies to luminosity functions; "
+            'quantity is "stellar_mass"; got ["Q"]'
+        ),
+    ),
+    (
+        "luminosity-evolution-of-a-mass-function",
+        MINIMAL + "[luminosity_function]\nredshift_range = [0.1, 1]\nmag_limits = [14, 19]\n"
+        'quantity = "stellar_mass"\nevolution = {Q = 1.0}\n',
+        InputError,
+        exact(
+            f"{F}: [luminosity_function] 'evolution' Q applies to luminosity functions "
+            '(quantity is "stellar_mass"); give Q = 0; got 1.0'
+        ),
+    ),
+    (
+        "mass-function-needs-mass-column",
+        MINIMAL.replace('mag = "mag"', 'mag = "mag"\nredshift = "z"')
+        + "[luminosity_function]\nredshift_range = [0.1, 1]\nmag_limits = [14, 19]\n"
+        'quantity = "stellar_mass"\n',
+        InputError,
+        exact(
+            f'{F}: [luminosity_function] quantity = "stellar_mass" needs a stellar mass per '
+            "source; got no [catalog] 'stellar_mass' column"
+        ),
+    ),
+    (
+        "weight-cap-below-one",
+        MINIMAL.replace('mag = "mag"', 'mag = "mag"\nredshift = "z"')
+        + "[luminosity_function]\nredshift_range = [0.1, 1]\nmag_limits = [14, 19]\n"
+        "weight_cap = 0.5\n",
+        InputError,
+        exact(f"{F}: [luminosity_function] 'weight_cap' must be a number >= 1; got 0.5"),
+    ),
     # -- variance -----------------------------------------------------------------------------
     (
         "variance-regions-range",
@@ -1035,6 +1148,30 @@ BAD = [
             f'{F}: [variance] \'methods[0]\' must be one of "jackknife", "analytic";'
             ' got "bootstrap"'
         ),
+    ),
+    (
+        "variance-redshift-median-zero",
+        "[variance]\nredshift_median = 0\n",
+        InputError,
+        exact(f"{F}: [variance] 'redshift_median' must be a number in (0, 20]; got 0"),
+    ),
+    (
+        "variance-sigma8-text",
+        '[variance]\nsigma8 = "high"\n',
+        InputTypeError,
+        exact(f'{F}: [variance] \'sigma8\' must be a number in (0, 3]; got "high"'),
+    ),
+    (
+        "variance-n-s-range",
+        "[variance]\nn_s = 2\n",
+        InputError,
+        exact(f"{F}: [variance] 'n_s' must be a number in (0, 2); got 2"),
+    ),
+    (
+        "variance-wiggles-text",
+        '[variance]\nwiggles = "yes"\n',
+        InputTypeError,
+        exact(f'{F}: [variance] \'wiggles\' must be true or false; got "yes"'),
     ),
     # -- totals -------------------------------------------------------------------------------
     (
@@ -1169,6 +1306,127 @@ BAD = [
         "[engine]\nchunk_rows = 0\n",
         InputError,
         exact(f"{F}: [engine] 'chunk_rows' must be an integer >= 1; got 0"),
+    ),
+    # -- populations across the sky (target sky, extinction, sky model, stars) ---------------
+    (
+        "target-sky-occupancy",
+        "[totals]\ntarget_sky = [{occupancy = {order = 5}}]\n",
+        InputError,
+        exact(f"{F}: [totals] 'target_sky[0]' must be a sky shape, one of 'map', 'moc', 'cap',"
+              " 'box', 'polygon', 'circles', 'galactic_latitude_below', 'galactic_latitude_above'"
+              "; got 'occupancy' (it describes the catalogue, not a target)"),
+    ),
+    (
+        "target-sky-empty",
+        "[totals]\ntarget_sky = []\n",
+        InputError,
+        r"^survey\.toml: \[totals\] 'target_sky' must be a list of footprint items .*"
+        r"\(at least 1\); got \[\]$",
+    ),
+    (
+        "extinction-coefficient-not-positive",
+        '[extinction]\nmap = "ebv.fits"\ncoefficient = 0\n',
+        InputError,
+        exact(f"{F}: [extinction] 'coefficient' must be a number > 0 (A_band / E(B-V)); got 0"),
+    ),
+    (
+        "extinction-coefficient-negative",
+        '[extinction]\nmap = "ebv.fits"\ncoefficient = -2.3\n',
+        InputError,
+        exact(f"{F}: [extinction] 'coefficient' must be a number > 0 (A_band / E(B-V));"
+              " got -2.3"),
+    ),
+    (
+        "extinction-band-unknown",
+        '[extinction]\nmap = "ebv.fits"\nband = "sdss_rr"\n',
+        InputError,
+        r"^survey\.toml: \[extinction\] 'band' must be one of \"sdss_u\", .*; got \"sdss_rr\";"
+        r" did you mean \"sdss_r\"\?$",
+    ),
+    (
+        "extinction-both-r-and-band",
+        '[extinction]\nmap = "ebv.fits"\nband = "sdss_r"\ncoefficient = 2.3\n',
+        InputError,
+        exact(f"{F}: [extinction] needs exactly one of 'coefficient' (R = A / E(B-V)) and "
+              "'band'; got both"),
+    ),
+    (
+        "extinction-no-map",
+        "[extinction]\nband = \"sdss_r\"\n",
+        InputError,
+        exact(f"{F}: [extinction] missing required key 'map'"),
+    ),
+    (
+        "classifier-threshold-out-of-range",
+        '[catalog]\npaths = ["c.parquet"]\nra = "ra"\ndec = "dec"\nmag = "m"\n'
+        'classifier = "P"\nclassifier_threshold = 1.5\n',
+        InputError,
+        exact(f"{F}: [catalog] 'classifier_threshold' must be a number in (0, 1]; got 1.5"),
+    ),
+    (
+        "classifier-threshold-without-column",
+        '[catalog]\npaths = ["c.parquet"]\nra = "ra"\ndec = "dec"\nmag = "m"\n'
+        "classifier_threshold = 0.7\n",
+        InputError,
+        exact(f"{F}: [catalog] 'classifier_threshold' needs a 'classifier' column; got 0.7"),
+    ),
+    (
+        "sky-model-without-limit",
+        "[sky_model]\nnside = 32\n",
+        InputError,
+        exact(f"{F}: [sky_model] needs a magnitude limit: give 'mag_limit', or [totals] "
+              "'whole_sky_mag_limit'; got neither"),
+    ),
+    (
+        "sky-model-unknown-covariate",
+        '[sky_model]\nmag_limit = 20\ncovariate_sets = [["log_sin_bb"]]\n',
+        InputError,
+        exact(f"{F}: [sky_model] 'covariate_sets[0][0]' must be a covariate of the galactic "
+              'basis or a map named in \'maps\'; got "log_sin_bb"; did you mean "log_sin_b"?'),
+    ),
+    (
+        "sky-model-ebv-without-extinction",
+        '[sky_model]\nmag_limit = 20\ncovariate_sets = [["ebv"]]\n',
+        InputError,
+        r"^survey\.toml: \[sky_model\] 'covariate_sets\[0\]\[0\]' must be a covariate of the "
+        r"galactic basis or a map named in 'maps' \('ebv' needs an \[extinction\] section\);"
+        r" got \"ebv\"; expected one of log_sin_b, .*$",
+    ),
+    (
+        "sky-model-nside-not-power-of-two",
+        "[sky_model]\nmag_limit = 20\nnside = 48\n",
+        InputError,
+        exact(f"{F}: [sky_model] 'nside' must be a power of 2 in [1, 1024]; got 48"),
+    ),
+    (
+        "sky-model-repeated-set",
+        '[sky_model]\nmag_limit = 20\ncovariate_sets = [["sin_b"], ["sin_b"]]\n',
+        InputError,
+        exact(f"{F}: [sky_model] 'covariate_sets' must not list the same covariate set twice;"
+              ' got [["sin_b"], ["sin_b"]]'),
+    ),
+    (
+        "sky-model-map-named-like-basis",
+        '[sky_model]\nmag_limit = 20\nmaps = [{name = "sin_b", path = "m.fits"}]\n',
+        InputError,
+        exact(f"{F}: [sky_model] 'maps[0].name' must differ from the galactic basis' names and "
+              "'ebv' (the [extinction] map); got \"sin_b\""),
+    ),
+    (
+        "contamination-for-stars",
+        '[catalog]\npaths = ["c.parquet"]\nra = "ra"\ndec = "dec"\nmag = "m"\n'
+        'population = "stars"\n[contamination]\nstar_catalog = ["s.parquet"]\n',
+        InputError,
+        exact(f'{F}: [contamination] subtracts stars from galaxy counts; got [catalog] '
+              'population = "stars"'),
+    ),
+    (
+        "contamination-and-classifier",
+        '[catalog]\npaths = ["c.parquet"]\nra = "ra"\ndec = "dec"\nmag = "m"\n'
+        'classifier = "P"\n[contamination]\nstar_catalog = ["s.parquet"]\n',
+        InputError,
+        exact(f"{F}: [contamination] and [catalog] 'classifier' both remove stars; give one of "
+              'them; got classifier = "P"'),
     ),
     # -- TOML syntax --------------------------------------------------------------------------
     (

@@ -762,6 +762,100 @@ def test_dask_text_ids_duplicated_across_files(tmp_path, dask_client):
                                    scheduler=dask_client))
 
 
+def _classified(df, rng):
+    """Add a star probability column P (some NaN: unclassified) to a frame."""
+    out = df.copy()
+    p = np.random.default_rng(rng).random(len(out))
+    p[::97] = np.nan
+    out["P"] = p
+    return out
+
+
+def _dust(nside=32):
+    """An E(B-V) map rising with RA over the test box (NEST ordering)."""
+    from countscale.extinction import ExtinctionMap
+
+    ra, _ = hp.pix2ang(nside, np.arange(hp.nside2npix(nside)), nest=True, lonlat=True)
+    return ExtinctionMap(0.01 + 0.02 * ((ra - 148.0) % 360.0) / 14.0, 2.285, nest=True)
+
+
+def test_classifier_and_extinction_match_a_row_by_row_oracle(tmp_path):
+    df = _classified(frame(8000, 40), 41)
+    path = write(df, tmp_path / "cat.parquet", row_group_size=1500)
+    fp = box()
+    ext = _dust()
+    src = source(path, classifier="P", classifier_threshold=0.6)
+    result = tally(src, fp, n_regions=5, mag_bins={"start": 17, "stop": 25, "width": 0.5},
+                   columns=("mag", "cell", "region"), extinction=ext)
+    # Oracle: inside by the footprint's own test; stars P >= 0.6 (NaN: kept); dereddened
+    # magnitudes m - 2.285 E(B-V) at the source's pixel (healpy ang2pix, NEST).
+    inside = fp.contains(df.RA.to_numpy(), df.DEC.to_numpy())
+    star = (df.P >= 0.6).to_numpy()
+    pixel = hp.ang2pix(32, df.RA.to_numpy(), df.DEC.to_numpy(), nest=True, lonlat=True)
+    dered = df.MAG.to_numpy() - 2.285 * ext.ebv[pixel]
+    edges = np.arange(17.0, 25.01, 0.5)
+    kept = inside & ~star
+    np.testing.assert_array_equal(result.counts, np.histogram(dered[kept], edges)[0])
+    np.testing.assert_array_equal(result.excluded_counts,
+                                  np.histogram(dered[inside & star], edges)[0])
+    ledger = result.ledger
+    assert ledger.rows_in_footprint == int(kept.sum())
+    assert ledger.rows_rejected["star_by_classifier"] == int((inside & star).sum())
+    assert ledger.rows_outside_footprint == int((~inside).sum())
+    assert ledger.notes["classifier_missing"] == int((inside & df.P.isna()).sum())
+    np.testing.assert_allclose(result.columns["mag"], dered[kept].astype(np.float32))
+    # The cell column: each kept source's NEST cell of order 10 (healpy ang2pix).
+    np.testing.assert_array_equal(result.columns["cell"], hp.ang2pix(
+        1024, df.RA.to_numpy()[kept], df.DEC.to_numpy()[kept], nest=True, lonlat=True))
+    # Trimming the default grid keeps every excluded source (in bins or overflow slots).
+    default = tally(src, fp, n_regions=5, extinction=ext)
+    assert int(default.excluded_histogram.sum()) == int((inside & star).sum())
+
+
+def test_dask_equals_local_with_classifier_extinction_and_duplicates(tmp_path, monkeypatch,
+                                                                    dask_client):
+    paths, _ = duplicate_catalogue(tmp_path)
+    monkeypatch.setattr(tally_module, "_TASK_ROWS", 1000)
+    # Add a classifier to each file (rewritten in the same formats, same ids).
+    rng = np.random.default_rng(42)
+    rewritten = []
+    for path in paths:
+        if path.endswith(".parquet"):
+            table = pq.read_table(path)
+            p = rng.random(table.num_rows)
+            pq.write_table(table.append_column("P", pa.array(p)), path, row_group_size=700)
+        elif path.endswith(".fits"):
+            data = Table.read(path)
+            data["P"] = rng.random(len(data))
+            data.write(path, overwrite=True)
+        else:
+            data = pd.read_csv(path)
+            data["P"] = rng.random(len(data))
+            data.to_csv(path, index=False)
+        rewritten.append(path)
+    src = source(rewritten, redshift="Z", id="OBJID", classifier="P")
+    fp = box(max_order=13)
+    regions = fp.split(6)
+    kw = dict(regions=regions, columns=("mag", "cell"), extinction=_dust())
+    local = tally(src, fp, **kw)
+    assert local.ledger.rows_rejected["star_by_classifier"] > 1000
+    assert local.ledger.rows_rejected["duplicate_id"] > 150
+    # Count the repeated rows the classifier had left out in their own task (the driver
+    # moves them to duplicate_id): the scenario must exercise that path.
+    seen = []
+    reject = tally_module._reject_duplicates
+
+    def spy(part, slot, wrapped, colpos):
+        seen.append(int(np.count_nonzero(slot <= -2)))
+        return reject(part, slot, wrapped, colpos)
+
+    monkeypatch.setattr(tally_module, "_reject_duplicates", spy)
+    remote = tally(src, fp, engine="dask", scheduler=dask_client, **kw)
+    assert sum(seen) > 10
+    assert_same_tally(local, remote)
+    np.testing.assert_array_equal(local.excluded_histogram, remote.excluded_histogram)
+
+
 def test_dask_unreachable_scheduler(tmp_path, monkeypatch):
     path = write(frame(100, 33), tmp_path / "a.parquet")
     monkeypatch.setattr(tally_module, "_CONNECT_TIMEOUT", "1s")
