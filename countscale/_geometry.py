@@ -25,6 +25,7 @@ the finest sub-cells are counted by their centres; the fraction's standard error
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from functools import lru_cache
 
@@ -755,6 +756,26 @@ def merge_intervals(starts, ends):
     return out_starts, out_ends
 
 
+#: Most boundary cells a shape may put at `max_order` (each costs ~50 bytes while it is
+#: measured): beyond this the build would need several GB (order 29 on a 40 deg^2 box asks for
+#: ~5e8). A readability and memory choice, no source.
+MAX_BOUNDARY_CELLS = 50_000_000
+
+
+def _check_boundary_budget(n_cells, order, max_order):
+    """Refuse early when the boundary, which doubles in cells per order, will not fit."""
+    if order < 8 or n_cells < 1000:
+        return
+    projected = n_cells * 2.0 ** (max_order - order)
+    if projected > MAX_BOUNDARY_CELLS:
+        fits = order + math.floor(math.log2(MAX_BOUNDARY_CELLS / n_cells))
+        raise InputError(
+            f"`max_order` {max_order} would put about {projected:.1e} cells on the footprint's "
+            f"boundary (at most {MAX_BOUNDARY_CELLS:.0e} fit in memory); use max_order <= "
+            f"{fits}"
+        )
+
+
 def _refine(shape, part_ids, max_order, starts, ends, cells_out, frac_out, sigma_out,
             parts_out):
     cells = np.tile(np.arange(12, dtype=np.int64), len(part_ids))
@@ -774,6 +795,7 @@ def _refine(shape, part_ids, max_order, starts, ends, cells_out, frac_out, sigma
         cells, part = cells[keep], part[keep]
         if order == max_order or len(cells) == 0:
             break
+        _check_boundary_budget(len(cells), order, max_order)
         cells = (cells[:, None] * 4 + np.arange(4, dtype=np.int64)).reshape(-1)
         part = np.repeat(part, 4)
         order += 1

@@ -802,3 +802,12 @@ def test_disc_walk_does_not_depend_on_the_thread_count(monkeypatch):
             assert np.array_equal(a.edges, b.edges)
             assert np.array_equal(a.weight, b.weight)
             assert (a.sigma is None and b.sigma is None) or np.array_equal(a.sigma, b.sigma)
+
+
+def test_a_boundary_too_fine_to_hold_is_refused_early():
+    # A 40 deg^2 box at order 29 has ~5e8 boundary cells (perimeter / cell size, HEALPix cell
+    # side ~ sqrt(pi / 3) / 2**29 rad: Gorski et al. 2005, ApJ 622, 759): refused at once,
+    # naming the order that fits, instead of exhausting memory.
+    with pytest.raises(InputError, match=r"`max_order` 29 would put about .* cells on the "
+                                         r"footprint's boundary .* use max_order <= 2[0-9]"):
+        Footprint.box((157.5, 166.0), (40.0, 46.4), max_order=29)
