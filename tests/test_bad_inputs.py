@@ -350,12 +350,6 @@ def test_a_byte_order_mark_is_not_a_syntax_error(small_demo, tmp_path, capsys):
     assert json.loads(capsys.readouterr().out)["area_deg2"] == pytest.approx(1.4858, abs=1e-4)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="the footprint module compares a float32 map with healpy.UNSEEN in float64; the "
-           "fix (healpy.mask_bad, or comparing in the map's own dtype) belongs to the "
-           "footprint module, which this branch does not edit",
-)
 def test_unseen_in_a_float32_coverage_map_is_outside_like_nan(tmp_path, capsys):
     # healpy writes UNSEEN (-1.6375e30) into float32 maps; read back as float64 it is not
     # equal to healpy.UNSEEN, but it means "no data" exactly as NaN does.

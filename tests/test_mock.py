@@ -212,7 +212,10 @@ def test_unclustered_cell_counts_are_poisson():
     dispersion = float(((counts - counts.mean()) ** 2).sum() / counts.mean())
     p = stats.chi2.sf(dispersion, cells.size - 1)
     assert 1e-3 < p < 1 - 1e-3, (dispersion, cells.size)
-    assert dispersion / (cells.size - 1) == pytest.approx(1.0, abs=0.1)
+    # The index over its degrees of freedom has mean 1 and sd sqrt(2 / (N - 1)) (chi^2
+    # moments); a single-seed check allows 3 sd.
+    assert dispersion / (cells.size - 1) == pytest.approx(
+        1.0, abs=3 * np.sqrt(2.0 / (cells.size - 1)))
 
 
 def _clustered_excess_variance(seeds, cl, nside_field=128, nside_cell=16):
