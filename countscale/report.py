@@ -391,12 +391,12 @@ def summary_markdown(summary: Mapping[str, Any]) -> list[str]:
 
 class StageSection(NamedTuple):
     """How a stage's results appear in the report: its ``results.json`` key, the function
-    that renders its Markdown lines (starting with its ``##`` heading), and its figure."""
+    of its block that renders its Markdown lines (from its ``## `` heading on), and its
+    figures as ``(name in FIGURE_NAMES, words for the image)``, shown after the text."""
 
     key: str
     render: Any
-    figure: str | None = None
-    alt: str = ""
+    figures: tuple[tuple[str, str], ...] = ()
 
 
 def _footprint_markdown(results: Mapping[str, Any]) -> list[str]:
@@ -459,8 +459,8 @@ def render_markdown(results: Mapping[str, Any]) -> str:
     for section in STAGE_SECTIONS:
         if section.key in results:
             lines = section.render(results[section.key])
-            if section.figure:
-                lines += _figure_markdown(results, section.figure, section.alt)
+            for name, alt in section.figures:
+                lines += _figure_markdown(results, name, alt)
             sections.append(lines)
     other = _other_warnings(results)
     if other:
@@ -921,16 +921,17 @@ def _variance_markdown(variance: Mapping[str, Any]) -> list[str]:
 
 #: The report's sections after the summary and the footprint, in order. A stage adds its
 #: entry here: its results key, a function of its block returning Markdown lines (from its
-#: ``## `` heading on), and its figure's name in :data:`FIGURE_NAMES`.
+#: ``## `` heading on), and its figures (names in :data:`FIGURE_NAMES`, with their words).
 STAGE_SECTIONS: list[StageSection] = [
-    StageSection("completeness", _completeness_markdown, "completeness", "completeness"),
-    StageSection("counts", _counts_markdown, "counts", "number counts"),
-    StageSection("luminosity_function", _luminosity_function_markdown, "luminosity_function",
-                 "luminosity function"),
-    StageSection("variance", _variance_markdown, "variance", "cosmic variance against area"),
-    StageSection("contamination", _contamination_markdown, "contamination",
-                 "stars among the sources"),
-    StageSection("sky_model", _sky_model_markdown, "sky_model", "sky model"),
+    StageSection("completeness", _completeness_markdown, (("completeness", "completeness"),)),
+    StageSection("counts", _counts_markdown, (("counts", "number counts"),)),
+    StageSection("luminosity_function", _luminosity_function_markdown,
+                 (("luminosity_function", "luminosity function"),)),
+    StageSection("variance", _variance_markdown,
+                 (("variance", "cosmic variance against area"),)),
+    StageSection("contamination", _contamination_markdown,
+                 (("contamination", "stars among the sources"),)),
+    StageSection("sky_model", _sky_model_markdown, (("sky_model", "sky model"),)),
 ]
 
 
