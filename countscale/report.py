@@ -28,6 +28,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import re
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any, NamedTuple
@@ -125,15 +126,6 @@ ERROR_SOURCES = {
 _TOTAL_KEYS = ("sky_total", "present_day_volume_total", "light_cone_total", "stars_total",
                "stars_per_galaxy")
 
-_TOTAL_LABELS = {
-    "sky_total": "over the target sky",
-    "sky_total_naive": "over the target sky by plain area scaling",
-    "present_day_volume_total": "today's density × volume",
-    "light_cone_total": "along our past light cone",
-    "stars_total": "stars",
-    "stars_per_galaxy": "stars in one galaxy",
-}
-
 #: Below this area (deg²) a field's mean density is dominated by cosmic variance for most
 #: galaxy samples: the summary then says so even without a [variance] section (common
 #: figure, no source: cosmic variance of a few per cent at ~1-10 deg² for deep samples).
@@ -205,21 +197,9 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
         out["m50"] = depth.get("m50_median") or comp["m50"]["median"]
     population = results["run"].get("population")
     headlines = out["headlines"]
-    totals = results.get("totals") or {}
-    definitions = totals.get("definitions") or {}
-    cautions = totals.get("cautions") or {}
-    sky_details = (totals.get("details") or {}).get("sky") or {}
-    for key in _TOTAL_KEYS:
-        if not isinstance(totals.get(key), Mapping):
-            continue
-        extra = []
-        if key == "sky_total" and not any("surveyed sky" in c for c in cautions.get(key, ())):
-            extra.append(_sky_caution(area, sky_details.get("target_area_deg2")))
-        label = _total_label(key, totals, sky_details)
-        headlines.append(_headline(f"totals.{key}", label, totals[key],
-                                   [*extra, *cautions.get(key, ())], definitions.get(key)))
     counts = results.get("counts")
     if counts and "integral_counts" in counts:
+        # What the survey measured first, then what it implies beyond its footprint.
         integral = counts["integral_counts"]
         m = integral["m_limit"]
         what = "stars" if population == "stars" else "sources"
@@ -227,6 +207,21 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
             "counts.integral_counts.per_deg2", f"{what.capitalize()} per deg² brighter than "
             f"m = {m:g} (the population's mean density)", integral["per_deg2"],
             definition=integral.get("note")))
+    totals = results.get("totals") or {}
+    definitions = totals.get("definitions") or {}
+    cautions = totals.get("cautions") or {}
+    details = totals.get("details") or {}
+    for key in _TOTAL_KEYS:
+        if not isinstance(totals.get(key), Mapping):
+            continue
+        extra = []
+        if key == "sky_total" and not any("surveyed sky" in c for c in cautions.get(key, ())):
+            extra.append(_sky_caution(area, (details.get("sky") or {}).get("target_area_deg2")))
+        if key in ("present_day_volume_total", "light_cone_total", "stars_total"):
+            extra.append(_volume_caution(results, details.get("volume") or {}))
+        headlines.append(_headline(f"totals.{key}", _total_label(key, totals, details),
+                                   totals[key], [*extra, *cautions.get(key, ())],
+                                   definitions.get(key)))
     sky = results.get("sky_model")
     if sky and "total" in sky:
         outside = sky.get("fraction_outside_observed_range") or {}
@@ -241,8 +236,16 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
     return out
 
 
-def _total_label(key: str, totals: Mapping[str, Any], sky: Mapping[str, Any]) -> str:
+def _short_volume(volume: Mapping[str, Any]) -> str:
+    """``"the observable universe"`` from ``"the observable universe (the comoving ...)"``."""
+    text = volume.get("volume") or "the volume"
+    return text.split(" (")[0]
+
+
+def _total_label(key: str, totals: Mapping[str, Any], details: Mapping[str, Any]) -> str:
     unit = (totals[key].get("unit") or "sources").strip()
+    sky, volume = details.get("sky") or {}, details.get("volume") or {}
+    limit = f" {volume['limit_text']}" if volume.get("limit_text") else ""
     if key == "sky_total":
         m = sky.get("m_limit")
         target = sky.get("target_sky")
@@ -250,14 +253,28 @@ def _total_label(key: str, totals: Mapping[str, Any], sky: Mapping[str, Any]) ->
         return (f"{unit.capitalize()} brighter than m = {m:g} over {where}" if m is not None
                 else f"{unit.capitalize()} over {where}")
     if key == "present_day_volume_total":
-        return f"{unit.capitalize()} in the volume: today's density × the volume"
+        return (f"{unit.capitalize()}{limit} in {_short_volume(volume)} (today's density × "
+                "its volume)")
     if key == "light_cone_total":
-        return f"{unit.capitalize()} along our past light cone"
+        return f"{unit.capitalize()}{limit} along our past light cone"
     if key == "stars_total":
-        return "Stars in the volume"
+        return f"Stars in {_short_volume(volume)}"
     if key == "stars_per_galaxy":
-        return "Stars in one galaxy of the given stellar mass"
-    return _TOTAL_LABELS.get(key, key.replace("_", " "))
+        mass = re.search(r"stellar mass (10\^[\d.]+ Msun)", totals.get("definitions", {})
+                         .get(key, ""))
+        return f"Stars in one galaxy of {mass[1]}" if mass else "Stars in one galaxy"
+    return key.replace("_", " ").capitalize()
+
+
+def _volume_caution(results: Mapping[str, Any], volume: Mapping[str, Any]) -> str:
+    """An extrapolation beyond the surveyed volume, in words."""
+    selection = (results.get("luminosity_function") or {}).get("selection") or {}
+    z_range = volume.get("fit_redshift_range") or selection.get("redshift_range")
+    measured = (f"measured at {z_range[0]:g} < z < {z_range[1]:g}" if z_range
+                else "measured nearby")
+    return (f"extrapolation beyond the surveyed volume: the luminosity function was {measured} "
+            f"over {results['footprint']['area_deg2']:.4g} deg²; this number carries it to "
+            f"{_short_volume(volume)}")
 
 
 def _run_cautions(results: Mapping[str, Any], area: float) -> list[str]:
