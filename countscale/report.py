@@ -218,7 +218,8 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
         if key == "sky_total" and not any("surveyed sky" in c for c in cautions.get(key, ())):
             extra.append(_sky_caution(area, (details.get("sky") or {}).get("target_area_deg2")))
         if key in ("present_day_volume_total", "light_cone_total", "stars_total"):
-            extra.append(_volume_caution(results, details.get("volume") or {}))
+            extra.append(_volume_caution(results, details.get("volume") or {},
+                                         light_cone=key == "light_cone_total"))
         headlines.append(_headline(f"totals.{key}", _total_label(key, totals, details),
                                    totals[key], [*extra, *cautions.get(key, ())],
                                    definitions.get(key)))
@@ -266,15 +267,17 @@ def _total_label(key: str, totals: Mapping[str, Any], details: Mapping[str, Any]
     return key.replace("_", " ").capitalize()
 
 
-def _volume_caution(results: Mapping[str, Any], volume: Mapping[str, Any]) -> str:
+def _volume_caution(results: Mapping[str, Any], volume: Mapping[str, Any],
+                    light_cone: bool = False) -> str:
     """An extrapolation beyond the surveyed volume, in words."""
     selection = (results.get("luminosity_function") or {}).get("selection") or {}
     z_range = volume.get("fit_redshift_range") or selection.get("redshift_range")
     measured = (f"measured at {z_range[0]:g} < z < {z_range[1]:g}" if z_range
                 else "measured nearby")
+    where = ("along our past light cone, far beyond that redshift" if light_cone
+             else f"to {_short_volume(volume)}")
     return (f"extrapolation beyond the surveyed volume: the luminosity function was {measured} "
-            f"over {results['footprint']['area_deg2']:.4g} deg²; this number carries it to "
-            f"{_short_volume(volume)}")
+            f"over {results['footprint']['area_deg2']:.4g} deg²; this number carries it {where}")
 
 
 def _run_cautions(results: Mapping[str, Any], area: float) -> list[str]:
@@ -334,6 +337,8 @@ def _significant(value: float, sig: int) -> str:
 
 def _range_words(pair: Iterable[float], sig: int = 3) -> str:
     lo, hi = (_words(v, sig) for v in pair)
+    if " × 10" in lo and " × 10" in hi and lo.split(" × ")[1] == hi.split(" × ")[1]:
+        return f"{lo.split(' × ')[0]}–{hi}"
     lo_parts, hi_parts = lo.rsplit(" ", 1), hi.rsplit(" ", 1)
     if (len(lo_parts) == 2 and len(hi_parts) == 2 and lo_parts[1] == hi_parts[1]
             and lo_parts[1] in ("million", "billion", "trillion")):
@@ -343,6 +348,14 @@ def _range_words(pair: Iterable[float], sig: int = 3) -> str:
 
 def _unit_words(unit: str) -> str:
     return {"deg^-2": "per deg²", "Mpc^-3": "per Mpc³"}.get(unit, unit)
+
+
+def _short_caution(cautions: Iterable[str]) -> str:
+    """The extrapolations among a number's cautions, in a few words for its table cell:
+    ``"extrapolation beyond the surveyed sky"``."""
+    heads = [c.split(":")[0].strip() for c in cautions if ":" in c]
+    heads = [h for h in heads if "extrapolation" in h and len(h) < 60]
+    return "; ".join(dict.fromkeys(heads))
 
 
 def _area_precision(area: Mapping[str, Any]) -> str:
@@ -371,15 +384,17 @@ def summary_markdown(summary: Mapping[str, Any]) -> list[str]:
     if headlines:
         out += [
             "",
-            "| quantity | value | 68 % interval | 95 % interval | largest source of error |",
+            "| quantity | value | 68 % interval | 95 % interval | largest source of error "
+            "(share of the variance) |",
             "|---|---:|---:|---:|---|",
         ]
         for item in headlines:
             unit = _unit_words(item["unit"])
             dominant = item["dominant_error"]
-            source = (f"{dominant['label']} ({100 * dominant['share']:.0f} % of the variance)"
-                      if dominant else "not broken down")
-            flag = " ⚠" if item["cautions"] else ""
+            source = (f"{dominant['label']}, {100 * dominant['share']:.0f} %" if dominant
+                      else "not broken down")
+            note = _short_caution(item["cautions"])
+            flag = f" — ⚠ {note}" if note else (" ⚠" if item["cautions"] else "")
             out.append(f"| {item['label']}{flag} | **{_words(item['median'])}** {unit} | "
                        f"{_range_words(item['interval_68'])} | "
                        f"{_range_words(item['interval_95'])} | {source} |")

@@ -73,6 +73,11 @@ def test_summary_leads_with_totals_their_errors_and_cautions():
     assert "measured at 0.01 < z < 0.3" in volume["cautions"][0]
     assert stars["label"] == "Stars in the observable universe"
     assert stars["dominant_error"]["name"] == "mass_to_light"
+    # In the table, beside the number: the extrapolation in a few words.
+    table = "\n".join(report.summary_markdown(summary))
+    assert ("| Galaxies brighter than m = 22 over the whole sky — ⚠ extrapolation beyond the "
+            "surveyed sky | **430 million** galaxies | 387–473 million | 344–516 million | "
+            "cosmic variance, 80 % |") in table
     # A small field without a [variance] section: the cosmic-variance caveat.
     assert any(c.startswith("Cosmic variance: this field covers 2 deg²")
                for c in summary["cautions"])
@@ -113,6 +118,7 @@ def test_ranges_share_their_scale_word():
     assert report._range_words([4.24e8, 4.42e8]) == "424–442 million"
     assert report._range_words([9.0e8, 1.1e9]) == "900 million–1.10 billion"
     assert report._range_words([-21.3, -21.2]) == "-21.3 to -21.2"
+    assert report._range_words([3.29e21, 6.62e21]) == "3.29–6.62 × 10²¹"
 
 
 class _Collect(HTMLParser):
