@@ -132,16 +132,19 @@ _TOTAL_KEYS = ("sky_total", "present_day_volume_total", "light_cone_total", "sta
 _SMALL_FIELD_DEG2 = 100.0
 
 
-def _dominant(budget: Mapping[str, float]) -> dict[str, Any] | None:
+def _dominant(budget: Mapping[str, float], population: str | None = None
+              ) -> dict[str, Any] | None:
     if not budget:
         return None
     name = max(budget, key=lambda k: (budget[k], k))
-    return {"name": name, "label": ERROR_SOURCES.get(name, name.replace("_", " ")),
-            "share": float(budget[name])}
+    label = ERROR_SOURCES.get(name, name.replace("_", " "))
+    if name == "cosmic_variance" and population == "stars":
+        label = "field-to-field scatter"  # the Galaxy's structure, not cosmic variance
+    return {"name": name, "label": label, "share": float(budget[name])}
 
 
 def _headline(key: str, label: str, estimate: Mapping[str, Any], cautions: Iterable[str] = (),
-              definition: str | None = None) -> dict[str, Any]:
+              definition: str | None = None, population: str | None = None) -> dict[str, Any]:
     return {
         "key": key,
         "label": label,
@@ -150,14 +153,17 @@ def _headline(key: str, label: str, estimate: Mapping[str, Any], cautions: Itera
         "interval_68": list(estimate["interval_68"]),
         "interval_95": list(estimate["interval_95"]),
         "unit": estimate.get("unit", ""),
-        "dominant_error": _dominant(estimate.get("budget") or {}),
+        "dominant_error": _dominant(estimate.get("budget") or {}, population),
         "cautions": [c for c in cautions if c],
     }
 
 
-def _sky_caution(area_deg2: float, target_deg2: float | None) -> str:
+def _sky_caution(area_deg2: float, target_deg2: float | None, modelled: bool = False) -> str:
     target = (f"{target_deg2:,.0f} deg²" if target_deg2 else "the target sky")
     share = (f" ({100 * area_deg2 / target_deg2:.2g} % of it)" if target_deg2 else "")
+    if modelled:
+        return (f"extrapolation beyond the surveyed sky: {area_deg2:.4g} deg² observed{share}; "
+                f"a model of how the density changes across the sky carries it to {target}")
     return (f"extrapolation beyond the surveyed sky: {area_deg2:.4g} deg² observed{share}, "
             f"scaled to {target}; the rest of that sky is assumed to hold the same population")
 
@@ -168,7 +174,8 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
     Returns
     -------
     dict
-        ``survey``; ``area`` (``area_deg2``, ``area_uncertainty_deg2``, ``sky_fraction``);
+        ``survey``; ``population``; ``area`` (``area_deg2``, ``area_uncertainty_deg2``,
+        ``sky_fraction``);
         ``sources`` (``in_footprint``, ``rows_read``, ``rejected``); ``m50`` (the footprint's
         median 50 % completeness magnitude, when known); ``headlines``: the run's headline
         numbers, each ``{key, label, definition, median, interval_68, interval_95, unit,
@@ -182,6 +189,7 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
     area = float(fp["area_deg2"])
     out: dict[str, Any] = {
         "survey": _title(results),
+        "population": results["run"].get("population"),
         "area": {"area_deg2": area, "area_uncertainty_deg2": fp["area_uncertainty_deg2"],
                  "sky_fraction": fp["sky_fraction"]},
         "sources": {"in_footprint": ledger["rows_in_footprint"],
@@ -206,7 +214,7 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
         headlines.append(_headline(
             "counts.integral_counts.per_deg2", f"{what.capitalize()} per deg² brighter than "
             f"m = {m:g} (the population's mean density)", integral["per_deg2"],
-            definition=integral.get("note")))
+            definition=integral.get("note"), population=population))
     totals = results.get("totals") or {}
     definitions = totals.get("definitions") or {}
     cautions = totals.get("cautions") or {}
@@ -216,23 +224,29 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
             continue
         extra = []
         if key == "sky_total" and not any("surveyed sky" in c for c in cautions.get(key, ())):
-            extra.append(_sky_caution(area, (details.get("sky") or {}).get("target_area_deg2")))
+            sky_details = details.get("sky") or {}
+            method = sky_details.get("method") or "isotropic"
+            extra.append(_sky_caution(area, sky_details.get("target_area_deg2"),
+                                      modelled=not method.startswith("isotropic")))
         if key in ("present_day_volume_total", "light_cone_total", "stars_total"):
             extra.append(_volume_caution(results, details.get("volume") or {},
                                          light_cone=key == "light_cone_total"))
         headlines.append(_headline(f"totals.{key}", _total_label(key, totals, details),
                                    totals[key], [*extra, *cautions.get(key, ())],
-                                   definitions.get(key)))
+                                   definitions.get(key), population))
     sky = results.get("sky_model")
     if sky and "total" in sky:
         outside = sky.get("fraction_outside_observed_range") or {}
-        caution = [_sky_caution(area, sky.get("target_sky", {}).get("area_deg2"))]
+        caution = [_sky_caution(area, sky.get("target_sky", {}).get("area_deg2"),
+                                modelled=True)]
         if outside.get("area", 0) > 0:
             caution.append(f"{100 * outside['area']:.3g} % of the target lies outside the "
                            "covariates the fields observed: the model is extrapolated there")
-        headlines.append(_headline("sky_model.total", f"Sources brighter than "
+        what = "Stars" if population == "stars" else "Sources"
+        headlines.append(_headline("sky_model.total", f"{what} brighter than "
                                    f"m = {sky['mag_limit']:g} over the target sky (sky model)",
-                                   sky["total"], [*caution, *sky.get("warnings", ())]))
+                                   sky["total"], [*caution, *sky.get("warnings", ())],
+                                   sky.get("naive_note"), population))
     out["cautions"] = _run_cautions(results, area)
     return out
 
@@ -404,10 +418,12 @@ def summary_markdown(summary: Mapping[str, Any]) -> list[str]:
             out += ["", f"> ⚠ **{item['label']}:** {text[0].upper() + text[1:]}."]
         out += ["", "The intervals hold the true value with 68 % and 95 % probability if the "
                     "run's models hold. Poisson noise is the chance in counting a finite number "
-                    "of sources; cosmic variance is how much the density of a field this size "
-                    "differs from place to place because galaxies cluster. Each share is of the "
-                    "variance of log₁₀ of the number; definitions and full error budgets are in "
-                    "the sections below."]
+                    "of sources; " + ("field-to-field scatter is how much the density of stars "
+                    "differs between fields beyond that (the Galaxy's structure)"
+                    if summary.get("population") == "stars" else "cosmic variance is how much "
+                    "the density of a field this size differs from place to place because "
+                    "galaxies cluster") + ". Each share is of the variance of log₁₀ of the "
+                    "number; definitions and full error budgets are in the sections below."]
     else:
         out += ["", "This run computed no total: add `[counts]` (and `[totals]`) to the run "
                     "file for densities and totals with intervals."]
@@ -650,6 +666,16 @@ def _contamination_markdown(cont: Mapping[str, Any]) -> list[str]:
         "",
         f"From {method}. The star fraction is stars / all sources in the bin, with its 68 % "
         "interval" + (" (Clopper-Pearson)." if cont["method"] == "classifier" else "."),
+    ]
+    fractions = [f for f in cont["fraction"] if f is not None]
+    if fractions:
+        out[-1] += (f" It runs from {min(fractions):.3f} to {max(fractions):.3f} over the "
+                    "magnitude bins.")
+    out += [
+        "",
+        "<details>",
+        f"<summary>Stars and galaxies in each of the {sum(1 for n in cont['n_sources'] if n)} "
+        "magnitude bins</summary>",
         "",
         "| magnitude | sources | stars | galaxies | star fraction |",
         "|---|---:|---:|---:|---:|",
@@ -665,6 +691,7 @@ def _contamination_markdown(cont: Mapping[str, Any]) -> list[str]:
         out.append(f"| {edges[i]:.4g}–{edges[i + 1]:.4g} | {n:,.0f} | {star_text} | "
                    f"{gal:,.0f} ± {cont['n_galaxies_err'][i]:,.0f} | "
                    + ("–" if frac is None else f"{frac:.3f} ({lo:.3f}–{hi:.3f})") + " |")
+    out += ["", "</details>"]
     for note in cont.get("notes", []):
         out += ["", f"Note: {note.rstrip('.')}."]
     return out

@@ -541,7 +541,7 @@ depth_map = "star_depth.fits"
 
 [counts]
 bins = {{start = 12.0, stop = 21.0, width = 0.25}}
-model = "power_law"
+model = "double_power_law"
 fit_range = [14.0, {STAR_SKY_MAG}]
 
 [sky_model]

@@ -297,16 +297,3 @@ def test_demo_path_is_at_the_repository_root():
 
     assert cli.demo_runfile() == (Path(countscale.__file__).resolve().parents[1]
                                   / "demo_data" / "survey.toml")
-
-
-@pytest.mark.skipif(not cli.demo_runfile().is_file(),
-                    reason="demo_data/survey.toml not generated yet")
-def test_bundled_demo(tmp_path, capsys):
-    code, out, err = run(["demo", "--out", tmp_path / "demo", "--quiet"], capsys)
-    assert code == 0, err
-    data = json.loads((tmp_path / "demo" / "results.json").read_text())
-    ledger = data["ledger"]
-    assert ledger["rows_read"] == (ledger["rows_in_footprint"] + ledger["rows_outside_footprint"]
-                                   + sum(ledger["rows_rejected"].values()))
-    assert ledger["rows_in_footprint"] > 0
-    assert "row ledger" in out

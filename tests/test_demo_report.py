@@ -84,6 +84,9 @@ def test_results_json_holds_the_summary_and_the_provenance(demo):
         lo68, hi68 = item["interval_68"]
         assert lo95 <= lo68 <= item["median"] <= hi68 <= hi95
         assert item["dominant_error"] is None or 0 < item["dominant_error"]["share"] <= 1
+    ledger = results["ledger"]  # every row counted once
+    assert ledger["rows_read"] == (ledger["rows_in_footprint"] + ledger["rows_outside_footprint"]
+                                   + sum(ledger["rows_rejected"].values()))
     prov = results["provenance"]
     assert prov["seed"] == cli.DEMO_SEED and prov["engine"] == "local"
     assert prov["runfile"]["text"] == (DEMO / "survey.toml").read_text()
