@@ -16,11 +16,8 @@ Rasterisation
 
 How the covered fraction of a boundary cell is computed
 -------------------------------------------------------
-Discs (caps, holes): exactly, as the area of the intersection of the disc with the cell in
-the gnomonic projection centred on the disc (a small circle centred on the tangent point
-projects to a circle of radius tan r, and a cell a few arcseconds across is a parallelogram
-there to 1e-10 of its size). The fraction is a ratio of areas inside one cell, which a smooth
-projection preserves to first order.
+Discs (caps, holes): see `countscale._discs`, which rasterises any number of discs in one
+compiled walk with exact fractions (disc ∩ cell in the equal-area projection about the disc).
 Other shapes: the cell is refined ``SUB_ORDERS`` more orders with the same classification and
 the finest sub-cells are counted by their centres; the fraction's standard error
 (sqrt(n_crossing/12) / 4**SUB_ORDERS) is carried as the cell's `sigma`.
@@ -28,6 +25,7 @@ the finest sub-cells are counted by their centres; the fraction's standard error
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from functools import lru_cache
 
@@ -129,8 +127,6 @@ class Shape:
     """
 
     n_parts: int = 1
-    #: True when `_fraction` computes covered fractions in closed form.
-    exact_fraction: bool = False
 
     def contains_vec(self, xyz):  # pragma: no cover - abstract
         raise NotImplementedError
@@ -187,7 +183,8 @@ class Circles(Shape):
     """A union of discs ("caps"): centres in degrees, radii in radians.
 
     One disc is a spherical cap; many are a hole list. Point tests use a k-d tree on the unit
-    vectors when there are many discs.
+    vectors when there are many discs. Discs are rasterised by `countscale._discs` (one walk
+    for all of them), not by `rasterise`.
     """
 
     ra_deg: np.ndarray
@@ -195,8 +192,6 @@ class Circles(Shape):
     radius_rad: np.ndarray
     centres: np.ndarray = field(init=False, repr=False)
     _tree: object = field(init=False, default=None, repr=False)
-
-    exact_fraction = True
 
     def __post_init__(self):
         self.centres = radec_to_vec(self.ra_deg, self.dec_deg).reshape(-1, 3)
@@ -241,49 +236,6 @@ class Circles(Shape):
         diff = xyz - self.centres[part]
         chord2 = np.einsum("ij,ij->i", diff, diff)
         return chord2 <= (2.0 * np.sin(np.minimum(self.radius_rad[part], np.pi) / 2.0)) ** 2
-
-    def _boundary_distance(self, part, xyz):
-        return np.abs(_angle_between(xyz, self.centres[part]) - self.radius_rad[part])
-
-    def classify_cells(self, part, cells, order):
-        # Chord comparisons are cheaper than angles and exact enough (chord^2 carries about
-        # 1e-16 absolute error; a 1-arcsecond chord^2 is 2.4e-11). Work on separate x, y, z
-        # arrays: this is the hot loop when a footprint has 10^5 holes.
-        rad = _pixrad(order)
-        r = self.radius_rad
-        inner = np.where(r > rad, (2.0 * np.sin(np.clip(r - rad, 0, None) / 2.0)) ** 2, -1.0)
-        outer = np.where(r + rad < np.pi, (2.0 * np.sin(np.clip(r + rad, None, np.pi) / 2.0)) ** 2,
-                         np.inf)
-        x, y, z = hp.pix2vec(2**order, cells, nest=True)
-        cx, cy, cz = self.centres[:, 0], self.centres[:, 1], self.centres[:, 2]
-        dx = x - cx[part]
-        chord2 = dx * dx
-        dx = y - cy[part]
-        chord2 += dx * dx
-        dx = z - cz[part]
-        chord2 += dx * dx
-        state = np.zeros(len(cells), dtype=np.int8)
-        state[chord2 < inner[part]] = 1
-        state[chord2 > outer[part]] = -1
-        return state
-
-    def _fraction(self, part, cells, order):
-        frac = np.empty(len(cells))
-        big = self.radius_rad[part] > np.radians(80.0)
-        if np.any(big):
-            # Gnomonic projection degenerates near 90 degrees; at that curvature the centre
-            # counting of sub-cells is as good.
-            frac[big], _ = _subsampled_fraction(self, part[big], cells[big], order)
-        idx = np.flatnonzero(~big)
-        e1, e2 = _orthonormal_basis(self.centres)
-        step = 500_000
-        for lo in range(0, len(idx), step):
-            sel = idx[lo : lo + step]
-            p = part[sel]
-            frac[sel] = _disc_cell_fraction(
-                self.centres[p], e1[p], e2[p], np.tan(self.radius_rad[p]), cells[sel], order
-            )
-        return frac, np.zeros(len(cells))
 
 
 @dataclass(eq=False)
@@ -395,8 +347,13 @@ class Box(Shape):
                 dist = np.where(on_arc, np.arcsin(np.clip(np.abs(xyz @ pole), 0, 1)), np.inf)
                 # A meridian is a great circle: a straight line in the gnomonic plane.
                 consider(dist, on_arc, sign * (e1 @ pole), sign * (e2 @ pole), sign * (xyz @ pole))
-        corner_dist = np.min(np.stack([_angle_between(xyz, c) for c in self._corners]), axis=0)
-        corner_near |= corner_dist <= 2 * radius_rad
+        if not self.full_ra:
+            # A box over all RA has no corners: its "corners" at RA 0 are points of its
+            # declination edges (treating them as corners sent those cells to sub-cell
+            # counting for nothing).
+            corner_dist = np.min(np.stack([_angle_between(xyz, c) for c in self._corners]),
+                                 axis=0)
+            corner_near |= corner_dist <= 2 * radius_rad
         ok = (n_near == 1) & ~corner_near
         return coef[0], coef[1], coef[2], ok
 
@@ -635,66 +592,21 @@ def _halfplane_cell_fraction(centres, a, b, c, cells, order):
     return np.clip(kept / total, 0.0, 1.0)
 
 
-def _disc_cell_fraction(centre, e1, e2, radius_plane, cells, order):
-    """Exact covered fraction of cells by discs (one disc per cell), see module docstring.
-
-    The four children's centres are projected (gnomonic, about the disc centre, basis e1,
-    e2); the cell is the parallelogram they define, c(u, v) = P + u A + v B with children at
-    u, v in {1/4, 3/4}, and the disc is the circle of radius tan(r) about the origin.
-    """
-    nside = 2 ** (order + 1)
-    base = 4 * cells
-    us, vs = [], []
-    for k in range(4):
-        x, y, z = hp.pix2vec(nside, base + k, nest=True)
-        inv = 1.0 / (x * centre[:, 0] + y * centre[:, 1] + z * centre[:, 2])
-        us.append((x * e1[:, 0] + y * e1[:, 1] + z * e1[:, 2]) * inv)
-        vs.append((x * e2[:, 0] + y * e2[:, 1] + z * e2[:, 2]) * inv)
-    # Children are numbered (0,0), (1,0), (0,1), (1,1) in the NEST bit order.
-    mu = 0.25 * (us[0] + us[1] + us[2] + us[3])
-    mv = 0.25 * (vs[0] + vs[1] + vs[2] + vs[3])
-    au = 0.5 * ((us[1] - us[0]) + (us[3] - us[2]))
-    av = 0.5 * ((vs[1] - vs[0]) + (vs[3] - vs[2]))
-    bu = 0.5 * ((us[2] - us[0]) + (us[3] - us[1]))
-    bv = 0.5 * ((vs[2] - vs[0]) + (vs[3] - vs[1]))
-    corners_u = (mu - au - bu, mu + au - bu, mu + au + bu, mu - au + bu)
-    corners_v = (mv - av - bv, mv + av - bv, mv + av + bv, mv - av + bv)
-    inter = np.zeros(len(cells))
-    for k in range(4):
-        j = (k + 1) % 4
-        inter += _disc_triangle_area(corners_u[k], corners_v[k], corners_u[j], corners_v[j],
-                                     radius_plane)
-    area = 4.0 * (au * bv - av * bu)
-    return np.clip(inter / area, 0.0, 1.0)
-
-
-def _disc_triangle_area(px, py, qx, qy, radius):
-    """Signed area of (disc of `radius` at the origin) ∩ (triangle origin, P, Q).
-
-    The edge P→Q is split where it crosses the circle; pieces inside the disc contribute
-    their triangle with the origin, pieces outside the circular sector they subtend.
-    Summed over the edges of a polygon this is the area of disc ∩ polygon.
-    """
-    dx, dy = qx - px, qy - py
-    a = dx * dx + dy * dy
-    b = px * dx + py * dy
-    c = px * px + py * py - radius * radius
-    disc = b * b - a * c
-    root = np.sqrt(np.clip(disc, 0.0, None))
-    t1 = np.where(disc > 0, np.clip((-b - root) / a, 0.0, 1.0), 0.0)
-    t2 = np.where(disc > 0, np.clip((-b + root) / a, 0.0, 1.0), 0.0)
-    ax, ay = px + t1 * dx, py + t1 * dy
-    bx, by = px + t2 * dx, py + t2 * dy
-
-    def sector(ux, uy, vx, vy):
-        return 0.5 * radius * radius * np.arctan2(ux * vy - uy * vx, ux * vx + uy * vy)
-
-    return sector(px, py, ax, ay) + 0.5 * (ax * by - ay * bx) + sector(bx, by, qx, qy)
-
-
 def _subsampled_fraction(shape, part, cells, order):
-    """Covered fraction by refining `SUB_ORDERS` more orders and counting sub-cell centres."""
+    """Covered fraction by refining `SUB_ORDERS` more orders and testing the sub-cells.
+
+    Sub-cells that the shape's boundary may cross are tested at one point uniform inside
+    each (stratified sampling, seeded by the cells). Their centres would not do: HEALPix
+    centres lie on iso-latitude rows, so along a declination edge the errors of the
+    crossed sub-cells all have the same sign and add up (about 8 of the 256 sub-cells
+    of a corner cell), while the standard error below assumes they are independent,
+    which they are for random points: variance 1/6 per crossed sub-cell (a covered part
+    u of a sub-cell, u uniform, gives Bernoulli variance u (1 - u), 1/6 on average), and
+    about half of the sub-cells tested are crossed (the others lie in the band the
+    classification cannot clear), so 1/12 per tested sub-cell.
+    """
     depth = min(SUB_ORDERS, HEALPIX_MAX_ORDER - order)
+    rng = np.random.default_rng([order, len(cells), int(cells[:1].sum()) if len(cells) else 0])
     units = np.zeros(len(cells))
     crossing = np.zeros(len(cells))
     idx = np.arange(len(cells))
@@ -702,14 +614,17 @@ def _subsampled_fraction(shape, part, cells, order):
     for level in range(1, depth + 1):
         sub_cells = (sub_cells[:, None] * 4 + np.arange(4)).reshape(-1)
         sub_idx = np.repeat(sub_idx, 4)
-        xyz = np.stack(hp.pix2vec(2 ** (order + level), sub_cells, nest=True), axis=-1)
         if level < depth:
+            xyz = np.stack(hp.pix2vec(2 ** (order + level), sub_cells, nest=True), axis=-1)
             state = shape.classify(part[sub_idx], xyz, _pixrad(order + level))
             full = state == 1
             np.add.at(units, sub_idx[full], 4 ** (depth - level))
             keep = state == 0
             sub_cells, sub_idx = sub_cells[keep], sub_idx[keep]
         else:
+            jitter = HEALPIX_MAX_ORDER - order - depth
+            fine = (sub_cells << (2 * jitter)) + rng.integers(0, 4**jitter, len(sub_cells))
+            xyz = np.stack(hp.pix2vec(2**HEALPIX_MAX_ORDER, fine, nest=True), axis=-1)
             inside = shape._part_contains(part[sub_idx], xyz)
             np.add.at(units, sub_idx[inside], 1.0)
             np.add.at(crossing, sub_idx, 1.0)
@@ -720,7 +635,7 @@ def _subsampled_fraction(shape, part, cells, order):
     return units / scale, np.sqrt(crossing / 12.0) / scale
 
 
-def point_test_fraction(test, cells, order, depth=SUB_ORDERS, pairs=None):
+def point_test_fraction(test, cells, order, depth=SUB_ORDERS, pairs=None, minus=None):
     """Covered fraction of `cells` from a point test at one jittered point per sub-cell.
 
     Used where two boundaries meet in one cell (overlapping holes, a shape minus a shape that
@@ -732,7 +647,9 @@ def point_test_fraction(test, cells, order, depth=SUB_ORDERS, pairs=None):
 
     `test` has ``contains_vec(xyz)``; or, with `pairs` = (cell_index, part) arrays, `test` is
     a multi-part shape and a point is inside when one of its cell's listed parts holds it
-    (``test._part_contains``), which avoids searching all parts.
+    (``test._part_contains``), which avoids searching all parts. With `minus` = (shape,
+    cell_index, part), a point is inside when `test` holds it and none of its cell's listed
+    parts of `shape` does (a footprint minus the discs whose edges cross the cell).
 
     Returns the fraction and its standard error: sqrt(n_crossed / 6) / 4**depth, with about
     2 x 1.3 x 2**depth sub-cells crossed by two boundaries and variance 1/6 in each.
@@ -744,8 +661,13 @@ def point_test_fraction(test, cells, order, depth=SUB_ORDERS, pairs=None):
     frac = np.empty(len(cells))
     step = max(1, 2_000_000 // per_cell)
     offsets = np.arange(per_cell, dtype=np.int64)
+    listed = None
     if pairs is not None:
-        pair_cell, pair_part = pairs
+        listed = (test, *pairs)
+    elif minus is not None:
+        listed = minus
+    if listed is not None:
+        shape, pair_cell, pair_part = listed
         order_pairs = np.argsort(pair_cell, kind="stable")
         pair_cell, pair_part = pair_cell[order_pairs], pair_part[order_pairs]
     for lo in range(0, len(cells), step):
@@ -755,14 +677,15 @@ def point_test_fraction(test, cells, order, depth=SUB_ORDERS, pairs=None):
         xyz = np.stack(hp.pix2vec(2**HEALPIX_MAX_ORDER, fine, nest=True), axis=-1)
         if pairs is None:
             inside = test.contains_vec(xyz).reshape(len(block), per_cell)
-        else:
+        if listed is not None:
             first, last = np.searchsorted(pair_cell, [lo, lo + len(block)])
             local = pair_cell[first:last] - lo
             points = xyz.reshape(len(block), per_cell, 3)[local].reshape(-1, 3)
             parts = np.repeat(pair_part[first:last], per_cell)
-            hit = test._part_contains(parts, points).reshape(len(local), per_cell)
-            inside = np.zeros((len(block), per_cell), dtype=bool)
-            np.logical_or.at(inside, local, hit)
+            hit = shape._part_contains(parts, points).reshape(len(local), per_cell)
+            in_listed = np.zeros((len(block), per_cell), dtype=bool)
+            np.logical_or.at(in_listed, local, hit)
+            inside = in_listed if pairs is not None else inside & ~in_listed
         frac[lo : lo + step] = inside.mean(axis=1)
     sigma = np.full(len(cells), np.sqrt(2 * 1.3 * 2**depth / 6.0) / per_cell)
     return frac, sigma
@@ -833,6 +756,26 @@ def merge_intervals(starts, ends):
     return out_starts, out_ends
 
 
+#: Most boundary cells a shape may put at `max_order` (each costs ~50 bytes while it is
+#: measured): beyond this the build would need several GB (order 29 on a 40 deg^2 box asks for
+#: ~5e8). A readability and memory choice, no source.
+MAX_BOUNDARY_CELLS = 50_000_000
+
+
+def _check_boundary_budget(n_cells, order, max_order):
+    """Refuse early when the boundary, which doubles in cells per order, will not fit."""
+    if order < 8 or n_cells < 1000:
+        return
+    projected = n_cells * 2.0 ** (max_order - order)
+    if projected > MAX_BOUNDARY_CELLS:
+        fits = order + math.floor(math.log2(MAX_BOUNDARY_CELLS / n_cells))
+        raise InputError(
+            f"`max_order` {max_order} would put about {projected:.1e} cells on the footprint's "
+            f"boundary (at most {MAX_BOUNDARY_CELLS:.0e} fit in memory); use max_order <= "
+            f"{fits}"
+        )
+
+
 def _refine(shape, part_ids, max_order, starts, ends, cells_out, frac_out, sigma_out,
             parts_out):
     cells = np.tile(np.arange(12, dtype=np.int64), len(part_ids))
@@ -852,6 +795,7 @@ def _refine(shape, part_ids, max_order, starts, ends, cells_out, frac_out, sigma
         cells, part = cells[keep], part[keep]
         if order == max_order or len(cells) == 0:
             break
+        _check_boundary_budget(len(cells), order, max_order)
         cells = (cells[:, None] * 4 + np.arange(4, dtype=np.int64)).reshape(-1)
         part = np.repeat(part, 4)
         order += 1

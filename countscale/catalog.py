@@ -24,7 +24,8 @@ Validation
     :class:`SeenIds` registry; :func:`iter_valid_chunks` does both for a whole source.
 Ledger
     :class:`Ledger` — rows read, in / outside the footprint, rejected per reason, notes;
-    mergeable across workers, JSON in the DESIGN §4 shape. :func:`split_by_footprint` gives the
+    mergeable across workers, JSON as ``results.json`` holds it (see docs/reference.md).
+    :func:`split_by_footprint` gives the
     inside mask; :func:`require_rows` fails clearly when no row is left.
 
 Formats
@@ -33,7 +34,8 @@ Told apart by the file name's extension:
 
 =================  ===============================================================
 ``.parquet .pq``   ``pyarrow.parquet.ParquetFile.iter_batches`` with column projection;
-                   memory is bounded by one row group of the mapped columns.
+                   memory is bounded by one row group of the mapped columns. Page
+                   checksums (CRC), where the file has them, are verified.
 ``.fits .fit``     first table extension, memory-mapped, read in row slices.
 ``.fits.gz``       as above, but a gzipped FITS file cannot be memory-mapped: astropy
 ``.fit.gz``        decompresses it into memory, so memory grows with that file's size.
@@ -48,9 +50,13 @@ Rejection reasons (first failing rule wins, in this order)
    convention: RA in [−180, 0) gets +360, is kept, and is counted in the note
    ``ra_wrapped_from_negative``.
 4. ``mag_missing`` — magnitude NaN, infinite, or equal to a sentinel (default 99, −99, 99.99).
-5. ``redshift_invalid`` — redshift negative, or missing (NaN / inf) when ``require_redshift``.
-6. ``duplicate_id`` — (only with an ``id`` column) the id of an earlier *kept* row, in this or
-   any earlier chunk or file. Duplicates are looked for only among rows that passed rules 1–5,
+5. ``mag_implausible`` — a finite magnitude outside the plausible range ``mag_range`` (default
+   [−30, 40] AB; see :data:`DEFAULT_MAG_RANGE`): a placeholder such as −999 or 1e30 that is
+   not in the sentinel list, or a unit mix-up. Such a row would otherwise land in a count bin
+   or, worse, in the photometric-scatter relation.
+6. ``redshift_invalid`` — redshift negative, or missing (NaN / inf) when ``require_redshift``.
+7. ``duplicate_id`` — (only with an ``id`` column) the id of an earlier *kept* row, in this or
+   any earlier chunk or file. Duplicates are looked for only among rows that passed rules 1–6,
    so a bad first measurement of a source does not throw away a good later one.
 
 Rows whose id is missing are kept (they cannot be matched) and counted in the note
@@ -89,6 +95,7 @@ from astropy.io import fits
 from countscale.errors import InputError, InputTypeError
 
 __all__ = [
+    "DEFAULT_MAG_RANGE",
     "DEFAULT_SENTINELS",
     "LOGICAL_COLUMNS",
     "NOTE_ID_MISSING",
@@ -129,6 +136,7 @@ REJECTION_REASONS = (
     "dec_out_of_range",
     "ra_out_of_range",
     "mag_missing",
+    "mag_implausible",
     "redshift_invalid",
     "duplicate_id",
 )
@@ -138,6 +146,11 @@ NOTE_ID_MISSING = "id_missing"
 #: Magnitudes that mean "no measurement" in many photometric catalogues, besides NaN.
 #: Common figure, no source (conventional placeholder values, not a standard).
 DEFAULT_SENTINELS = (99.0, -99.0, 99.99)
+
+#: Plausible AB magnitudes: rows outside are rejected as ``mag_implausible``. Wide on purpose:
+#: from brighter than the Sun (V = -26.7; common figure, no source) to well beyond the deepest
+#: images taken (about 30-31 AB; common figure, no source). A choice of this project.
+DEFAULT_MAG_RANGE = (-30.0, 40.0)
 
 #: Relative tolerance when matching a sentinel: 99.99 stored as float32 reads back as
 #: 99.98999786 in float64 (float32 has a 2**-24 ≈ 6e-8 relative step), so exact equality would
@@ -214,6 +227,20 @@ def _list_columns(available: Sequence[str], limit: int = 20) -> str:
 def _first_line(exc: BaseException) -> str:
     text = str(exc).strip() or type(exc).__name__
     return text.splitlines()[0]
+
+
+def _mag_range_iv(mag_range: Any) -> tuple[float, float]:
+    """``mag_range`` as two increasing finite floats, or a one-line error."""
+    rule = "`mag_range` must be two finite magnitudes [lo, hi] with lo < hi"
+    if isinstance(mag_range, str | bytes) or not isinstance(mag_range, Sequence):
+        raise InputTypeError(f"{rule}; got {mag_range!r}")
+    if len(mag_range) != 2 or any(isinstance(v, bool) or not isinstance(v, int | float | np.number)
+                                  for v in mag_range):
+        raise InputTypeError(f"{rule}; got {mag_range!r}")
+    lo, hi = float(mag_range[0]), float(mag_range[1])
+    if not (np.isfinite(lo) and np.isfinite(hi) and lo < hi):
+        raise InputError(f"{rule}; got [{lo:g}, {hi:g}]")
+    return (lo, hi)
 
 
 def check_chunk_rows(chunk_rows: Any) -> int:
@@ -670,6 +697,9 @@ class CatalogSource:
         Magnitudes meaning "no measurement", besides NaN/inf. Default ``DEFAULT_SENTINELS``.
     require_redshift : bool
         Reject rows without a finite redshift (needs a ``redshift`` column).
+    mag_range : (float, float)
+        Plausible magnitudes ``[lo, hi]`` (AB, inclusive); finite magnitudes outside are
+        rejected as ``mag_implausible``. Default ``DEFAULT_MAG_RANGE``.
 
     Attributes
     ----------
@@ -690,6 +720,7 @@ class CatalogSource:
     population: str = "galaxies"
     sentinels: tuple[float, ...] = DEFAULT_SENTINELS
     require_redshift: bool = False
+    mag_range: tuple[float, float] = DEFAULT_MAG_RANGE
     classifier_threshold: float | None = None
     redshift_error: str | None = None
     files: tuple[Path, ...] = field(init=False, repr=False)
@@ -739,6 +770,7 @@ class CatalogSource:
             raise InputError(
                 "`require_redshift` is true but no `redshift` column is mapped"
             )
+        object.__setattr__(self, "mag_range", _mag_range_iv(self.mag_range))
         threshold = self.classifier_threshold
         if threshold is None:
             threshold = DEFAULT_CLASSIFIER_THRESHOLD
@@ -773,7 +805,7 @@ class CatalogSource:
         if not isinstance(section, Mapping):
             raise InputTypeError(f"`{where}` must be a table; got {type(section).__name__}")
         allowed = ("paths", *LOGICAL_COLUMNS, "population", "sentinels", "require_redshift",
-                   "classifier_threshold")
+                   "mag_range", "classifier_threshold")
         for key in section:
             if key not in allowed:
                 raise InputError(
@@ -806,7 +838,8 @@ class CatalogSource:
     def rules(self) -> ValidationRules:
         """The validation rules this source asks for."""
         return ValidationRules(sentinels=self.sentinels,
-                               require_redshift=self.require_redshift)
+                               require_redshift=self.require_redshift,
+                               mag_range=self.mag_range)
 
     # -- checking --------------------------------------------------------------------------
 
@@ -1080,7 +1113,11 @@ def _read_parquet(path: Path, info: FileSummary, chunk_rows: int,
     # whole file, and Arrow memory grows with the file (measured with pyarrow 26: 4.2 MB for
     # 10^5 rows, 11.9 MB for 3x10^5, four float64 columns, row groups of 5000); without it
     # memory stays at about one row group (0.53 MB for both).
-    pf = pq.ParquetFile(path, pre_buffer=False, buffer_size=_PARQUET_BUFFER_BYTES)
+    # page_checksum_verification: pages written with a CRC are checked as they are read, so
+    # a damaged file fails with a one-line error instead of giving wrong numbers (pages
+    # without a CRC are read as before).
+    pf = pq.ParquetFile(path, pre_buffer=False, buffer_size=_PARQUET_BUFFER_BYTES,
+                        page_checksum_verification=True)
     try:
         for groups, offset in _row_group_runs(pf, path, row_groups):
             batches = pf.iter_batches(batch_size=chunk_rows, row_groups=groups,
@@ -1188,10 +1225,16 @@ class ValidationRules:
         1e-6 so float32-stored values match.
     require_redshift : bool
         Reject rows whose redshift is NaN/inf (negative redshifts are always rejected).
+    mag_range : (float, float)
+        Plausible magnitudes, inclusive; finite magnitudes outside are ``mag_implausible``.
     """
 
     sentinels: tuple[float, ...] = DEFAULT_SENTINELS
     require_redshift: bool = False
+    mag_range: tuple[float, float] = DEFAULT_MAG_RANGE
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "mag_range", _mag_range_iv(self.mag_range))
 
 
 class SeenIds:
@@ -1346,7 +1389,7 @@ def _clean_limit(sentinels: Sequence[Any]) -> float:
 
 def _rule_reasons(ra: np.ndarray, dec: np.ndarray, mag: np.ndarray, z: np.ndarray | None,
                   rules: ValidationRules) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Rules 1-5 row by row: (reason index or -1, normalised RA, wrapped), exactly as documented.
+    """Rules 1-6 row by row: (reason index or -1, normalised RA, wrapped), exactly as documented.
 
     Run only on the rows the quick test in :func:`_kept_by_rules` could not clear.
     """
@@ -1368,24 +1411,27 @@ def _rule_reasons(ra: np.ndarray, dec: np.ndarray, mag: np.ndarray, z: np.ndarra
         for s in rules.sentinels:
             bad_mag |= np.abs(mag - s) <= _SENTINEL_RTOL * abs(s)
         reject(3, bad_mag)
+        lo, hi = rules.mag_range
+        reject(4, (mag < lo) | (mag > hi))
         if z is not None:
             bad_z = z < 0.0
             if rules.require_redshift:
                 bad_z |= ~np.isfinite(z)
-            reject(4, bad_z)
+            reject(5, bad_z)
     return reason, ra_norm, wrapped
 
 
 def _kept_by_rules(chunk: CatalogChunk, rules: ValidationRules
                    ) -> tuple[np.ndarray | None, np.ndarray, np.ndarray, Any]:
-    """Rules 1-5 for a whole chunk: (keep mask or None when every row passes, normalised RA,
+    """Rules 1-6 for a whole chunk: (keep mask or None when every row passes, normalised RA,
     rows rejected per reason, and None or (wrapped, where): the wrapped flags of the rows
     ``where`` selects, the only rows that can be wrapped).
 
     A quick test in a few passes clears the rows that certainly pass (Dec within ±90, RA in
-    [0, 360), ``|mag|`` below :func:`_clean_limit`, redshift not negative); comparisons with
-    NaN are false, so it also clears only finite values. The rest (usually few) go through
-    :func:`_rule_reasons`, which decides every row exactly as the documented rules do.
+    [0, 360), ``mag`` strictly inside both the plausible range and ``±``:func:`_clean_limit`,
+    redshift not negative); comparisons with NaN are false, so it also clears only finite
+    values. The rest (usually few) go through :func:`_rule_reasons`, which decides every row
+    exactly as the documented rules do.
     """
     ra, dec, mag, z = chunk.ra, chunk.dec, chunk.mag, chunk.redshift
     n = chunk.n_rows
@@ -1395,8 +1441,10 @@ def _kept_by_rules(chunk: CatalogChunk, rules: ValidationRules
         test = np.greater_equal(ra, 0.0)
         ok &= test
         ok &= np.less(ra, 360.0, out=test)
-        ok &= np.less(np.abs(mag, out=scratch) if scratch.dtype == mag.dtype else np.abs(mag),
-                      _clean_limit(rules.sentinels), out=test)
+        # Strictly inside the plausible range and clear of every sentinel (|mag| < limit).
+        limit = _clean_limit(rules.sentinels)
+        ok &= np.greater(mag, max(rules.mag_range[0], -limit), out=test)
+        ok &= np.less(mag, min(rules.mag_range[1], limit), out=test)
         if z is not None:
             if rules.require_redshift:
                 ok &= np.greater_equal(z, 0.0, out=test)
@@ -1458,7 +1506,7 @@ def _validate(chunk: CatalogChunk, rules: ValidationRules, seen_ids: SeenIds | N
         notes[NOTE_ID_MISSING] = n_missing
     if wrap_info is not None:
         wrapped, where = wrap_info
-        # Kept by rules 1-5 and not a duplicate: `keep` at those rows after the id check.
+        # Kept by rules 1-6 and not a duplicate: `keep` at those rows after the id check.
         notes[NOTE_RA_WRAPPED] = int(np.count_nonzero(wrapped & keep[where]))
     rejected = {r: int(c) for r, c in zip(REJECTION_REASONS, counts, strict=True)}
     return keep, ra_norm, rejected, notes
@@ -1699,7 +1747,7 @@ class Ledger:
         return self
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready dict with the DESIGN §4 keys plus ``notes``.
+        """JSON-ready dict: the ledger keys of ``results.json`` plus ``notes``.
 
         Every reason of ``REJECTION_REASONS`` appears (0 when nothing was rejected for it),
         in precedence order, followed by any other reason present.

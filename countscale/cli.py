@@ -4,7 +4,7 @@ Examples
 --------
 The bundled demo survey, then a survey of your own described by a run file::
 
-    $ countscale demo --out demo_out
+    $ countscale demo --out demo_out --seed 7
     $ countscale run survey.toml --out results/ --seed 1
     $ countscale run survey.toml --engine dask --scheduler tcp://10.0.0.5:8786 --json
 
@@ -42,6 +42,7 @@ import dataclasses
 import json
 import math
 import sys
+import warnings
 from pathlib import Path
 
 from countscale.errors import InputError, InputTypeError
@@ -100,8 +101,6 @@ def build_parser():
     run.add_argument("--scheduler", metavar="ADDR",
                      help="Dask scheduler address, e.g. tcp://host:8786 (default: the run "
                      "file's, else a local cluster)")
-    run.add_argument("--seed", type=int, metavar="N",
-                     help="seed of the run's random generator (default: drawn and recorded)")
     run.set_defaults(handler=_cmd_run)
 
     demo = sub.add_parser(
@@ -186,7 +185,13 @@ def main(argv=None):
     except SystemExit as exc:  # argparse: --help (0) or usage errors (2)
         return int(exc.code or 0)
     try:
-        return args.handler(args)
+        # Warnings become one line each on stderr, after the command's output (a run puts
+        # its own into results.json and its report); a failed command shows only its error.
+        with warnings.catch_warnings(record=True) as caught:
+            code = args.handler(args)
+        for line in dict.fromkeys(_one_line_warning(w) for w in caught):
+            print(f"countscale: warning: {line}", file=sys.stderr)
+        return code
     except (InputError, InputTypeError, FileNotFoundError, IsADirectoryError,
             PermissionError) as exc:
         if args.debug:
@@ -202,6 +207,11 @@ def main(argv=None):
         print(f"countscale: computation failed: {type(exc).__name__}: {_one_line(exc)}",
               file=sys.stderr)
         return EXIT_FAILED
+
+
+def _one_line_warning(item):
+    text = str(item.message).strip().splitlines()
+    return text[0] if text else item.category.__name__
 
 
 def _one_line(exc):
@@ -301,6 +311,8 @@ def _add_run_options(parser, default_out=None):
     parser.add_argument("--json", action="store_true",
                         help="print the results as one JSON object")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
+    parser.add_argument("--seed", type=int, metavar="N",
+                        help="seed of the run's random generator (default: drawn and recorded)")
 
 
 def demo_runfile():
@@ -337,7 +349,7 @@ def _cmd_demo(args):
             f"demo run file not found at '{path}'; the demo data ships with the countscale "
             "source repository (or run `countscale run YOUR_RUNFILE.toml`)"
         )
-    return _run_and_print(args, path)
+    return _run_and_print(args, path, seed=args.seed)
 
 
 # ----------------------------------------------------------------------------------------

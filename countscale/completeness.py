@@ -83,8 +83,8 @@ __all__ = [
     "region_effective_areas",
 ]
 
-#: Fewest injections a completeness fit accepts. DESIGN.md section 5 flags fits to fewer than 20
-#: sources as doubtful (common figure, no source).
+#: Fewest injections a completeness fit accepts: fits to fewer than 20 sources are doubtful
+#: (common figure, no source).
 MIN_INJECTIONS = 20
 
 #: ln 9: a logistic falls from 90 % to 50 % of its plateau over width * ln 9 (closed form).
@@ -276,7 +276,8 @@ class FlemingCompleteness(CompletenessModel):
     Fleming, Kron, Koo, Holland & Schmidt 1995, AJ 109, 1044 (published form with c_max = 1).
     Inverting f = fraction * c_max with y = 1 - 2 fraction gives
     ``m = m_lim + y / (alpha sqrt(1 - y^2))``; in particular ``m90 = m_lim - 4 / (3 alpha)``.
-    With alpha = 2, m_lim = 24: f(23) = 0.947214, f(25) = 0.052786 (REFERENCES.md section 6).
+    With alpha = 2, m_lim = 24: f(23) = (1 + 2 / sqrt 5) / 2 = 0.947214, f(25) = 0.052786
+    (computed by hand from the form).
     """
 
     m_lim: float
@@ -1295,7 +1296,8 @@ def check_usable(model, mags, threshold=0.5):
     mags : array_like of float
         Magnitudes at which the caller will use the curve.
     threshold : float
-        Lowest usable completeness, in (0, 1]; 0.5 by default (DESIGN.md section 5).
+        Lowest usable completeness, in (0, 1]; 0.5 by default (below half complete, a result
+        leans on the completeness model; common figure, no source).
 
     Returns
     -------

@@ -66,7 +66,7 @@ from countscale._checks import check_real
 from countscale._checks import numerical_gradient as _numerical_gradient
 from countscale._checks import numerical_hessian as _numerical_hessian
 from countscale._checks import read_only as _read_only
-from countscale.completeness import NotFittedError
+from countscale.completeness import NotFittedError, pool_adjacent_violators
 from countscale.errors import InputError, InputTypeError
 from countscale.estimate import Estimate
 
@@ -89,17 +89,18 @@ __all__ = [
     "compare_models",
     "differential_counts",
     "fit_counts",
+    "format_p_bound",
     "integral_counts",
     "jackknife_covariance",
     "poisson_interval",
     "scatter_from_errors",
 ]
 
-#: Fewest sources in a fit before it warns (DESIGN.md section 5: "fewer than 20 sources in a
-#: fit" is doubtful; common figure, no source).
+#: Fewest sources in a fit before it warns (fewer than 20 sources in a fit is doubtful;
+#: common figure, no source).
 MIN_SOURCES = 20
 
-#: Completeness below which a bin used in a fit triggers a warning (DESIGN.md section 5).
+#: Completeness below which a bin used in a fit triggers a warning (common figure, no source).
 LOW_COMPLETENESS = 0.5
 
 #: ln 10, for converting d log10 n / dm into an exponential rate.
@@ -120,7 +121,8 @@ _TAIL_TRANSITIONS = 40.0
 _DENSITY_UNIT = "deg^-2 mag^-1"
 _CUMULATIVE_UNIT = "deg^-2"
 
-#: Budget labels (DESIGN.md section 4): the clustering part of the jackknife variance is the
+#: Budget labels of the Estimate JSON (docs/reference.md): the clustering part of the
+#: jackknife variance is the
 #: sample ("cosmic") variance of the counts between regions.
 _POISSON = "poisson"
 _CLUSTERING = "cosmic_variance"
@@ -550,7 +552,7 @@ class PowerLaw(CountModel):
     Notes
     -----
     N(<m) = n(m) / (slope ln 10) for slope > 0 (integrate the exponential). Uniform sources in
-    static Euclidean space have slope 0.6 (N(>S) ~ S^-3/2; textbook, REFERENCES.md section 6).
+    static Euclidean space have slope 0.6 (N(>S) ~ S^-3/2; textbook result).
 
     Examples
     --------
@@ -968,7 +970,7 @@ def combine_covariances(cov_poisson, cov_jackknife):
     is itself uncertain (relative scatter of a variance ~ sqrt(2 / (K - 1))) and can fall below
     the Poisson variance, which is a floor: clustering can only add variance to counts
     (Poisson plus a positive sample-variance term; e.g. Trenti & Stiavelli 2008, ApJ 676,
-    767, REFERENCES.md section 7). So the clustering excess ``C_J - C_P`` is kept only along the
+    767). So the clustering excess ``C_J - C_P`` is kept only along the
     directions where it is positive. In one dimension this is ``max(var_P, var_J)``.
     """
     c_p = np.array(cov_poisson, dtype=float, copy=True)
@@ -1787,6 +1789,9 @@ class CountsFit:
     p_value_error_ : float or None
         Its Monte Carlo standard error ``sqrt(p (1 - p) / B)`` from B draws. When no redraw is
         as bad as the data, p = 1 / (B + 1) only bounds the p-value from above.
+    p_value_is_bound_ : bool or None
+        True when no redraw was as bad as the data, so ``p_value_`` = 1 / (B + 1) is an upper
+        bound ("p < 0.005" for B = 200), not an estimate; None without a bootstrap.
     aic_, bic_ : float
         ``2 k - 2 ln L`` and ``k ln(n_bins) - 2 ln L``.
     n_sources_, n_bins_, n_regions_ : int
@@ -1910,7 +1915,8 @@ class CountsFit:
         return counts, used, n_bootstrap, regions, region_grids
 
     # -------------------------------------------------------------- fit
-    def fit(self, observed_counts, rng=None, region_counts=None, region_effective_area_deg2=None):
+    def fit(self, observed_counts, rng=None, region_counts=None, region_effective_area_deg2=None,
+            progress=None):
         """Fit the model.
 
         Parameters
@@ -1925,6 +1931,9 @@ class CountsFit:
         region_effective_area_deg2 : sequence, length K, optional
             Region areas in deg^2 (uniform depth) or per-region A_eff callables; see
             :meth:`ForwardModel.region_area_grids`. Required with ``region_counts``.
+        progress : callable, optional
+            Called with 1 after each refit (one per jackknife region and per bootstrap
+            redraw: K + ``n_bootstrap`` calls), e.g. a progress bar's ``update``.
 
         Returns
         -------
@@ -1947,6 +1956,9 @@ class CountsFit:
         counts, used, n_bootstrap, regions, region_grids = self._fit_iv(
             observed_counts, region_counts, region_effective_area_deg2
         )
+        if progress is not None and not callable(progress):
+            raise InputTypeError(f"`progress` must be callable or None; got {progress!r}")
+        tick = progress if progress is not None else _no_progress
         generator = _as_generator(rng)
         forward = self.forward
         edges = forward.bin_edges_mag
@@ -2010,7 +2022,8 @@ class CountsFit:
         cov_jackknife = None
         jackknife_params = None
         if regions is not None:
-            jackknife_params = self._jackknife(likelihood, regions, region_grids, used, maxima)
+            jackknife_params = self._jackknife(likelihood, regions, region_grids, used, maxima,
+                                               tick)
             cov_jackknife = jackknife_covariance(jackknife_params)
             cov = combine_covariances(cov_poisson, cov_jackknife)
         else:
@@ -2022,9 +2035,12 @@ class CountsFit:
         deviance = _deviance(mu, used_counts.astype(float))
         p_value = None
         p_value_error = None
+        p_value_is_bound = None
         if n_bootstrap:
-            p_value = self._bootstrap_p_value(likelihood, maxima, mu, deviance, n_bootstrap,
-                                              generator, bin_area)
+            n_exceed = self._bootstrap_exceedances(likelihood, maxima, mu, deviance, n_bootstrap,
+                                                   generator, bin_area, tick)
+            p_value = (1.0 + n_exceed) / (1.0 + n_bootstrap)
+            p_value_is_bound = n_exceed == 0
             # Binomial standard error of a Monte Carlo p-value from B draws (Davison & Hinkley
             # 1997, sec. 4.2.5; from memory).
             p_value_error = math.sqrt(p_value * (1.0 - p_value) / n_bootstrap)
@@ -2040,6 +2056,7 @@ class CountsFit:
         self.dof_ = n_bins - n_params
         self.p_value_ = p_value
         self.p_value_error_ = p_value_error
+        self.p_value_is_bound_ = p_value_is_bound
         self.aic_ = 2.0 * n_params - 2.0 * loglike
         self.bic_ = n_params * math.log(n_bins) - 2.0 * loglike
         self.n_sources_ = n_sources
@@ -2214,7 +2231,9 @@ class CountsFit:
             except np.linalg.LinAlgError as error:
                 raise CountsFitError(
                     f"{template.name} fit: the likelihood's curvature is not positive definite "
-                    f"at the optimum {dict(zip(names, np.round(theta, 4), strict=True))}; the "
+                    "at the optimum ("
+                    + ", ".join(f"{n} = {v:.4g}" for n, v in zip(names, theta, strict=True))
+                    + "); the "
                     "data do not constrain every parameter (narrow the model or widen the range)"
                 ) from error
             cov = np.linalg.inv(hessian)
@@ -2223,7 +2242,7 @@ class CountsFit:
             steps = np.maximum(0.1 * np.sqrt(np.diag(cov)), minimum_steps)
         return cov
 
-    def _jackknife(self, likelihood, regions, region_grids, used, maxima):
+    def _jackknife(self, likelihood, regions, region_grids, used, maxima, tick=None):
         """Parameters refitted with each region left out, shape (K, n_params)."""
         forward = self.forward
         kernel = forward.kernel[used]
@@ -2252,16 +2271,21 @@ class CountsFit:
                     f"the jackknife refit without region {k} failed: {error}"
                 ) from error
             values.append(theta_k)
+            if tick is not None:
+                tick(1)
         return np.array(values)
 
-    def _bootstrap_p_value(self, likelihood, maxima, mu, deviance, n_bootstrap, generator,
-                           bin_area):
+    def _bootstrap_exceedances(self, likelihood, maxima, mu, deviance, n_bootstrap, generator,
+                               bin_area, tick=None):
+        """Redraws (of ``n_bootstrap``) whose refitted deviance is at least the data's."""
         exceed = 0
         edges = self.forward.bin_edges_mag
         fit_lo, fit_hi = likelihood.fit_range  # edges of the fitted bins, exactly
         used = (edges[:-1] >= fit_lo) & (edges[1:] <= fit_hi)
         full = np.zeros(self.forward.n_bins)
         for _ in range(n_bootstrap):
+            if tick is not None:
+                tick(1)
             draw = generator.poisson(mu)
             if draw.sum() == 0:
                 exceed += 1
@@ -2276,7 +2300,7 @@ class CountsFit:
                     "the p-value"
                 ) from error
             exceed += redraw.deviance(theta_b) >= deviance
-        return (1.0 + exceed) / (1.0 + n_bootstrap)
+        return int(exceed)
 
     def _estimates(self, model, cov_poisson, cov, cov_jackknife):
         estimates = {}
@@ -2297,7 +2321,8 @@ class CountsFit:
     _FITTED_ATTRIBUTES = frozenset(
         {
             "model_", "params_", "cov_", "cov_poisson_", "cov_jackknife_", "jackknife_params_",
-            "loglike_", "deviance_", "dof_", "p_value_", "p_value_error_", "aic_", "bic_",
+            "loglike_", "deviance_", "dof_", "p_value_", "p_value_error_",
+            "p_value_is_bound_", "aic_", "bic_",
             "n_sources_", "n_bins_",
             "n_regions_", "expected_counts_", "used_bins_", "fit_range_", "observed_counts_",
             "region_counts_", "region_area_grids_", "estimates_",
@@ -2404,7 +2429,7 @@ class CountsFit:
         )
 
     def to_json(self):
-        """Fit summary with DESIGN.md section 4 names and Estimate JSON values."""
+        """Fit summary with the ``results.json`` names and Estimate JSON values."""
         model = self._fitted("model_")
         out = {
             "model": model.name,
@@ -2425,6 +2450,8 @@ class CountsFit:
                 "p_value_error": (
                     None if self.p_value_error_ is None else float(self.p_value_error_)
                 ),
+                "p_value_is_bound": self.p_value_is_bound_,
+                "n_bootstrap": int(self.n_bootstrap),
                 "aic": float(self.aic_),
                 "bic": float(self.bic_),
             }
@@ -2441,11 +2468,14 @@ class CountsFit:
         ]
         for name in model.param_names:
             lines.append(f"  {name:13s} {self.estimates_[name].format()}")
-        p_text = "not computed" if self.p_value_ is None else (
-            f"{self.p_value_:.3g} +/- {self.p_value_error_:.2g}"
-        )
+        if self.p_value_ is None:
+            p_text = "p not computed"
+        elif self.p_value_is_bound_:
+            p_text = f"p < {format_p_bound(self.p_value_)}, no redraw as extreme"
+        else:
+            p_text = f"p = {self.p_value_:.3g} +/- {self.p_value_error_:.2g}"
         lines.append(
-            f"  deviance {self.deviance_:.4g} on {self.dof_} dof (bootstrap p = {p_text}); "
+            f"  deviance {self.deviance_:.4g} on {self.dof_} dof (bootstrap {p_text}); "
             f"AIC {self.aic_:.6g}, BIC {self.bic_:.6g}"
         )
         return "\n".join(lines)
@@ -3031,8 +3061,10 @@ class ScatterRelation:
         Bin centres (AB mag) of the bins with enough sources.
     sigma_mag : ndarray
         Median quoted error there, made non-decreasing with magnitude (errors of a
-        sky-limited survey grow towards its limit; a running maximum removes the noise of
-        sparse bright bins).
+        sky-limited survey grow towards its limit) by a weighted isotonic fit in log sigma,
+        each bin weighted by its number of sources: a sparse bin with odd errors is pooled
+        with its crowded neighbours instead of lifting every fainter bin, as a running
+        maximum would.
     n_sources : ndarray of int
     """
 
@@ -3053,7 +3085,23 @@ class ScatterRelation:
         }
 
 
-def scatter_from_errors(mag, mag_error, bin_width=0.25, min_sources=20):
+def _no_progress(_):
+    """The progress callback when nobody watches."""
+
+
+def format_p_bound(bound):
+    """An upper bound on a p-value as text, rounded up to two significant figures.
+
+    ``1 / 201`` gives ``"0.005"``: the text is never below the bound it stands for.
+    """
+    bound = float(bound)
+    if not 0.0 < bound <= 1.0:
+        raise InputError(f"`bound` must be in (0, 1]; got {bound}")
+    scale = 10.0 ** (math.floor(math.log10(bound)) - 1)
+    return f"{math.ceil(bound / scale - 1e-9) * scale:.2g}"
+
+
+def scatter_from_errors(mag, mag_error, bin_width=0.25, min_sources=20, mag_range=None):
     """The scatter relation sigma(m) of a catalogue from its quoted magnitude errors.
 
     Parameters
@@ -3065,11 +3113,17 @@ def scatter_from_errors(mag, mag_error, bin_width=0.25, min_sources=20):
         Bin width in mag.
     min_sources : int
         Bins with fewer sources are left out.
+    mag_range : (float, float), optional
+        Only sources with ``lo <= mag <= hi`` are used (the magnitudes a count fit needs);
+        default all.
 
     Notes
     -----
     The quoted error is taken at the observed magnitude and used as the scatter at the same
-    true magnitude; the difference is second order in sigma for a smooth relation.
+    true magnitude; the difference is second order in sigma for a smooth relation. Each bin
+    gives the median error of its sources (robust to a few wild errors), and the medians are
+    made non-decreasing by weighted isotonic regression in log sigma (pool adjacent
+    violators, weights = sources per bin).
     """
     mag = np.asarray(mag, dtype=float)
     mag_error = np.asarray(mag_error, dtype=float)
@@ -3079,14 +3133,20 @@ def scatter_from_errors(mag, mag_error, bin_width=0.25, min_sources=20):
             f"{mag_error.shape}"
         )
     good = np.isfinite(mag) & np.isfinite(mag_error) & (mag_error > 0)
+    usable = "finite, > 0"
+    if mag_range is not None:
+        lo, hi = (float(v) for v in mag_range)
+        good &= (mag >= lo) & (mag <= hi)
+        usable += f", at magnitudes in [{lo:g}, {hi:g}]"
     if good.sum() < min_sources:
         raise InputError(
-            f"`mag_error` has {int(good.sum())} usable values (finite, > 0); at least "
+            f"`mag_error` has {int(good.sum())} usable values ({usable}); at least "
             f"{min_sources} are needed for a scatter relation"
         )
     mag, mag_error = mag[good], mag_error[good]
     bin_width = _check_real(bin_width, "bin_width", 0.0)
-    index = np.floor(mag / bin_width).astype(np.int64)
+    # Bin numbers stay floats: a magnitude such as 1e30 would overflow an integer cast.
+    index = np.floor(mag / bin_width)
     order = np.argsort(index, kind="stable")
     index, errors = index[order], mag_error[order]
     starts = np.flatnonzero(np.r_[True, index[1:] != index[:-1]])
@@ -3100,4 +3160,6 @@ def scatter_from_errors(mag, mag_error, bin_width=0.25, min_sources=20):
     medians = np.array([np.median(errors[a:b]) for a, b in zip(starts[keep], ends[keep],
                                                                 strict=True)])
     centres = (index[starts[keep]] + 0.5) * bin_width
-    return ScatterRelation(centres, np.maximum.accumulate(medians), counts[keep])
+    # Non-decreasing: the non-increasing isotonic fit of -log sigma.
+    log_sigma = -pool_adjacent_violators(-np.log(medians), counts[keep])
+    return ScatterRelation(centres, np.exp(log_sigma), counts[keep])

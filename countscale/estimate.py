@@ -53,7 +53,8 @@ PERCENTILES_68 = (16.0, 84.0)
 #: Percentiles bounding the 95 % interval.
 PERCENTILES_95 = (2.5, 97.5)
 
-#: How far the budget fractions may stray from summing to 1 (DESIGN.md section 4).
+#: How far the budget fractions may stray from summing to 1 (the Estimate JSON contract,
+#: docs/reference.md).
 BUDGET_SUM_TOLERANCE = 0.01
 
 #: Values whose decimal exponent lies in this range print in fixed notation, others in
@@ -372,7 +373,7 @@ class Estimate:
         return 0 if self.draws is None else int(self.draws.size)
 
     def to_json(self):
-        """The JSON form of DESIGN.md section 4, with plain Python floats.
+        """The Estimate JSON of docs/reference.md, with plain Python floats.
 
         Returns
         -------

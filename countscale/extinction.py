@@ -211,7 +211,7 @@ class ExtinctionMap:
         ------
         InputError
             ``"<where>: E(B-V) is missing (NaN) in 3 pixels inside the footprint, e.g. pixel
-            1234 (nside 64, RING) at RA 150.1, Dec 2.3"``.
+            1234 (nside 64, RING) at RA 161.2, Dec 43.1"``.
         """
         order = round(math.log2(self.nside))
         cells, _ = footprint.coverage_cells(order)

@@ -39,6 +39,7 @@ from __future__ import annotations
 
 import math
 import os
+import tempfile
 import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -195,6 +196,18 @@ def _regions(runfile: Any, footprint: Any) -> Any:
         return footprint.split(1)
 
 
+def _progress_bar(ctx: RunContext, total: int, desc: str, unit: str) -> Any:
+    """A tqdm bar on stderr for a stage's slow loop (off with ``progress=False`` and, by
+    default, when stderr is not a terminal)."""
+    import sys
+
+    from tqdm import tqdm
+
+    enabled = sys.stderr.isatty() if ctx.progress is None else bool(ctx.progress)
+    return tqdm(total=total, desc=desc, unit=unit, file=sys.stderr, disable=not enabled,
+                leave=False)
+
+
 def _stage_tally(ctx: RunContext) -> Any:
     from countscale.catalog import CatalogSource
     from countscale.footprint import Footprint
@@ -260,6 +273,54 @@ class StageResult:
 _CURVE_STEP_MAG = 0.02
 
 
+#: Largest fraction of the footprint a depth map may leave without data (completeness 0
+#: there) before the run refuses it: pixel-edge slivers pass (with a note), a footprint that
+#: reaches beyond the map does not. A choice of this project.
+_MAX_AREA_WITHOUT_DEPTH = 1e-3
+
+
+def _check_depth_map(runfile: Any, depth: Any, footprint: Any) -> tuple[float, float]:
+    """Refuse depth-map values that are no magnitude, and a map that misses the footprint.
+
+    Returns the footprint's area (deg²) and fraction in pixels without depth data (NaN or
+    UNSEEN), when that fraction is small enough to go on with.
+    """
+    import healpy as hp
+
+    where = runfile.location("completeness", "depth_map")
+    label = f"depth map '{Path(runfile.completeness.depth_map).name}'"
+    lo, hi = runfile.catalog.mag_range
+    values = depth.m50_mag
+    with np.errstate(invalid="ignore"):
+        bad = np.flatnonzero((values < lo) | (values > hi))
+    if bad.size:
+        pixel = int(bad[0])
+        raise InputError(
+            f"{where}: {label} must hold m50 values in the plausible magnitude range "
+            f"[{lo:g}, {hi:g}] ([catalog] 'mag_range') or NaN / healpy UNSEEN for no data; "
+            f"got {values[pixel]:g} at pixel {pixel} ({bad.size} such pixels)"
+        )
+    cover = footprint.to_healpix(depth.nside, nest=depth.nest)
+    pixel_area = hp.nside2pixarea(depth.nside, degrees=True)
+    missing_deg2 = float(cover[np.isnan(values)].sum() * pixel_area)
+    fraction = missing_deg2 / footprint.area_deg2
+    if fraction > _MAX_AREA_WITHOUT_DEPTH:
+        ordering = "NEST" if depth.nest else "RING"
+        raise InputError(
+            f"{where}: {label} must give a depth for the whole footprint; "
+            f"got none for {_deg2(missing_deg2)} deg² ({100 * fraction:.3g} % of the "
+            "footprint; "
+            f"map read as nside {depth.nside}, {ordering}): extend the map, restrict "
+            "[footprint] to it, or check the map's NSIDE and ORDERING keywords"
+        )
+    return missing_deg2, fraction
+
+
+def _deg2(area: float) -> str:
+    """An area for a message: 4 significant figures, or whole deg² with separators."""
+    return f"{area:,.0f}" if area >= 1e4 else f"{area:.4g}"
+
+
 def _extinction_shift(ctx: RunContext, regions: Any, depth: Any) -> dict:
     """How far the dust moves each region's completeness limit (for the report)."""
     import healpy as hp
@@ -293,37 +354,68 @@ def _depth_offsets(table: Any, depth: Any, footprint: Any) -> tuple[np.ndarray, 
     return depth.m50_mag[pixel] - reference, reference
 
 
+def _injection_columns(section: Any) -> dict[str, str]:
+    """The injection table's column mapping: only the roles the run file names.
+
+    Unnamed ``ra``/``dec`` are optional: columns of those names are used when the table has
+    them, and a table of magnitudes and recovered flags alone is fine.
+    """
+    return {role: name for role, name in section.columns.items() if name is not None}
+
+
 def _stage_completeness(ctx: RunContext) -> StageResult:
     """Fit the injection table; effective area of the footprint and of each region.
 
     With a depth map and injection positions, each injection's magnitude is first moved by
     its tile's depth offset from the footprint's median m50, so the fit measures the curve's
     *shape* (a single curve fitted across tiles of different depth would come out too wide);
-    the depth map then places that shape at each tile's m50.
+    the depth map then places that shape at each tile's m50. Without positions the curve is
+    fitted to the injections as they are, and the report says that its width then includes
+    the spread of depth between tiles.
     """
     from countscale import completeness as cm
 
     runfile, section = ctx.runfile, ctx.runfile.completeness
     tally_result = ctx.results["tally"]
-    table = cm.InjectionTable.from_csv(section.injections, columns=section.columns)
+    table = cm.InjectionTable.from_csv(section.injections, columns=_injection_columns(section))
     depth_info = None
     fit_table = table
+    notes = []
     if section.depth_map is not None:
         placeholder = cm.LogisticCompleteness(0.0, 1.0)
         depth_raw = cm.DepthMap.from_fits(section.depth_map, shape=placeholder)
+        missing_deg2, missing_fraction = _check_depth_map(runfile, depth_raw, ctx.footprint)
+        if missing_deg2 > 0:
+            notes.append(
+                f"{missing_deg2:.3g} deg² ({100 * missing_fraction:.2g} % of the footprint) "
+                "lies in depth-map pixels without data and counts as completeness 0"
+            )
         if table.ra_deg is not None:
             offset, reference = _depth_offsets(table, depth_raw, ctx.footprint)
             usable = np.isfinite(offset)
             if not usable.any():
                 raise InputError(
                     f"{runfile.location('completeness', 'depth_map')}: no injection lies in a "
-                    "depth-map pixel with data"
+                    f"depth-map pixel with data (of {len(table):,d} injections in "
+                    f"'{Path(section.injections).name}'); check that the injections and the "
+                    "map (its NSIDE and ORDERING keywords) describe the same field"
                 )
             fit_table = cm.InjectionTable.from_arrays(
                 table.mag[usable] - offset[usable], table.recovered[usable]
             )
             depth_info = {"reference_m50": reference,
                           "n_injections_outside_depth_map": int((~usable).sum())}
+        else:
+            cover = ctx.footprint.to_healpix(depth_raw.nside, nest=depth_raw.nest) > 0
+            spread = float(np.nanstd(depth_raw.m50_mag[cover]))
+            notes.append(
+                "the injection table has no positions, so injections could not be moved to a "
+                "common depth before the fit: the fitted curve spans every tile's depth, and "
+                "the depth map then shifts it tile by tile, so the curve's width is "
+                "overstated by the spread of depth between tiles "
+                f"({spread:.3g} mag rms over the footprint"
+                + (", so here by nothing)" if spread == 0 else ")")
+            )
     fit = cm.fit_completeness(fit_table, model=section.model, plateau=section.plateau,
                               rng=ctx.rng)
     depth = None
@@ -359,6 +451,7 @@ def _stage_completeness(ctx: RunContext) -> StageResult:
     data = {
         "model": section.model,
         "plateau": bool(section.plateau),
+        "positions": table.ra_deg is not None,
         "injections": str(section.injections),
         "n_injections": len(table),
         "n_injections_fitted": len(fit_table),
@@ -376,6 +469,7 @@ def _stage_completeness(ctx: RunContext) -> StageResult:
             "band_hi": band_hi.tolist(),
             "effective_area_fraction": (np.asarray(total(grid)) / area).tolist(),
         },
+        "notes": notes,
     }
     return StageResult(data, {"fit": fit, "depth": depth, "per_region": per_region,
                               "total": total})
@@ -737,6 +831,108 @@ def _normalisation(fit: Any, sigma_cv: float | None) -> dict | None:
     }
 
 
+#: Fewest sources in the footprint's magnitude bins for a count fit (the fit itself warns
+#: below this many in its range). Common figure, no source.
+_MIN_COUNT_SOURCES = 20
+
+#: Lowest mean completeness of a fitted bin: below it the correction exceeds 100x and the
+#: fitted counts are the completeness model's extrapolation rather than a measurement (bins
+#: between this and 50 % complete are fitted with a warning). A choice of this project.
+_MIN_FIT_COMPLETENESS = 0.01
+
+
+def _ledger_story(tally_result: Any) -> str:
+    """Where the catalogue's rows went, in one clause, for messages that blame the data."""
+    ledger = tally_result.ledger
+    parts = [f"{ledger.rows_read:,d} rows read", f"{ledger.rows_in_footprint:,d} in the "
+             f"footprint ({tally_result.area_deg2:.3g} deg²)",
+             f"{ledger.rows_outside_footprint:,d} outside"]
+    parts += [f"{n:,d} rejected as {reason}" for reason, n in
+              sorted(ledger.rows_rejected.items(), key=lambda item: -item[1]) if n]
+    return "; ".join(parts)
+
+
+#: Share of the catalogue's rows without a usable magnitude above which the counts say that
+#: their densities leave those rows out (a few bad rows are the ledger's business alone).
+_NOTABLE_MAGNITUDE_LOSS = 0.01
+
+
+def _rows_without_magnitude_note(ledger: Any) -> str | None:
+    """A note for the counts when many rows were rejected for their magnitude, else None.
+
+    Such rows are rejected before the footprint test, so whether they lie in the footprint is
+    not known; if they are real sources there, every density is low by up to their share.
+    """
+    reasons = ("mag_missing", "mag_implausible")
+    lost = {r: int(ledger.rows_rejected.get(r, 0)) for r in reasons}
+    n_lost = sum(lost.values())
+    if not ledger.rows_read or n_lost / ledger.rows_read <= _NOTABLE_MAGNITUDE_LOSS:
+        return None
+    listed = ", ".join(f"{r} {n:,d}" for r, n in lost.items() if n)
+    return (f"{100 * n_lost / ledger.rows_read:.2g} % of the catalogue's rows ({n_lost:,d}: "
+            f"{listed}) have no usable magnitude and are not counted; if they are sources in "
+            "the footprint, every density and N(<m) here is low by up to that share")
+
+
+def _whole_bins(edges: np.ndarray, fit_range: tuple[float, float]) -> tuple[float, float] | None:
+    """The bins lying wholly inside ``fit_range``, as (first edge, last edge); None if none."""
+    lo, hi = fit_range
+    slack = 1e-9 * max(1.0, abs(edges[0]), abs(edges[-1]))
+    inside = np.flatnonzero((edges[:-1] >= lo - slack) & (edges[1:] <= hi + slack))
+    if inside.size == 0:
+        return None
+    return float(edges[inside[0]]), float(edges[inside[-1] + 1])
+
+
+def _check_count_inputs(ctx: RunContext, fit_range: tuple[float, float], model_name: str,
+                        regions: np.ndarray | None, completeness: np.ndarray,
+                        default: bool) -> None:
+    """Refuse a fit the data cannot support, naming the run-file key that decides it.
+
+    ``completeness`` is each bin's mean completeness; ``default`` says that the fit range is
+    the default one (the bins at least half complete), not the run file's.
+    """
+    from countscale import counts as ct
+
+    runfile, tally_result = ctx.runfile, ctx.results["tally"]
+    edges, observed = tally_result.mag_edges, tally_result.counts
+    used = (edges[:-1] >= fit_range[0] - 1e-9) & (edges[1:] <= fit_range[1] + 1e-9)
+    n_params = len(_count_models()[model_name](reference_mag=fit_range[0]).param_names)
+    n_bins, n_fit = int(used.sum()), int(observed[used].sum())
+    where = runfile.location("counts", "fit_range")
+    shown = f"[{fit_range[0]:g}, {fit_range[1]:g}]" + (
+        " (the default: the bins at least 50 % complete)" if default else "")
+    low = np.flatnonzero(used & (completeness < _MIN_FIT_COMPLETENESS))
+    if low.size:
+        i = int(low[np.argmin(completeness[low])])
+        raise InputError(
+            f"{where} must keep to bins where at least {100 * _MIN_FIT_COMPLETENESS:g} % of "
+            f"sources are detected (below, the fit would be the completeness model's "
+            f"extrapolation); got {shown}, where bin [{edges[i]:g}, {edges[i + 1]:g}] is "
+            f"{completeness[i]:.2g} complete: narrow the fit range or check [completeness]"
+        )
+    if n_bins <= n_params:
+        raise InputError(
+            f"{where} must hold more bins than the {n_params} parameters of {model_name}; "
+            f"got {shown}, {n_bins} bin(s) of {edges[1] - edges[0]:g} mag"
+        )
+    if n_fit < ct.MIN_SOURCES:
+        raise InputError(
+            f"{where}: a count fit needs at least {ct.MIN_SOURCES} sources in the fit range; "
+            f"got {n_fit:,d} in {shown} ({_ledger_story(tally_result)})"
+        )
+    if regions is not None:
+        left = n_fit - regions[:, used].sum(axis=1)
+        worst = int(np.argmin(left))
+        if left[worst] <= n_params:
+            raise InputError(
+                f"{runfile.location('variance', 'regions')} must leave enough sources for "
+                f"each jackknife refit; got {tally_result.n_regions} regions, and leaving out "
+                f"region {worst} leaves {int(left[worst])} of the {n_fit:,d} sources in "
+                f"{shown} (use fewer, larger regions)"
+            )
+
+
 def _stage_counts(ctx: RunContext) -> StageResult:
     """Fit the number counts through the forward model; integral and differential counts."""
     from countscale import counts as ct
@@ -745,7 +941,18 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     tally_result = ctx.results["tally"]
     completeness = ctx.results.get("completeness")
     area = float(tally_result.area_deg2)
+    edges = tally_result.mag_edges
+    n_binned = int(tally_result.counts.sum())
+    if n_binned < _MIN_COUNT_SOURCES:
+        raise InputError(
+            f"{runfile.location('counts', 'bins')}: a count fit needs at least "
+            f"{_MIN_COUNT_SOURCES} sources in the footprint within the bins "
+            f"[{edges[0]:g}, {edges[-1]:g}]; got {n_binned:,d} ({_ledger_story(tally_result)})"
+        )
     notes = []
+    no_magnitude = _rows_without_magnitude_note(tally_result.ledger)
+    if no_magnitude:
+        notes.append(no_magnitude)
     if completeness is not None:
         effective, per_region = completeness["total"], list(completeness["per_region"])
     else:
@@ -755,19 +962,48 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     columns = tally_result.columns
     scatter = None
     if columns is not None and "mag_error" in columns and "mag" in columns:
-        scatter = ct.scatter_from_errors(columns["mag"], columns["mag_error"])
+        # Errors of sources within a magnitude of the bins: the scatter the fit needs, and
+        # no say for a stray magnitude far away.
+        try:
+            scatter = ct.scatter_from_errors(columns["mag"], columns["mag_error"],
+                                             mag_range=(edges[0] - 1.0, edges[-1] + 1.0))
+        except InputError as exc:
+            raise InputError(
+                f"{runfile.location('catalog', 'mag_error')} column "
+                f"'{runfile.catalog.mag_error}': {exc}"
+            ) from exc
     else:
         notes.append("no magnitude errors in the catalogue: photometric scatter is ignored")
     forward = ct.ForwardModel(tally_result.mag_edges, effective, scatter, area_deg2=area)
     fit_range = section.fit_range
     if fit_range is None:
-        # Default: the bins that are at least half complete (DESIGN.md section 5).
+        # Default: the bins that are at least half complete (a fit leaning on completeness
+        # below 50 % is doubtful; common figure, no source).
         good = np.flatnonzero(forward.bin_completeness() >= 0.5)
         if good.size == 0:
-            raise InputError(f"{runfile.location('counts')}: no magnitude bin is at least 50 % "
-                             "complete; give `fit_range`")
-        edges = tally_result.mag_edges
+            raise InputError(
+                f"{runfile.location('counts', 'fit_range')} is needed: no magnitude bin in "
+                f"[{edges[0]:g}, {edges[-1]:g}] is at least 50 % complete, so there is no "
+                "default; got none"
+            )
         fit_range = (float(edges[good[0]]), float(edges[good[-1] + 1]))
+        default_range = True
+    else:
+        default_range = False
+        snapped = _whole_bins(edges, fit_range)
+        if snapped is None:
+            raise InputError(
+                f"{runfile.location('counts', 'fit_range')} must contain at least one whole "
+                f"bin of {edges[1] - edges[0]:g} mag from {edges[0]:g}; got "
+                f"[{fit_range[0]:g}, {fit_range[1]:g}]"
+            )
+        if not np.allclose(snapped, fit_range, rtol=0, atol=1e-9):
+            notes.append(
+                f"fit_range [{fit_range[0]:g}, {fit_range[1]:g}] does not fall on bin edges "
+                f"({edges[1] - edges[0]:g} mag from {edges[0]:g}): the fit uses the whole bins "
+                f"inside it, [{snapped[0]:g}, {snapped[1]:g}]"
+            )
+        fit_range = snapped
     observed = tally_result.counts
     region_counts = tally_result.region_counts
     if tally_result.n_unassigned or not np.array_equal(region_counts.sum(axis=0), observed):
@@ -776,28 +1012,44 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     elif tally_result.n_regions < 3:
         region_counts, per_region = None, None
         notes.append("fewer than 3 regions: errors are Poisson only (no jackknife)")
+    _check_count_inputs(ctx, fit_range, section.model, region_counts,
+                        forward.bin_completeness(), default_range)
 
     fits = {}
     fit_lo = float(fit_range[0])
-    reference = 0.5 * round(fit_range[0] + fit_range[1])
-    models = {"power_law": ct.PowerLaw, "broken_power_law": ct.BrokenPowerLaw,
-              "double_power_law": ct.DoublePowerLaw}
+    reference = section.reference_mag
+    if reference is None:  # the middle of the fit range, rounded to 0.5 mag
+        reference = 0.5 * round(fit_range[0] + fit_range[1])
+    models = _count_models()
+    fitters = {}
     for name in (section.model, *[m for m in models if m != section.model]):
         # N(<m) is integrated from the bright edge of the fit range (m_bright); brighter
         # sources are taken as observed (see _integral_with_bright_part).
         settings = {"reference_mag": reference, "m_bright": fit_lo}
         if name != "power_law":
             settings["m_break"] = 0.5 * (fit_range[0] + fit_range[1])
-        template = models[name](**settings)
-        try:
-            fits[name] = ct.CountsFit(template, forward, fit_range_mag=fit_range).fit(
-                observed, rng=ctx.rng, region_counts=region_counts,
-                region_effective_area_deg2=per_region,
-            )
-        except (ct.CountsFitError, InputError) as exc:
-            if name == section.model:
-                raise
-            notes.append(f"comparison model {name} not fitted: {exc}")
+        fitters[name] = ct.CountsFit(models[name](**settings), forward, fit_range_mag=fit_range,
+                                     n_bootstrap=section.n_bootstrap)
+    # One step per refit: each jackknife region and each bootstrap redraw, for every model.
+    n_regions = 0 if region_counts is None else region_counts.shape[0]
+    refits = {name: fitter.n_bootstrap + n_regions for name, fitter in fitters.items()}
+    with _progress_bar(ctx, sum(refits.values()), "counts", "refits") as bar:
+        for name, fitter in fitters.items():
+            start = bar.n
+            try:
+                fits[name] = fitter.fit(
+                    observed, rng=ctx.rng, region_counts=region_counts,
+                    region_effective_area_deg2=per_region, progress=bar.update,
+                )
+            except InputError as exc:
+                if name == section.model:
+                    raise InputError(f"{runfile.location('counts')}: {exc}") from exc
+                notes.append(f"comparison model {name} not fitted: {exc}")
+            except ct.CountsFitError as exc:
+                if name == section.model:
+                    raise
+                notes.append(f"comparison model {name} not fitted: {exc}")
+            bar.update(start + refits[name] - bar.n)  # a fit that stopped early
     main = fits[section.model]
     comparison = ct.compare_models(list(fits.values())) if len(fits) > 1 else None
     m_limit = float(main.fit_range_[1])
@@ -847,6 +1099,14 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     }
     return StageResult(data, {"fit": main, "fits": fits, "forward": forward,
                               "scatter": scatter})
+
+
+def _count_models() -> dict[str, Any]:
+    """The count models by their run-file names."""
+    from countscale import counts as ct
+
+    return {"power_law": ct.PowerLaw, "broken_power_law": ct.BrokenPowerLaw,
+            "double_power_law": ct.DoublePowerLaw}
 
 
 #: Parameter draws kept for the luminosity function's Estimates and the STY curve's band.
@@ -2078,6 +2338,39 @@ def _seed_iv(seed: Any) -> int:
     return int(seed)
 
 
+def _check_out_dir(out_dir: Path, label: str) -> None:
+    """Make sure the report folder can be written before any work starts (it is created).
+
+    A run can take minutes; a folder that cannot be written should stop it at once, not
+    after the computation.
+    """
+    try:
+        existing = out_dir
+        while not existing.exists() and existing != existing.parent:
+            existing = existing.parent
+        if existing.exists() and not existing.is_dir():
+            what = "exists and is" if existing == out_dir else f"is inside '{existing}', which is"
+            raise InputError(f"{label} '{out_dir}' {what} not a folder")
+        out_dir.mkdir(parents=True, exist_ok=True)
+        handle, probe = tempfile.mkstemp(prefix=".countscale-probe-", dir=out_dir)
+        os.close(handle)
+        os.unlink(probe)
+    except OSError as exc:
+        reason = exc.strerror or type(exc).__name__
+        raise InputError(f"{label} '{out_dir}' must be a folder that can be written; got: "
+                         f"{reason}") from exc
+
+
+def _warning_lines(stage: str, caught: list[warnings.WarningMessage]) -> list[str]:
+    """One line per distinct warning of a stage, ``"<stage>: <message>"``, in sorted order
+    (warnings from the tally's threads arrive in no fixed order)."""
+    lines = set()
+    for item in caught:
+        text = str(item.message).strip().splitlines()
+        lines.add(f"{stage}: {text[0] if text else item.category.__name__}")
+    return sorted(lines)
+
+
 def _engine_iv(runfile: Any, engine: Any, scheduler: Any) -> tuple[str, str | None]:
     from countscale.tally import ENGINES
 
@@ -2148,12 +2441,13 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     engine, scheduler = _engine_iv(runfile, engine, scheduler)
     seed = _seed_iv(seed)
     if out_dir is None:
-        out_dir = runfile.output.dir
+        out_dir, out_label = runfile.output.dir, runfile.location("output", "dir")
     elif not isinstance(out_dir, str | os.PathLike):
         raise InputTypeError(f"`out_dir` must be a folder path; got {type(out_dir).__name__}")
+    else:
+        out_label = "`out_dir` (--out)"
     out_dir = Path(out_dir)
-    if out_dir.exists() and not out_dir.is_dir():
-        raise InputError(f"`out_dir` '{out_dir}' exists and is not a folder")
+    _check_out_dir(out_dir, out_label)
 
     to_run = [s for s in STAGES if all(name in runfile.present for name in s.sections)
               and (s.when is None or s.when(runfile))]
@@ -2162,8 +2456,13 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     columns = tuple(dict.fromkeys(c for s in to_run for c in _stage_columns(s, runfile)))
     ctx = RunContext(runfile=runfile, engine=engine, scheduler=scheduler,
                      rng=np.random.default_rng(seed), progress=progress, columns=columns)
+    run_warnings: list[str] = []
     for stage in to_run:
-        ctx.results[stage.name] = stage.run(ctx)
+        # Warnings (ours, astropy's, healpy's) go into the results and the report, one line
+        # each, instead of onto stderr with source lines.
+        with warnings.catch_warnings(record=True) as caught:
+            ctx.results[stage.name] = stage.run(ctx)
+        run_warnings += _warning_lines(stage.name, caught)
 
     tally_result = ctx.results["tally"]
     survey = {k: v for k, v in runfile.survey.to_dict().items() if v is not None}
@@ -2177,6 +2476,7 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
             "seed": seed,
             "stages": [s.name for s in to_run],
             "sections_not_run": list(not_run),
+            "warnings": run_warnings,
         },
         "ledger": content.pop("ledger"),
         "footprint": content.pop("footprint"),
@@ -2185,11 +2485,8 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     for stage in to_run:
         if stage.name != "tally":
             results[stage.name] = ctx.results[stage.name].to_dict()
-    figures = report.figure_names(results, runfile.output.formats, ctx.footprint)
-    if figures:
-        results["figures"] = figures
-    files = report.write_report(results, out_dir, formats=runfile.output.formats,
-                                footprint=ctx.footprint)
+    files, results = report.write_report(results, out_dir, formats=runfile.output.formats,
+                                         footprint=ctx.footprint)
     return RunResult(
         runfile=runfile, out_dir=out_dir, files=files, engine=engine, seed=seed,
         stages=tuple(s.name for s in to_run), sections_not_run=not_run,

@@ -12,6 +12,11 @@ sky_model_figure, contamination_figure
     The sky model (densities per unit, residuals, totals); stars among the sources per bin.
 totals_figure, totals_budget_figure
     The run's totals with their intervals; their error budgets as stacked bars.
+
+Each figure function writes its PNG and returns a list of notes: one sentence for each part
+of the figure left empty and why (no bin complete enough to correct, ...), so that the report
+can say it beside the figure. A figure with nothing to show is still drawn, with the reason
+written on it.
 """
 
 from __future__ import annotations
@@ -41,7 +46,8 @@ def footprint_figure(footprint, path, title=None, zoom_pixels=700):
     """Write a two-panel PNG: the footprint on the whole sky, and a zoom on it.
 
     The zoom samples the coverage fraction on a regular RA/Dec grid of `zoom_pixels` across,
-    so holes larger than a grid step show; its caption gives the step.
+    so holes larger than a grid step show; its caption gives the step. Returns notes on
+    what is left empty (see the module docstring).
     """
     import healpy as hp
 
@@ -101,6 +107,7 @@ def footprint_figure(footprint, path, title=None, zoom_pixels=700):
         fig.suptitle(title)
     fig.tight_layout(rect=(0, 0.02, 1, 0.96))
     _save(fig, path)
+    return [] if len(ra_c) else ["the footprint is empty: there is nothing to draw"]
 
 
 def completeness_figure(completeness, path, title=None):
@@ -112,6 +119,11 @@ def completeness_figure(completeness, path, title=None):
         The ``completeness`` block of ``results.json``.
     path : path
         PNG to write.
+
+    Returns
+    -------
+    list of str
+        Notes on parts of the figure left empty (none today: a fit needs injections).
     """
     plt = _pyplot()
     rec, curve = completeness["recovery"], completeness["curve"]
@@ -147,6 +159,7 @@ def completeness_figure(completeness, path, title=None):
     ax.set_title(title or "Detection completeness", fontsize=11)
     fig.tight_layout()
     _save(fig, path)
+    return []
 
 
 def counts_figure(counts, path, title=None):
@@ -158,6 +171,12 @@ def counts_figure(counts, path, title=None):
         The ``counts`` block of ``results.json``.
     path : path
         PNG to write.
+
+    Returns
+    -------
+    list of str
+        Notes on parts left empty: no corrected densities when no bin with sources is at
+        least 50 % complete, no points when no bin holds a source.
     """
     plt = _pyplot()
     diff = counts["differential"]
@@ -177,11 +196,24 @@ def counts_figure(counts, path, title=None):
     # Corrected points only where at least half the sources are detected: deeper, the
     # correction is mostly the model's own extrapolation.
     ok = shown & np.isfinite(corr) & (np.asarray(diff["completeness"]) >= 0.5)
-    yerr = np.abs(np.stack([corr - band[:, 0], band[:, 1] - corr]))[:, ok]
-    error_kind = "Poisson + clustering" if diff["corrected_interval_68_full"] else "Poisson"
-    ax.errorbar(mid[ok], corr[ok], yerr=yerr, fmt="o", ms=3.5, color="k", lw=0.9,
-                label=f"corrected for completeness and scatter (68 %, {error_kind}; "
-                      "shown where completeness ≥ 0.5)")
+    notes = []
+    if not shown.any():
+        notes.append("no bin holds a source: there are no counts to show")
+    elif not ok.any():
+        notes.append("no bin with sources is at least 50 % complete, so no corrected "
+                     "densities are shown (only raw counts and the fitted model)")
+    if ok.any():
+        yerr = np.abs(np.stack([corr - band[:, 0], band[:, 1] - corr]))[:, ok]
+        error_kind = "Poisson + clustering" if diff["corrected_interval_68_full"] else "Poisson"
+        ax.errorbar(mid[ok], corr[ok], yerr=yerr, fmt="o", ms=3.5, color="k", lw=0.9,
+                    label=f"corrected for completeness and scatter (68 %, {error_kind}; "
+                          "shown where completeness ≥ 0.5)")
+    if notes:
+        import textwrap
+
+        ax.text(0.5, 0.5, "\n".join(textwrap.fill(n, 60) for n in notes),
+                transform=ax.transAxes, ha="center", va="center", fontsize=9, color="tab:red",
+                bbox={"facecolor": "white", "edgecolor": "tab:red", "alpha": 0.85})
     curves = counts["model_curves"]
     grid = np.asarray(curves["mag"])
     styles = {"power_law": "-", "broken_power_law": "--", "double_power_law": ":"}
@@ -200,9 +232,18 @@ def counts_figure(counts, path, title=None):
     for axis in (ax, res):
         axis.axvspan(fit_lo, fit_hi, color="tab:green", alpha=0.07, lw=0)
     ax.set_yscale("log")
+    # Head room above the data for the legend; the model curves set the scale when no bin
+    # holds a source.
     positive = raw[shown]
-    # Head room above the data for the legend.
-    ax.set_ylim(0.5 * positive.min(), 300 * max(positive.max(), np.nanmax(corr[ok])))
+    if positive.size:
+        top = max(positive.max(), corr[ok].max()) if ok.any() else positive.max()
+        ax.set_ylim(0.5 * positive.min(), 300 * top)
+    else:
+        model = np.concatenate([np.asarray(v, dtype=float) for k, v in curves.items()
+                                if k != "mag"])
+        model = model[np.isfinite(model) & (model > 0)]
+        if model.size:
+            ax.set_ylim(0.5 * model.min(), 300 * model.max())
     ax.set_ylabel("sources per deg² per mag")
     ax.grid(alpha=0.3, which="both")
     ax.legend(fontsize=7.5, loc="upper left")
@@ -218,6 +259,7 @@ def counts_figure(counts, path, title=None):
     res.grid(alpha=0.3)
     fig.tight_layout()
     _save(fig, path)
+    return notes
 
 
 def sky_model_figure(sky, path, title=None):
@@ -459,6 +501,11 @@ def variance_figure(variance, path, title=None):
         survey's own footprint, with its real shape).
     path : path
         PNG to write.
+
+    Returns
+    -------
+    list of str
+        Notes on parts left empty (none: the figure is drawn only with an area curve).
     """
     plt = _pyplot()
     curve = variance["area_curve"]
@@ -501,6 +548,7 @@ def variance_figure(variance, path, title=None):
     ax.legend(fontsize=7.5, loc="lower left")
     fig.tight_layout()
     _save(fig, path)
+    return []
 
 
 def plan_figure(plan, path, title=None):
@@ -596,6 +644,8 @@ def totals_figure(totals, path, title=None):
                       and not (key == "stars_total" and same_as_sky)])
               for name, rows in _TOTAL_PANELS]
     panels = [(name, rows) for name, rows in panels if rows]
+    if not panels:
+        return _empty_totals_figure(path, title, "no total was computed")
     heights = [len(rows) + 0.9 for _, rows in panels]
     fig, axes = plt.subplots(len(panels), 1, figsize=(10, 1.0 + 0.62 * sum(heights)),
                              gridspec_kw={"height_ratios": heights}, squeeze=False)
@@ -637,6 +687,18 @@ def totals_figure(totals, path, title=None):
     fig.tight_layout()
     fig.subplots_adjust(right=0.8)
     _save(fig, path)
+    return []
+
+
+def _empty_totals_figure(path, title, reason):
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(8, 2.5))
+    ax.axis("off")
+    ax.text(0.5, 0.5, reason, ha="center", va="center", fontsize=11)
+    if title:
+        ax.set_title(title, fontsize=11)
+    _save(fig, path)
+    return [reason]
 
 
 def totals_budget_figure(totals, path, title=None):
@@ -657,6 +719,8 @@ def totals_budget_figure(totals, path, title=None):
         for source in totals[key]["budget"]:
             if source not in sources:
                 sources.append(source)
+    if not keys:
+        return _empty_totals_figure(path, title, "no total has an error budget")
     cmap = plt.get_cmap("tab20")
     colours = {s: cmap(i % 20) for i, s in enumerate(sources)}
     fig, ax = plt.subplots(figsize=(10.5, 1.5 + 0.5 * max(len(keys), 1)))
@@ -687,3 +751,4 @@ def totals_budget_figure(totals, path, title=None):
         ax.set_title(title, fontsize=11)
     fig.tight_layout()
     _save(fig, path)
+    return []

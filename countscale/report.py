@@ -14,12 +14,13 @@ results_json
 
 How a report folder is written
 ------------------------------
-Every file's content is built in memory first, so a failure there touches nothing. Then the
-previous ``results.json`` (if any) is removed, every other file is written (each to a
-temporary name in the folder, renamed when complete: :func:`countscale._io.atomic_path`), and
-``results.json`` is written the same way, last. So ``results.json`` exists only when the whole
-report of one run is there; after an interrupted run the folder holds no ``results.json`` or
-the previous run's complete one, never a partial one.
+The previous ``results.json`` (if any) is removed; the figures are drawn, each on its own: a
+figure that fails is not drawn, and the report and ``results.json`` say why
+(``figure_notes``), so a figure can never cost the run its numbers. Then ``report.md`` and
+``results.json`` are written, ``results.json`` last, each to a temporary name in the folder
+and renamed when complete (:func:`countscale._io.atomic_path`). So ``results.json`` exists
+only when the whole report of one run is there; after an interrupted run the folder holds no
+``results.json`` or the previous run's complete one, never a partial one.
 """
 
 from __future__ import annotations
@@ -28,7 +29,7 @@ import json
 import os
 from collections.abc import Iterable, Mapping
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 from countscale._io import atomic_path
 from countscale.errors import InputError, InputTypeError
@@ -36,6 +37,7 @@ from countscale.errors import InputError, InputTypeError
 __all__ = [
     "REPORT_NAME",
     "RESULTS_NAME",
+    "WrittenReport",
     "render_markdown",
     "render_text",
     "results_json",
@@ -138,45 +140,79 @@ def render_markdown(results: Mapping[str, Any]) -> str:
         "",
         _regions_line(tally["regions"]) + ".",
     ]
-    figures = results.get("figures", {})
-    if "footprint" in figures:
-        out += ["", f"![footprint]({figures['footprint']})"]
+    out += _figure_markdown(results, "footprint", "footprint")
     if "completeness" in results:
         out += ["", *_completeness_markdown(results["completeness"])]
-        if "completeness" in figures:
-            out += ["", f"![completeness]({figures['completeness']})"]
+        out += _figure_markdown(results, "completeness", "completeness")
     if "luminosity_function" in results:
         out += ["", *_luminosity_function_markdown(results["luminosity_function"])]
-        if "luminosity_function" in figures:
-            out += ["", f"![luminosity function]({figures['luminosity_function']})"]
+        out += _figure_markdown(results, "luminosity_function", "luminosity function")
     if "variance" in results:
         out += ["", *_variance_markdown(results["variance"])]
-        if "variance" in figures:
-            out += ["", f"![cosmic variance against area]({figures['variance']})"]
+        out += _figure_markdown(results, "variance", "cosmic variance against area")
     if "counts" in results:
         out += ["", *_counts_markdown(results["counts"])]
-        if "counts" in figures:
-            out += ["", f"![number counts]({figures['counts']})"]
+        out += _figure_markdown(results, "counts", "number counts")
     if "contamination" in results:
         out += ["", *_contamination_markdown(results["contamination"])]
-        if "contamination" in figures:
-            out += ["", f"![stars among the sources]({figures['contamination']})"]
+        out += _figure_markdown(results, "contamination", "stars among the sources")
     if "sky_model" in results:
         out += ["", *_sky_model_markdown(results["sky_model"])]
-        if "sky_model" in figures:
-            out += ["", f"![sky model]({figures['sky_model']})"]
+        out += _figure_markdown(results, "sky_model", "sky model")
     if "totals" in results:
         out += ["", *_totals_markdown(results["totals"])]
-        for name, words in (("totals", "totals with their intervals"),
-                            ("totals_budget", "error budgets of the totals")):
-            if name in figures:
-                out += ["", f"![{words}]({figures[name]})"]
+        out += _figure_markdown(results, "totals", "totals with their intervals")
+        out += _figure_markdown(results, "totals_budget", "error budgets of the totals")
+    other = _other_warnings(results)
+    if other:
+        out += ["", "## Warnings", "", "Raised while the stages ran (stage: message):", ""]
+        out += [f"- {line}" for line in other]
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         out += ["", "## Not run", "", f"The run file has {listed}; this version of countscale "
                 "has no stage that fits or reports them yet (the tally used `[counts].bins` "
                 "and `[variance].regions` where given)."]
     return "\n".join(out) + "\n"
+
+
+def _other_warnings(results: Mapping[str, Any]) -> list[str]:
+    """The run's warnings (``"stage: message"``) that its stage's block does not already show
+    among its own ``warnings`` or ``notes``."""
+    out = []
+    for line in results.get("run", {}).get("warnings", []):
+        stage, _, message = line.partition(": ")
+        block = results.get(stage)
+        shown = ()
+        if isinstance(block, Mapping):
+            shown = (*block.get("warnings", ()), *block.get("notes", ()))
+        if message not in shown:
+            out.append(line)
+    return out
+
+
+def _figure_markdown(results: Mapping[str, Any], name: str, alt: str) -> list[str]:
+    """The figure's image line, and a line for each part of it left empty (and why)."""
+    out = []
+    figure = results.get("figures", {}).get(name)
+    if figure:
+        out += ["", f"![{alt}]({figure})"]
+    notes = results.get("figure_notes", {}).get(name, [])
+    if notes:
+        out += ["", f"About the {alt} figure: " + "; ".join(n.rstrip(".") for n in notes) + "."]
+    return out
+
+
+def _p_value_text(fit: Mapping[str, Any]) -> str:
+    """``p = 0.31``, or ``p < 0.005`` when no bootstrap redraw was as extreme as the data."""
+    from countscale.counts import format_p_bound
+
+    p = fit.get("p_value")
+    if p is None:
+        return ""
+    if fit.get("p_value_is_bound"):
+        return (f"p < {format_p_bound(p)} (none of {fit.get('n_bootstrap', '?')} bootstrap "
+                "redraws was as extreme)")
+    return f"p = {p:.3g}"
 
 
 def _estimate(obj: Mapping[str, Any]) -> str:
@@ -215,6 +251,7 @@ def _completeness_markdown(comp: Mapping[str, Any]) -> list[str]:
             f"mean extinction per region from {min(per_region):.3f} to "
             f"{max(per_region):.3f} mag",
         ]
+    out += [f"- Note: {note.rstrip('.')}." for note in comp.get("notes", [])]
     out += ["", "Intervals are 68 %; they reflect the finite number of injections only."]
     return out
 
@@ -341,7 +378,7 @@ def _counts_markdown(counts: Mapping[str, Any]) -> list[str]:
     out += [
         "",
         f"Goodness of fit: deviance {fit['deviance']:.1f} for {fit['dof']} degrees of freedom"
-        + (f", parametric-bootstrap p = {p:.3g}" if p is not None else "")
+        + (f", parametric-bootstrap {_p_value_text(fit)}" if p is not None else "")
         + f"; AIC {fit['aic']:.1f}, BIC {fit['bic']:.1f}."
         + (" **The model does not describe these counts within their errors (p < 0.05): its "
            "parameters summarise a curved relation, compare the alternatives below.**"
@@ -719,6 +756,7 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
         comp = results["completeness"]
         lines += ["", f"completeness    {comp['model']}: m50 {_estimate(comp['m50'])}, "
                       f"m90 {_estimate(comp['m90'])}"]
+        lines += [f"                note: {note}" for note in comp.get("notes", [])]
     if "variance" in results:
         variance = results["variance"]
         parts = [f"Poisson {variance['poisson_fraction']:.3g}"]
@@ -781,6 +819,11 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
                          "lies outside the covariate range observed (an extrapolation)")
     if "totals" in results:
         lines += _totals_text(results["totals"])
+    for name, notes in results.get("figure_notes", {}).items():
+        lines += [f"figure {name:<9}{note}" for note in notes]
+    other = _other_warnings(results)
+    if other:
+        lines += ["", "warnings        " + "\n                ".join(other)]
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
         lines += ["", f"not run yet     {listed}",
@@ -806,10 +849,9 @@ FIGURE_NAMES = {"footprint": "footprint.png", "completeness": "completeness.png"
 
 def figure_names(results: Mapping[str, Any], formats: Iterable[str],
                  footprint: Any = None) -> dict[str, str]:
-    """The figures a report will hold ({name: file name}); empty unless "png" is a format.
+    """The figures a report will draw ({name: file name}); empty unless "png" is a format.
 
-    The run puts this under ``results["figures"]`` before writing, so ``results.json`` and
-    ``report.md`` list exactly the figures drawn.
+    :func:`write_report` draws these and lists under ``results["figures"]`` the ones drawn.
     """
     if "png" not in tuple(formats):
         return {}
@@ -827,9 +869,17 @@ def figure_names(results: Mapping[str, Any], formats: Iterable[str],
     return {name: FIGURE_NAMES[name] for name in names}
 
 
+class WrittenReport(NamedTuple):
+    """What :func:`write_report` wrote: the files, and the results as ``results.json`` holds
+    them (with ``figures`` and ``figure_notes`` as drawn)."""
+
+    files: tuple[Path, ...]
+    results: dict[str, Any]
+
+
 def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
                  formats: Iterable[str] = ("json", "markdown"),
-                 footprint: Any = None) -> tuple[Path, ...]:
+                 footprint: Any = None) -> WrittenReport:
     """Write the report folder; ``results.json`` last (see the module docstring).
 
     Parameters
@@ -848,8 +898,11 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
 
     Returns
     -------
-    tuple of pathlib.Path
-        The files written, ``results.json`` last.
+    WrittenReport
+        The files written (``results.json`` last) and the results written: a copy of
+        `results` whose ``figures`` maps each figure drawn to its file name and whose
+        ``figure_notes`` says, per figure, what is empty in it and why, or why it was not
+        drawn. The caller's mapping is not modified.
     """
     out_dir = Path(out_dir)
     if out_dir.exists() and not out_dir.is_dir():
@@ -882,22 +935,39 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
         }
         for name in figure_names(results, formats, footprint):
             figures[name] = drawers[name]
-    # Build every text file's content before touching the folder.
-    contents: list[tuple[str, str]] = []
-    if "markdown" in formats:
-        contents.append((REPORT_NAME, render_markdown(results)))
-    contents.append((RESULTS_NAME, results_json(results)))
+    results = dict(results)
+    results_json(results)  # refuse a results dict that cannot be written before any file moves
 
     out_dir.mkdir(parents=True, exist_ok=True)
     (out_dir / RESULTS_NAME).unlink(missing_ok=True)
     written = []
+    drawn: dict[str, str] = {}
+    figure_notes: dict[str, list[str]] = {}
     for name, draw in figures.items():
         path = out_dir / FIGURE_NAMES[name]
-        draw(path)  # plots write through atomic_path themselves
+        try:
+            notes = draw(path)  # plots write through atomic_path themselves
+        except Exception as exc:  # a figure never costs the run its numbers
+            first = (str(exc).strip().splitlines() or [""])[0]
+            figure_notes[name] = [f"not drawn: {type(exc).__name__}: {first}".rstrip(": ")]
+            continue
+        drawn[name] = FIGURE_NAMES[name]
+        if notes:
+            figure_notes[name] = list(notes)
         written.append(path)
+    results.pop("figures", None)
+    results.pop("figure_notes", None)
+    if drawn:
+        results["figures"] = drawn
+    if figure_notes:
+        results["figure_notes"] = figure_notes
+    contents: list[tuple[str, str]] = []
+    if "markdown" in formats:
+        contents.append((REPORT_NAME, render_markdown(results)))
+    contents.append((RESULTS_NAME, results_json(results)))
     for name, text in contents:
         path = out_dir / name
         with atomic_path(path) as tmp:
             tmp.write_text(text, encoding="utf-8")
         written.append(path)
-    return tuple(written)
+    return WrittenReport(tuple(written), results)

@@ -114,6 +114,9 @@ from countscale.errors import InputError, InputTypeError
 
 __all__ = [
     "ITEM_KINDS",
+    "MAX_BINS",
+    "MAX_ORDER",
+    "MAX_REGIONS",
     "REQUIRED",
     "SECTIONS",
     "FootprintItem",
@@ -740,6 +743,19 @@ def _covariate_maps() -> Check:
 
 
 _REDSHIFT_RULE = "must be two increasing redshifts [a, b] with 0 <= a < b"
+
+#: Finest HEALPix order of a footprint. The IVOA MOC standard (v2.0, 2022) goes to 29, but the
+#: footprint measures a boundary cell at order k from its sub-cells at order k + 1, and healpy
+#: accepts nside only up to 2**29: order 29 cannot be built (order 28 cells are 0.8 mas across).
+MAX_ORDER = 28
+
+#: Most jackknife regions: each region costs a refit of every count model (the demo survey took
+#: 18 s with 100 regions and 26 s with 400; 10^5 regions ran for 14 minutes).
+MAX_REGIONS = 1000
+
+#: Most magnitude bins in [counts].bins: the forward model holds a (bins x 0.01 mag cells)
+#: response matrix, and 1000 bins is already a 0.01 mag grid over 10 mag.
+MAX_BINS = 1000
 _RA_DEG = _real(0.0, 360.0, unit="degrees")
 _DEC_DEG = _real(-90.0, 90.0, unit="degrees")
 
@@ -866,7 +882,7 @@ ITEM_KINDS: dict[str, _Kind] = {
     # Cells (at HEALPix `order`) of the catalogue holding at least `min_count` sources.
     "occupancy": _Kind(
         _table(
-            {"order": Key(_integer(0, 29), REQUIRED), "min_count": Key(_integer(1), 1)},
+            {"order": Key(_integer(0, MAX_ORDER), REQUIRED), "min_count": Key(_integer(1), 1)},
             rule="must be a table {order = , min_count = }",
         ),
         None,
@@ -983,6 +999,11 @@ def _check_bins(bins: Table, where: _Where) -> Table:
         )
     span = bins.stop - bins.start
     n_bins = span / bins.width
+    if n_bins > MAX_BINS * (1 + 1e-9):
+        raise where.key("width").value_error(
+            f"must divide stop - start ({_number(span)}) into at most {MAX_BINS} bins "
+            f"(it gives {n_bins:.3g})", bins.width
+        )
     # Bins must tile [start, stop] exactly, so no magnitude range is silently dropped; the
     # tolerance absorbs binary rounding of decimal widths such as 0.1.
     if n_bins < 1 - 1e-9 or abs(n_bins - round(n_bins)) > 1e-9 * max(1.0, n_bins):
@@ -1055,7 +1076,7 @@ def _check_engine(table: Table, where: _Where) -> Table:
 
 
 # --------------------------------------------------------------------------------------------
-# The schema: every section and key of a run file (the user-visible contract)
+# The schema: every section and key of a run file (documented in docs/reference.md)
 # --------------------------------------------------------------------------------------------
 
 SECTIONS: dict[str, Section] = {
@@ -1095,6 +1116,14 @@ SECTIONS: dict[str, Section] = {
                 [99, -99, 99.99],
             ),
             "require_redshift": Key(_boolean(), False),
+            # Plausible magnitudes (AB): finite magnitudes outside are rejected as
+            # `mag_implausible` in the row ledger. The same default as
+            # countscale.catalog.DEFAULT_MAG_RANGE (kept here so that reading a run file does
+            # not import the catalogue readers); a test checks that the two agree.
+            "mag_range": Key(
+                _pair("must be two magnitudes [lo, hi] with lo < hi (the plausible range, AB)"),
+                [-30.0, 40.0],
+            ),
             # 1-sigma redshift errors (photometric redshifts): the luminosity-function fit
             # then convolves its model with them.
             "redshift_error": Key(_column),
@@ -1104,8 +1133,8 @@ SECTIONS: dict[str, Section] = {
     "footprint": Section(
         {
             # Order 16 cells are about 3.2 arcsec across (HEALPix: Gorski et al. 2005, ApJ
-            # 622, 759); 29 is the deepest order of the IVOA MOC standard (v2.0, 2022).
-            "max_order": Key(_integer(0, 29), 16),
+            # 622, 759). The bound is MAX_ORDER (28), not the MOC standard's 29: see there.
+            "max_order": Key(_integer(0, MAX_ORDER), 16),
             "include": Key(_footprint_items(min_len=1), REQUIRED),
             "exclude": Key(_footprint_items(min_len=0), []),
         },
@@ -1122,9 +1151,11 @@ SECTIONS: dict[str, Section] = {
                     {
                         "mag": Key(_column, "mag"),
                         "recovered": Key(_column, "recovered"),
-                        # Used when the injection table has them (per-region completeness).
-                        "ra": Key(_column, "ra"),
-                        "dec": Key(_column, "dec"),
+                        # Optional: without a mapping, columns named "ra" and "dec" are used
+                        # when the table has them (to place injections on the depth map);
+                        # a mapped name must exist.
+                        "ra": Key(_column),
+                        "dec": Key(_column),
                     }
                 ),
                 {},
@@ -1150,6 +1181,9 @@ SECTIONS: dict[str, Section] = {
             ),
             "fit_range": Key(_pair("must be two increasing magnitudes")),
             "reference_mag": Key(_real()),
+            # Parametric-bootstrap redraws behind each fit's goodness-of-fit p-value (0: no
+            # p-value). They are most of a count fit's time; 200 resolve p to about 0.03.
+            "n_bootstrap": Key(_integer(0, 100_000), 200),
         },
         check=_check_counts,
     ),
@@ -1185,7 +1219,7 @@ SECTIONS: dict[str, Section] = {
     "variance": Section(
         {
             "methods": Key(_subset(["jackknife", "analytic"]), ["jackknife", "analytic"]),
-            "regions": Key(_integer(2), 24),
+            "regions": Key(_integer(2, MAX_REGIONS), 24),
             "bias": Key(_real(0.0, lo_open=True), 1.0),
             # A parametric n(z) with this median (Smail et al. 1994, MNRAS 270, 245 form)
             # instead of the luminosity function's or the catalogue's redshifts.
@@ -1538,6 +1572,8 @@ def parse_runfile(text: str, path: str | os.PathLike[str]) -> RunFile:
     label = os.fspath(path)
     if not isinstance(text, str):
         raise InputTypeError(f"{label}: run-file text must be a str; got {type(text).__name__}")
+    # A byte-order mark is not TOML, but some editors write one at the start of UTF-8 files.
+    text = text.removeprefix("\ufeff")
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -1612,7 +1648,8 @@ def load_runfile(path: str | os.PathLike[str]) -> RunFile:
     except OSError as exc:
         raise InputError(f"{label}: cannot read run file ({exc.strerror})") from exc
     try:
-        text = data.decode("utf-8")
+        # "utf-8-sig" drops the byte-order mark some editors put at the start of a UTF-8 file.
+        text = data.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
         raise InputError(
             f"{label}: run file must be UTF-8 text; got byte 0x{data[exc.start]:02x}"

@@ -31,6 +31,7 @@ from hypothesis import strategies as st
 
 from countscale.catalog import (
     CSV_SAMPLE_ROWS,
+    DEFAULT_MAG_RANGE,
     DEFAULT_SENTINELS,
     NOTE_ID_MISSING,
     NOTE_RA_WRAPPED,
@@ -273,7 +274,13 @@ def corrupted_pair(tmp_path, fmt_a=".parquet", fmt_b=".csv"):
     a.loc[15, "DEC"] = 91.0                 # dec and mag bad: dec_out_of_range wins
     a.loc[15, "MAG_R"] = np.nan
     a.loc[16, "Z"] = np.nan                 # missing redshift: kept unless required
-    b.loc[0:2, "OBJID"] = [5, 17, 199]      # duplicates of ids kept in file a
+    a.loc[17, "MAG_R"] = -999.0             # mag_implausible (below -30, not a sentinel)
+    a.loc[18, "MAG_R"] = 1e30               # mag_implausible
+    a.loc[19, "MAG_R"] = 40.5               # mag_implausible
+    a.loc[20, "MAG_R"] = 40.0               # the range's end is plausible: kept
+    a.loc[21, "MAG_R"] = -999.0             # implausible magnitude *and* negative z: mag wins
+    a.loc[21, "Z"] = -1.0
+    b.loc[0:2, "OBJID"] = [5, 16, 199]      # duplicates of ids kept in file a
     b.loc[3, "OBJID"] = 9                   # id 9 was rejected (mag 99) in a: kept here
     b.loc[4, "OBJID"] = 210                 # first sight of 210: b row 10 becomes the duplicate
     b.loc[5, "RA"] = -10.0                  # wrapped, kept
@@ -285,7 +292,7 @@ def corrupted_pair(tmp_path, fmt_a=".parquet", fmt_b=".csv"):
              write(b, tmp_path / f"b{fmt_b}", row_group_size=64)]
     expected = {
         "ra_dec_not_finite": 3, "dec_out_of_range": 3, "ra_out_of_range": 3,
-        "mag_missing": 4 + 2, "redshift_invalid": 1,
+        "mag_missing": 4 + 2, "mag_implausible": 4, "redshift_invalid": 1,
         # b rows 0-2 repeat ids kept from a; b row 10 repeats the id given to b row 4.
         "duplicate_id": 3 + 1,
     }
@@ -396,14 +403,16 @@ def test_tiny_negative_ra_wraps_to_zero_not_360():
 
 CORRUPTIONS = ["ra_nan", "ra_inf", "dec_nan", "dec_95", "dec_m91", "ra_m30", "ra_m180",
                "ra_m200", "ra_400", "ra_360", "mag_99", "mag_m99", "mag_9999", "mag_nan",
-               "mag_inf", "z_neg", "z_nan", "id_missing"]
+               "mag_inf", "mag_m999", "mag_1e30", "mag_40", "mag_m30", "mag_m31", "z_neg",
+               "z_nan", "id_missing"]
 
 
 def apply_corruption(row, code):
     field, _, value = code.partition("_")
     numbers = {"nan": math.nan, "inf": math.inf, "95": 95.0, "m91": -91.0, "m30": -30.0,
                "m180": -180.0, "m200": -200.0, "400": 400.0, "360": 360.0, "99": 99.0,
-               "m99": -99.0, "9999": 99.99, "neg": -0.5}
+               "m99": -99.0, "9999": 99.99, "neg": -0.5, "m999": -999.0, "1e30": 1e30,
+               "40": 40.0, "m31": -31.0}
     if field == "id":
         row["id"] = None
     else:
@@ -430,6 +439,9 @@ def oracle(rows, require_redshift):
             continue
         if not math.isfinite(mag) or mag in DEFAULT_SENTINELS:
             counts["mag_missing"] += 1
+            continue
+        if not DEFAULT_MAG_RANGE[0] <= mag <= DEFAULT_MAG_RANGE[1]:
+            counts["mag_implausible"] += 1
             continue
         if z < 0 or (require_redshift and not math.isfinite(z)):
             counts["redshift_invalid"] += 1
@@ -1050,7 +1062,7 @@ def test_validate_chunk_copy_false_shares_memory_only_when_every_row_is_kept():
         validate_chunk(clean, ValidationRules(), copy="no")
 
 
-def documented_fate(ra, dec, mag, z, sentinels, require_redshift):
+def documented_fate(ra, dec, mag, z, sentinels, require_redshift, mag_range=DEFAULT_MAG_RANGE):
     """Rejection reason (or None) and normalised RA of one row, from the module docstring's
     rules, in plain Python floats (IEEE double, as numpy's float64)."""
     if not (math.isfinite(ra) and math.isfinite(dec)):
@@ -1064,6 +1076,8 @@ def documented_fate(ra, dec, mag, z, sentinels, require_redshift):
         return "ra_out_of_range", ra_norm
     if not math.isfinite(mag) or any(abs(mag - s) <= 1e-6 * abs(s) for s in sentinels):
         return "mag_missing", ra_norm
+    if not mag_range[0] <= mag <= mag_range[1]:
+        return "mag_implausible", ra_norm
     if z is not None and (z < 0.0 or (require_redshift and not math.isfinite(z))):
         return "redshift_invalid", ra_norm
     return None, ra_norm
@@ -1074,13 +1088,19 @@ def _around(x):
 
 
 # Values on and just either side of every boundary of the rules and of the quick test
-# (|mag| < (1 - 3e-6) min |sentinel|), plus the special floats.
+# (|mag| < (1 - 3e-6) min |sentinel|, the plausible range), plus the special floats.
 RA_EDGES = [*_around(0.0), -0.0, *_around(360.0), *_around(-180.0), -1e-14, 400.0, 123.4,
             math.nan, math.inf, -math.inf]
 DEC_EDGES = [*_around(90.0), *_around(-90.0), 0.0, -0.0, 45.0, math.nan, -math.inf]
 MAG_EDGES = [x for s in (99.0, -99.0, 99.99, 30.0) for k in (1.0, 2.0, 3.0, 4.0)
              for x in (*_around(s * (1 - k * 1e-6)), *_around(s * (1 + k * 1e-6)))] + [
-    99.0, -99.0, 99.99, float(np.float32(99.99)), 20.0, 0.0, -0.0, math.nan, math.inf]
+    99.0, -99.0, 99.99, float(np.float32(99.99)), 20.0, 0.0, -0.0, math.nan, math.inf,
+    *_around(DEFAULT_MAG_RANGE[0]), *_around(DEFAULT_MAG_RANGE[1]), *_around(-150.0),
+    *_around(150.0), -999.0, 1e30, -1e30]
+
+# Plausible ranges: the default, and one wide enough that the sentinels' tolerance edges
+# decide alone.
+MAG_RANGES = [DEFAULT_MAG_RANGE, (-150.0, 150.0)]
 Z_EDGES = [*_around(0.0), -0.0, 1.0, math.nan, math.inf, -math.inf]
 
 
@@ -1090,11 +1110,12 @@ SENTINEL_SETS = [DEFAULT_SENTINELS, (30.0,), (), (0.0,), (99.0, 1e-300), (math.i
                  (math.nan, 99.0)]
 
 
+@pytest.mark.parametrize("mag_range", MAG_RANGES)
 @pytest.mark.parametrize("sentinels", SENTINEL_SETS)
 @pytest.mark.parametrize("require_redshift", [False, True])
 @pytest.mark.parametrize("n_clean", [0, 2000])
 def test_every_boundary_value_follows_the_documented_rules(sentinels, require_redshift,
-                                                           n_clean):
+                                                           n_clean, mag_range):
     # Each boundary value of one column, the other columns clean, all in one chunk; with
     # n_clean clean rows too, the rows the quick test does not clear are few and go through
     # the rules on their own (without, most rows are suspect and all take the rules).
@@ -1104,8 +1125,9 @@ def test_every_boundary_value_follows_the_documented_rules(sentinels, require_re
             for v in values] + [clean] * n_clean
     ra, dec, mag, z = (np.array(c, dtype=np.float64) for c in zip(*rows, strict=True))
     chunk = CatalogChunk("mem", 0, ra=ra, dec=dec, mag=mag, redshift=z)
-    rules = ValidationRules(sentinels=sentinels, require_redshift=require_redshift)
-    fates = [documented_fate(*row, sentinels, require_redshift) for row in rows]
+    rules = ValidationRules(sentinels=sentinels, require_redshift=require_redshift,
+                            mag_range=mag_range)
+    fates = [documented_fate(*row, sentinels, require_redshift, mag_range) for row in rows]
     for copy in (True, False):
         valid, rejected, _ = validate_chunk(chunk, rules, copy=copy)
         kept = [i for i, (reason, _) in enumerate(fates) if reason is None]
@@ -1119,16 +1141,17 @@ def test_every_boundary_value_follows_the_documented_rules(sentinels, require_re
 @given(rows=st.lists(st.tuples(st.sampled_from(RA_EDGES), st.sampled_from(DEC_EDGES),
                                st.sampled_from(MAG_EDGES), st.sampled_from(Z_EDGES)),
                      min_size=1, max_size=60).map(lambda r: r + [(1.0, 2.0, 20.0, 0.5)] * 80),
-       sentinels=st.sampled_from(SENTINEL_SETS),
+       sentinels=st.sampled_from(SENTINEL_SETS), mag_range=st.sampled_from(MAG_RANGES),
        require_redshift=st.booleans(), with_z=st.booleans())
 def test_mixed_boundary_rows_follow_the_documented_rules(rows, sentinels, require_redshift,
-                                                         with_z):
+                                                         with_z, mag_range):
     require_redshift = require_redshift and with_z
     ra, dec, mag, z = (np.array(c, dtype=np.float64) for c in zip(*rows, strict=True))
     chunk = CatalogChunk("mem", 0, ra=ra, dec=dec, mag=mag, redshift=z if with_z else None)
-    rules = ValidationRules(sentinels=sentinels, require_redshift=require_redshift)
+    rules = ValidationRules(sentinels=sentinels, require_redshift=require_redshift,
+                            mag_range=mag_range)
     fates = [documented_fate(*row[:3], row[3] if with_z else None, sentinels,
-                             require_redshift) for row in rows]
+                             require_redshift, mag_range) for row in rows]
     expected = dict.fromkeys(REJECTION_REASONS, 0)
     for reason, _ in fates:
         if reason is not None:
@@ -1179,3 +1202,25 @@ def test_seen_ids_float_and_text_ids_keep_first_occurrences(chunks, text):
         ids = np.array(values, dtype=object if text else np.float64)
         np.testing.assert_array_equal(seen.keep_first(ids), np.array(expected, dtype=bool))
     assert len(seen) == len(reference)
+
+
+def test_implausible_magnitudes_are_a_named_rejection_with_a_configurable_range(tmp_path):
+    # -999 and 1e30 are placeholders no sentinel list names; they are not magnitudes of any
+    # object (the default range runs from brighter than the Sun to beyond the deepest images).
+    frame = clean_table(12, rng=21)[["RA", "DEC", "MAG_R"]]
+    frame.loc[[0, 1, 2, 3], "MAG_R"] = [-999.0, 1e30, -30.0, 40.0]
+    path = write(frame, tmp_path / "c.parquet")
+    _, ledger = read_everything(CatalogSource(path, ra="RA", dec="DEC", mag="MAG_R"), 5)
+    assert ledger.rows_rejected["mag_implausible"] == 2   # the range's ends are plausible
+    narrow = CatalogSource(path, ra="RA", dec="DEC", mag="MAG_R", mag_range=(-30.0, 39.0))
+    _, ledger = read_everything(narrow, 5)
+    assert ledger.rows_rejected["mag_implausible"] == 3
+    assert ledger.to_dict()["rows_rejected"]["mag_implausible"] == 3
+    with pytest.raises(InputError, match=r"^`mag_range` must be two finite magnitudes \[lo, hi\] "
+                                         r"with lo < hi; got \[40, -30\]$"):
+        CatalogSource(path, ra="RA", dec="DEC", mag="MAG_R", mag_range=(40.0, -30.0))
+    with pytest.raises(InputTypeError, match=r"^`mag_range` must be two finite magnitudes .*; "
+                                             r"got 'wide'$"):
+        CatalogSource(path, ra="RA", dec="DEC", mag="MAG_R", mag_range="wide")
+    with pytest.raises(InputError, match=r"^`mag_range` must be .*; got \[-30, inf\]$"):
+        ValidationRules(mag_range=(-30.0, math.inf))

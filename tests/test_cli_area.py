@@ -21,19 +21,20 @@ def run(argv, capsys):
 
 def test_area_of_run_file_footprint(tmp_path, capsys):
     holes = tmp_path / "holes.csv"
-    holes.write_text("ra,dec,radius_arcsec\n150.5,2.0,90\n151.2,2.5,30\n")
+    holes.write_text("ra,dec,radius_arcsec\n226.5,10.0,90\n227.2,10.5,30\n")
     runfile = tmp_path / "survey.toml"
     runfile.write_text(
         "[footprint]\nmax_order = 15\n"
-        "include = [{box = {ra = [150, 152], dec = [1, 3]}}]\n"
+        "include = [{box = {ra = [226, 228], dec = [9, 11]}}]\n"
         'exclude = [{circles = "holes.csv"}]\n'
     )
     code, out, err = run(["area", str(runfile), "--json"], capsys)
     assert code == 0, err
     result = json.loads(out)
     assert set(result) == AREA_KEYS
-    # (180/pi) * 2 * (sin 3 - sin 1) deg^2 minus two discs pi r^2 (closed forms, REFERENCES §1)
-    box = (180 / np.pi) * 2 * (np.sin(np.radians(3)) - np.sin(np.radians(1)))
+    # (180/pi) * 2 * (sin 11 - sin 9) deg^2 minus two discs pi r^2 (closed forms: the area of
+    # an RA/Dec box on the sphere, and of a small cap)
+    box = (180 / np.pi) * 2 * (np.sin(np.radians(11)) - np.sin(np.radians(9)))
     discs = np.pi * (90**2 + 30**2) / 3600**2
     assert result["area_deg2"] == pytest.approx(box - discs, rel=1e-7)
     assert result["max_order"] == 15
@@ -111,7 +112,8 @@ def test_horizon_json(capsys):
     code, out, _ = run(["horizon", "--json"], capsys)
     assert code == 0
     result = json.loads(out)
-    # Planck 2018: comoving particle horizon 14.17 Gpc = 46.2 Gly (REFERENCES.md §2, computed)
+    # Planck 2018: comoving particle horizon 14.17 Gpc = 46.2 Gly (the integral of c dz / H(z)
+    # for astropy's Planck18, computed with mpmath.quad)
     assert result["radius_mpc"] == pytest.approx(14170, rel=3e-3)
     assert result["radius_gly"] == pytest.approx(46.2, rel=3e-3)
     # Age 13.787 Gyr (Planck Collaboration 2020, A&A 641, A6, Table 2)

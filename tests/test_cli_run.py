@@ -114,6 +114,25 @@ class _Terminal(io.StringIO):
         return True
 
 
+def test_counts_stage_shows_progress_on_a_terminal(tmp_path, capsys, monkeypatch):
+    # The count fits' refits (jackknife regions, bootstrap redraws) take the most time of a
+    # run after the tally; they get a bar of their own.
+    runfile, _ = make_survey(tmp_path, footprint=FOOTPRINT + textwrap.dedent("""\
+        [counts]
+        bins = {start = 18, stop = 24, width = 0.5}
+        fit_range = [18, 24]
+        n_bootstrap = 10
+        """))
+    terminal = _Terminal()
+    monkeypatch.setattr(sys, "stderr", terminal)
+    assert main(["run", str(runfile), "--out", str(tmp_path / "a"), "--seed", "1"]) == 0
+    assert re.search(r"counts: .*refits", terminal.getvalue())
+    quiet = _Terminal()
+    monkeypatch.setattr(sys, "stderr", quiet)
+    assert main(["run", str(runfile), "--out", str(tmp_path / "b"), "--quiet"]) == 0
+    assert quiet.getvalue() == ""
+
+
 def test_progress_bar_on_a_terminal_unless_quiet(tmp_path, capsys, monkeypatch):
     runfile, _ = make_survey(tmp_path)
     terminal = _Terminal()
@@ -244,6 +263,15 @@ def test_demo_runs_the_demo_run_file_into_the_default_folder(tmp_path, capsys, m
     code, out, _ = run(["demo", "--out", tmp_path / "elsewhere", "--json"], capsys)
     assert code == 0
     assert json.loads(out)["ledger"]["rows_read"] == len(df)
+    # --seed makes a demo run repeatable, byte for byte.
+    for name in ("s1", "s2"):
+        code, out, _ = run(["demo", "--out", tmp_path / name, "--seed", 11, "--json"], capsys)
+        assert code == 0 and json.loads(out)["run"]["seed"] == 11
+    assert ((tmp_path / "s1" / "results.json").read_text().replace("s1", "s2")
+            == (tmp_path / "s2" / "results.json").read_text())
+    code, _, err = run(["demo", "--seed", -1], capsys)
+    assert code == 2 and err.splitlines() == [
+        "countscale: error: --seed must be a non-negative integer; got -1"]
 
 
 def test_demo_path_is_at_the_repository_root():

@@ -1,6 +1,6 @@
 """Tests for countscale.cosmology.
 
-References (see /work/shared/REFERENCES.md section 2):
+References:
 - Hogg 1999, arXiv:astro-ph/9905116 ("Distance measures in cosmology"): closed forms.
 - Hogg, Baldry, Blanton & Eisenstein 2002, arXiv:astro-ph/0210394: K-correction definition.
 - Planck Collaboration 2020, A&A 641, A6 (astropy's Planck18).
@@ -142,7 +142,8 @@ def test_einstein_de_sitter_closed_forms(eds):
     )
     # Particle horizon = 2 D_H (the z -> infinity limit of the same closed form).
     assert cs.particle_horizon_mpc(eds) == pytest.approx(2 * d_h, rel=1e-11)
-    # Age (2/3) t_H with t_H = 1/H0 = 13.96846 Gyr: 9.31231 Gyr (REFERENCES.md section 2, C).
+    # Age (2/3) t_H with t_H = 1/H0 = 13.96846 Gyr: 9.31231 Gyr (the Einstein-de Sitter age;
+    # closed form, computed by hand).
     assert cs.age_gyr(cosmo=eds) == pytest.approx(9.31231, abs=5e-6)
     t_h = float((1 / (70 * u.km / u.s / u.Mpc)).to_value(u.Gyr))
     # Age at z and lookback time: t(z) = (2/3) t_H (1 + z)^-3/2.
@@ -155,7 +156,8 @@ def test_einstein_de_sitter_closed_forms(eds):
 
 
 def test_flat_lcdm_distance_and_age(lcdm):
-    # D_C(1) = 3303.8288 Mpc (REFERENCES.md section 2, C) and an independent quadrature.
+    # D_C(1) = 3303.8288 Mpc (Hogg 1999, eq. 15, computed with mpmath.quad for H0 = 70,
+    # Om0 = 0.3, no radiation) and an independent quadrature.
     assert cs.comoving_distance_mpc(1.0, lcdm) == pytest.approx(3303.8288, abs=5e-5)
     quad, _ = integrate.quad(lambda z: 1 / math.sqrt(0.3 * (1 + z) ** 3 + 0.7), 0, 1, epsrel=1e-13)
     assert cs.comoving_distance_mpc(1.0, lcdm) == pytest.approx(C_KM_S / 70 * quad, rel=1e-10)
@@ -273,7 +275,8 @@ def test_shell_volume_errors():
 # The observable universe
 # ---------------------------------------------------------------------------------------------
 def test_particle_horizon_planck18_published_figure():
-    # 14.17 Gpc = 46.2 Gly (REFERENCES.md section 2, C); tolerance ~0.3 %.
+    # The integral of c dz / H(z) from 0 to infinity for astropy's Planck18 (with radiation),
+    # computed with mpmath.quad: 14 165 Mpc = 46.2 Gly; tolerance ~0.3 %.
     h = cs.horizon()
     assert h.radius_mpc == pytest.approx(14170.0, rel=3e-3)
     assert h.radius_gly == pytest.approx(46.2, rel=3e-3)
@@ -533,7 +536,7 @@ def test_kcorrection_errors():
 def test_phi_star_from_h_units_keeps_counts_physical():
     # A count in a fixed region is h-independent: phi* [h^3 Mpc^-3] x V [h^-3 Mpc^3] equals
     # phi* [Mpc^-3] x V [Mpc^3]. V [h^-3 Mpc^3] is astropy's volume for H0 = 100 (same Om0).
-    phi_h3 = 1.49e-2  # Blanton et al. 2003, ApJ 592, 819 (REFERENCES.md section 3)
+    phi_h3 = 1.49e-2  # Blanton et al. 2003, ApJ 592, 819 (^0.1r phi*, h^3 Mpc^-3)
     v_h = cs.comoving_volume_mpc3(0.02, 0.1, cosmo=FlatLambdaCDM(H0=100, Om0=0.3))
     v = cs.comoving_volume_mpc3(0.02, 0.1, cosmo=FlatLambdaCDM(H0=70, Om0=0.3))
     assert cs.phi_star_from_h_units(phi_h3, 0.7) * v == pytest.approx(phi_h3 * v_h, rel=1e-10)

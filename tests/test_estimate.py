@@ -1,7 +1,8 @@
 """Tests for countscale.estimate: the Estimate result, its JSON form, budgets and formatting.
 
-References: the JSON keys are DESIGN.md section 4; percentiles of normal and lognormal
-distributions come from scipy.stats (reference library, independent of our code).
+References: the JSON keys are the Estimate contract of docs/reference.md; percentiles of
+normal and lognormal distributions come from scipy.stats (reference library, independent of
+our code).
 """
 
 import dataclasses
@@ -23,7 +24,7 @@ from countscale.estimate import (
     variance_budget,
 )
 
-JSON_KEYS = {"median", "interval_68", "interval_95", "unit", "budget"}  # DESIGN.md section 4
+JSON_KEYS = {"median", "interval_68", "interval_95", "unit", "budget"}  # docs/reference.md
 
 
 # ------------------------------------------------------------------------- JSON contract
@@ -269,6 +270,7 @@ def test_estimate_is_immutable_and_does_not_alias_caller_draws():
 def test_scale_multiplies_everything_and_sets_the_unit():
     draws = np.random.default_rng(3).lognormal(0.0, 0.2, 500)
     est = Estimate.from_draws(draws, "deg^-2", budget={"poisson": 1.0})
+    # Any positive factor; this one is the whole sky in deg^2, 4 pi (180/pi)^2 = 41252.96.
     total = est.scale(41252.96, "galaxies")
     assert total.unit == "galaxies"
     assert total.median == pytest.approx(est.median * 41252.96, rel=1e-14)

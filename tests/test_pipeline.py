@@ -1,7 +1,7 @@
 """Tests for countscale.pipeline (run_survey) and countscale.report (the report folder).
 
 Outside references used here:
-- closed-form sky geometry (REFERENCES.md §1): a point is in the run file's RA/Dec box minus a
+- closed-form sky geometry: a point is in the run file's RA/Dec box minus a
   cap when its RA/Dec are within the box and its great-circle distance from the cap's centre
   (astropy.coordinates.SkyCoord.separation) exceeds the radius;
 - numpy.histogram for the counts per magnitude bin;
@@ -122,7 +122,7 @@ def test_run_writes_results_with_ledger_footprint_and_counts(tmp_path):
     assert sum(regions["area_deg2"]) == pytest.approx(data["footprint"]["area_deg2"], rel=1e-12)
     assert data["footprint"]["area_deg2"] == pytest.approx(result.tally.area_deg2)
     assert data["run"] == {"runfile": str(runfile.resolve()), "engine": "local", "seed": 5,
-                           "stages": ["tally"], "sections_not_run": []}
+                           "stages": ["tally"], "sections_not_run": [], "warnings": []}
     assert data["survey"] == {"name": "Fictional test field"}
     markdown = (out / "report.md").read_text()
     assert "## Row ledger" in markdown and f"| in footprint | {inside.sum():,d} |" in markdown
@@ -139,9 +139,11 @@ def test_counts_bins_and_variance_regions_from_the_run_file(tmp_path):
         """)
     runfile, _df = make_survey(tmp_path, extra=extra)
     # The catalogue is unclustered: the jackknife finds no clustering excess, and the
-    # variance stage says so beside the analytic value.
-    with pytest.warns(UserWarning, match="the jackknife finds no clustering excess"):
-        result = run_survey(runfile, out_dir=tmp_path / "out", seed=1, progress=False)
+    # variance stage says so beside the analytic value (a warning the run keeps in its
+    # results and report, one line).
+    result = run_survey(runfile, out_dir=tmp_path / "out", seed=1, progress=False)
+    assert any(line.startswith("variance: ") and "the jackknife finds no clustering excess"
+               in line for line in result.results["run"]["warnings"])
     tally_part = result.results["tally"]
     np.testing.assert_allclose(tally_part["mag_bins"]["edges"], 18.0 + 0.5 * np.arange(13))
     assert tally_part["mag_bins"]["grid"] == "given"
@@ -306,7 +308,8 @@ def test_missing_sections_and_bad_arguments(tmp_path):
         with pytest.raises(error, match=message):
             run_survey(runfile, **kwargs)
     (tmp_path / "afile").write_text("x")
-    with pytest.raises(InputError, match=r"`out_dir` '.*afile' exists and is not a folder"):
+    with pytest.raises(InputError,
+                       match=r"`out_dir` \(--out\) '.*afile' exists and is not a folder"):
         run_survey(runfile, out_dir=tmp_path / "afile")
     with pytest.raises(InputTypeError, match=r"`runfile` must be a path or a RunFile; got int"):
         run_survey(7)
@@ -320,9 +323,12 @@ max_order = 8
 include = [ {cap = {ra = 155, dec = 5, radius = 0.3}} ]
 """
     runfile, _ = make_survey(tmp_path, n=20_000, footprint=tiny)
-    with pytest.warns(UserWarning, match="footprint too small for 24 regions"):
-        result = run_survey(runfile, out_dir=tmp_path / "a", seed=1, progress=False)
+    # The warning goes into the results (and the report), one line, not onto stderr.
+    result = run_survey(runfile, out_dir=tmp_path / "a", seed=1, progress=False)
     assert result.results["tally"]["regions"]["n_regions"] == 1
+    [line] = result.results["run"]["warnings"]
+    assert line.startswith("tally: footprint too small for 24 regions")
+    assert "footprint too small for 24 regions" in (tmp_path / "a" / "report.md").read_text()
     runfile, _ = make_survey(tmp_path, n=20_000, footprint=tiny,
                              extra="\n[variance]\nregions = 24\n")
     with pytest.raises(InputError, match=r"survey.toml: \[variance\] 'regions': cannot split"):
@@ -364,8 +370,9 @@ def test_variance_stage_uses_a_median_redshift_when_given(tmp_path):
     extra = "\n[counts]\nbins = {start = 18.0, stop = 24.0, width = 0.5}\n" \
             "\n[variance]\nregions = 6\nredshift_median = 0.7\nbias = 1.5\nmag_limit = 23.0\n"
     runfile, _ = make_survey(tmp_path, extra=extra)
-    with pytest.warns(UserWarning, match="jackknife finds no clustering excess"):
-        result = run_survey(runfile, out_dir=tmp_path / "out", seed=2, progress=False)
+    result = run_survey(runfile, out_dir=tmp_path / "out", seed=2, progress=False)
+    assert any("jackknife finds no clustering excess" in line
+               for line in result.results["run"]["warnings"])
     analytic = result.results["variance"]["analytic"]
     assert analytic["nz"]["median"] == pytest.approx(0.7, rel=2e-3)
     assert analytic["bias"] == 1.5

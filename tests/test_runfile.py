@@ -1,7 +1,7 @@
 """Tests for countscale.runfile: the run-file schema, its defaults, and its error messages.
 
-The contract checked here is the run-file section of DESIGN.md (section 4, "Run file (TOML) -
-keys") and the message rule of the briefing (file, section/key path, rule, value, one line).
+The contract checked here is the run file as docs/reference.md describes it (sections, keys,
+defaults) and the project's message rule (file, section/key path, rule, value, one line).
 TOML parsing itself is Python's tomllib (TOML 1.0.0); cosmology names are checked against
 astropy's own list of realisations (astropy.cosmology.realizations.available).
 """
@@ -18,6 +18,7 @@ from pathlib import Path
 
 import pytest
 
+from countscale.catalog import DEFAULT_MAG_RANGE
 from countscale.errors import InputError, InputTypeError
 from countscale.runfile import (
     ITEM_KINDS,
@@ -50,6 +51,7 @@ FULL = textwrap.dedent(
     population = "galaxies"
     sentinels = [99, -99.0, -1]
     require_redshift = true
+    mag_range = [-5.0, 35.0]
     redshift_error = "Z_PHOT_ERR"
 
     [footprint]
@@ -57,7 +59,7 @@ FULL = textwrap.dedent(
     include = [
       {map = "masks/cover.fits", threshold = 0.8, nest = true},
       {moc = "masks/cover_moc.fits"},
-      {cap = {ra = 150.0, dec = 2.2, radius = 1.5}},
+      {cap = {ra = 118.0, dec = 17.5, radius = 1.5}},
       {box = {ra = [350, 10], dec = [-5, 5]}},
       {polygon = [[10, 0], [20, 0], [20, 10], [10, 10], [10, 0]]},
       {occupancy = {order = 10, min_count = 3}},
@@ -80,6 +82,7 @@ FULL = textwrap.dedent(
     model = "broken_power_law"
     fit_range = [19.0, 25.5]
     reference_mag = 22.0
+    n_bootstrap = 50
 
     [luminosity_function]
     methods = ["sty", "vmax"]
@@ -208,6 +211,7 @@ def test_full_runfile_round_trip(full_file: Path) -> None:
     assert (cat.id, cat.weight, cat.population) == ("SRC_ID", "W", "galaxies")
     assert cat.sentinels == (99.0, -99.0, -1.0)
     assert cat.require_redshift is True
+    assert cat.mag_range == (-5.0, 35.0)
 
     fp = rf.footprint
     assert fp.max_order == 14
@@ -222,7 +226,7 @@ def test_full_runfile_round_trip(full_file: Path) -> None:
     m, moc, cap, box, polygon, occupancy = fp.include
     assert m.params == {"path": base / "masks" / "cover.fits", "threshold": 0.8, "nest": True}
     assert moc.params == {"path": base / "masks" / "cover_moc.fits"}
-    assert cap.params == {"ra_deg": 150.0, "dec_deg": 2.2, "radius_deg": 1.5}
+    assert cap.params == {"ra_deg": 118.0, "dec_deg": 17.5, "radius_deg": 1.5}
     # a > b is kept as written: the box wraps through RA = 0.
     assert box.params == {"ra_deg": (350.0, 10.0), "dec_deg": (-5.0, 5.0)}
     # The closing vertex (equal to the first) is dropped.
@@ -257,6 +261,7 @@ def test_full_runfile_round_trip(full_file: Path) -> None:
     assert counts.model == "broken_power_law"
     assert counts.fit_range == (19.0, 25.5)
     assert counts.reference_mag == 22.0
+    assert counts.n_bootstrap == 50
 
     lf = rf.luminosity_function
     assert lf.methods == ("sty", "vmax")
@@ -329,13 +334,14 @@ def test_parse_and_load_agree(full_file: Path) -> None:
 
 
 def test_defaults_are_filled(tmp_path: Path) -> None:
-    # Defaults from DESIGN.md section 4 and the run-file brief.
+    # The defaults documented in docs/reference.md.
     rf = parse_runfile(MINIMAL, tmp_path / "survey.toml")
     assert rf.present == {"catalog", "footprint"}
     cat = rf.catalog
     assert cat.population == "galaxies"
     assert cat.sentinels == (99.0, -99.0, 99.99)
     assert cat.require_redshift is False
+    assert cat.mag_range == DEFAULT_MAG_RANGE == (-30.0, 40.0)
     assert (cat.redshift, cat.mag_error, cat.stellar_mass, cat.id, cat.weight) == (None,) * 5
     assert rf.footprint.max_order == 16
     assert rf.footprint.exclude == ()
@@ -374,15 +380,17 @@ def test_defaults_inside_sections_and_items(tmp_path: Path) -> None:
     assert rf.completeness.model == "logistic"
     assert rf.completeness.plateau is False
     assert rf.completeness.depth_map is None
+    # Positions are optional: unmapped, columns named "ra"/"dec" are used when present.
     assert rf.completeness.columns == {
         "mag": "mag",
         "recovered": "recovered",
-        "ra": "ra",
-        "dec": "dec",
+        "ra": None,
+        "dec": None,
     }
     assert rf.counts.model == "power_law"
     assert rf.counts.bins == {"start": 18.0, "stop": 26.0, "width": 0.5}
     assert (rf.counts.fit_range, rf.counts.reference_mag) == (None, None)
+    assert rf.counts.n_bootstrap == 200
     lf = rf.luminosity_function
     assert lf.methods == ("vmax", "sty", "swml")
     assert lf.kcorrection is None
@@ -503,8 +511,8 @@ def test_pickle_and_json(full_file: Path) -> None:
     plain = json.loads(json.dumps(rf.to_dict()))
     assert plain["sections"]["footprint"]["include"][2] == {
         "kind": "cap",
-        "ra_deg": 150.0,
-        "dec_deg": 2.2,
+        "ra_deg": 118.0,
+        "dec_deg": 17.5,
         "radius_deg": 1.5,
     }
     assert plain["sections"]["catalog"]["paths"][1] == "/abs/extra.fits"
@@ -688,13 +696,14 @@ BAD = [
         "max-order-type",
         footprint(CAP, extra='max_order = "16"\n'),
         InputTypeError,
-        exact(f"{F}: [footprint] 'max_order' must be an integer in [0, 29]; got \"16\""),
+        exact(f"{F}: [footprint] 'max_order' must be an integer in [0, 28]; got \"16\""),
     ),
     (
+        # Order 29 is the MOC standard's deepest, but the footprint cannot be built there.
         "max-order-range",
-        footprint(CAP, extra="max_order = 30\n"),
+        footprint(CAP, extra="max_order = 29\n"),
         InputError,
-        exact(f"{F}: [footprint] 'max_order' must be an integer in [0, 29]; got 30"),
+        exact(f"{F}: [footprint] 'max_order' must be an integer in [0, 28]; got 29"),
     ),
     (
         "cap-radius-negative",
@@ -915,6 +924,24 @@ BAD = [
         r" got \[99, nan\]$",
     ),
     (
+        "mag-range-order",
+        MINIMAL.replace('mag = "mag"', 'mag = "mag"\nmag_range = [40, -30]'),
+        InputError,
+        exact(
+            f"{F}: [catalog] 'mag_range' must be two magnitudes [lo, hi] with lo < hi (the"
+            " plausible range, AB); got [40, -30]"
+        ),
+    ),
+    (
+        "mag-range-type",
+        MINIMAL.replace('mag = "mag"', 'mag = "mag"\nmag_range = 40'),
+        InputTypeError,
+        exact(
+            f"{F}: [catalog] 'mag_range' must be two magnitudes [lo, hi] with lo < hi (the"
+            " plausible range, AB); got 40"
+        ),
+    ),
+    (
         "require-redshift-type",
         MINIMAL.replace('mag = "mag"', 'mag = "mag"\nrequire_redshift = 1'),
         InputTypeError,
@@ -991,6 +1018,21 @@ BAD = [
         "[counts]\nbins = {start = 18, stop = 26, width = 0}\n",
         InputError,
         exact(f"{F}: [counts] 'bins.width' must be a number > 0; got 0"),
+    ),
+    (
+        "counts-n-bootstrap-negative",
+        "[counts]\nbins = {start = 18, stop = 26, width = 0.5}\nn_bootstrap = -1\n",
+        InputError,
+        exact(f"{F}: [counts] 'n_bootstrap' must be an integer in [0, 100000]; got -1"),
+    ),
+    (
+        "bins-too-many",
+        "[counts]\nbins = {start = 14, stop = 24, width = 5e-10}\n",
+        InputError,
+        exact(
+            f"{F}: [counts] 'bins.width' must divide stop - start (10) into at most 1000 bins"
+            " (it gives 2e+10); got 5e-10"
+        ),
     ),
     (
         "bins-width-not-dividing",
@@ -1144,13 +1186,19 @@ BAD = [
         "variance-regions-range",
         "[variance]\nregions = 1\n",
         InputError,
-        exact(f"{F}: [variance] 'regions' must be an integer >= 2; got 1"),
+        exact(f"{F}: [variance] 'regions' must be an integer in [2, 1000]; got 1"),
+    ),
+    (
+        "variance-regions-too-many",
+        "[variance]\nregions = 100000\n",
+        InputError,
+        exact(f"{F}: [variance] 'regions' must be an integer in [2, 1000]; got 100000"),
     ),
     (
         "variance-regions-bool",
         "[variance]\nregions = true\n",
         InputTypeError,
-        exact(f"{F}: [variance] 'regions' must be an integer >= 2; got true"),
+        exact(f"{F}: [variance] 'regions' must be an integer in [2, 1000]; got true"),
     ),
     (
         "variance-bias-zero",
@@ -1604,6 +1652,11 @@ def test_load_errors(tmp_path: Path) -> None:
         load_runfile(latin1)
     with pytest.raises(InputTypeError, match=r"^`path` must be a str or path-like; got int$"):
         load_runfile(3)  # type: ignore[arg-type]
+    # A UTF-8 byte-order mark (written by some editors) is not an error.
+    bom = tmp_path / "bom.toml"
+    bom.write_bytes(b"\xef\xbb\xbf" + MINIMAL.encode("utf-8"))
+    assert load_runfile(bom).catalog.mag == "mag"
+    assert parse_runfile("\ufeff" + MINIMAL, "x.toml").catalog.mag == "mag"
     with pytest.raises(InputTypeError, match=r"^x\.toml: run-file text must be a str; got bytes$"):
         parse_runfile(b"[survey]", "x.toml")  # type: ignore[arg-type]
 

@@ -1,18 +1,22 @@
 """Completeness and counts stages of a run: helpers, figures and recovery on the demo survey.
 
 Outside references: Clopper & Pearson intervals via scipy.stats.binomtest; the effective area
-against `completeness.effective_area_deg2` at the depth map's own pixels; the demo's truth
-(demo_data/truth.json, written by the mock generator, never read by the pipeline); faint
-galaxy count slopes 0.33-0.50 (McCracken et al. 2001, A&A; REFERENCES.md §6).
+of a footprint of whole HEALPix pixels as the sum of pixel area (healpy; Górski et al. 2005,
+ApJ 622, 759) times the closed-form logistic at each pixel's depth; the demo's truth
+(demo_data/truth.json, written by the mock generator, never read by the pipeline); the
+published faint-galaxy count slopes (tests/published.py); the Euclidean slope 0.6 (textbook).
+Checks of one part of the code against another are labelled self-consistency.
 """
 
 import json
+import math
 from pathlib import Path
 
 import healpy as hp
 import numpy as np
 import pytest
-from scipy import stats
+from published import FAINT_GALAXY_SLOPE_B_TO_I
+from scipy import special, stats
 
 from countscale import completeness as cm
 from countscale import counts as ct
@@ -51,21 +55,30 @@ def test_completeness_band_covers_the_true_curve():
 
 
 def test_region_effective_areas_add_up_to_the_depth_map_integral(tmp_path):
-    footprint = Footprint.box((150, 154), (0, 3), max_order=12)
+    # A footprint of whole nside-32 pixels, each with its own m50: the effective area is then
+    # sum_p Omega_p / (1 + exp((m - m50_p) / w)), with Omega_p = pi / (3 nside^2) sr from
+    # healpy (Górski et al. 2005, ApJ 622, 759) and the logistic in closed form.
     nside = 32
+    pixels = hp.query_disc(nside, hp.ang2vec(210.0, 35.0, lonlat=True), np.radians(3.0))
+    mask = np.zeros(hp.nside2npix(nside))
+    mask[pixels] = 1.0
+    footprint = Footprint.from_healpix(mask)
     m50 = np.full(hp.nside2npix(nside), hp.UNSEEN)
-    cover = footprint.to_healpix(nside) > 0
-    m50[cover] = 22.5 + np.linspace(0, 0.6, cover.sum())
+    m50[pixels] = 22.5 + np.linspace(0, 0.6, pixels.size)
     hp.write_map(tmp_path / "depth.fits", m50)
-    shape = cm.LogisticCompleteness(22.8, 0.2)
+    width = 0.2
+    shape = cm.LogisticCompleteness(22.8, width)
     depth = cm.DepthMap.from_fits(tmp_path / "depth.fits", shape=shape)
     regions = footprint.split(6)
     per_region, total = cm.region_effective_areas(footprint, regions, shape, depth)
     m = np.linspace(21, 24.5, 30)
-    reference = cm.effective_area_deg2(m, footprint, depth)
+    pixel_deg2 = hp.nside2pixarea(nside, degrees=True)
+    reference = (pixel_deg2 * special.expit(-(m[:, None] - m50[pixels][None, :]) / width)
+                 ).sum(axis=1)
     assert np.allclose(total(m), reference, rtol=1e-9, atol=1e-12)
+    # Self-consistency: the regions add up to the whole, and each region's bright limit
+    # (completeness 1) is its area.
     assert np.allclose(sum(f(m) for f in per_region), total(m), rtol=1e-12)
-    # Bright limit: every region's area (completeness 1).
     assert np.allclose([f(10.0) for f in per_region], regions.area_deg2, rtol=1e-9)
 
 
@@ -79,6 +92,31 @@ def test_scatter_relation_recovers_a_sky_limited_law():
     assert relation(m) == pytest.approx(0.2 * 10 ** (0.4 * (m - 23.0)), rel=0.06)
     with pytest.raises(ct.InputError, match=r"`mag_error` has 3 usable values"):
         ct.scatter_from_errors([1.0, 2.0, 3.0, 4.0], [0.1, 0.1, 0.1, -1.0])
+
+
+def test_scatter_relation_is_robust_to_wild_rows():
+    # The input law (sky-limited errors, sigma = 0.2 x 10^(0.4 (m - 23))) is the truth; a few
+    # wild rows must not move the relation away from it.
+    rng = np.random.default_rng(5)
+    mag = rng.uniform(18, 24, 50_000)
+    error = 0.2 * 10 ** (0.4 * (mag - 23.0)) * rng.lognormal(0, 0.05, mag.size)
+    # 20 rows at 1e30 with error 0.8: an integer bin number overflowed for them, and a
+    # running maximum carried their 0.8 to every magnitude. 25 rows at 15 with error 0.8: a
+    # sparse bright bin with wild errors, pooled with its crowded neighbours.
+    wild_mag = np.r_[np.full(20, 1e30), np.full(25, 15.0)]
+    relation = ct.scatter_from_errors(np.r_[mag, wild_mag], np.r_[error, np.full(45, 0.8)])
+    m = np.array([19.0, 21.0, 23.0])
+    assert relation(m) == pytest.approx(0.2 * 10 ** (0.4 * (m - 23.0)), rel=0.06)
+    assert np.all(np.diff(relation.sigma_mag) >= 0)
+    # Placeholder magnitudes (5 % of the rows at -999): the pipeline keeps to the magnitudes
+    # near its bins, and the relation is again the law.
+    placeholder = np.r_[mag, np.full(2500, -999.0)]
+    relation = ct.scatter_from_errors(placeholder, np.r_[error, np.full(2500, 0.8)],
+                                      mag_range=(17.0, 25.0))
+    assert relation(m) == pytest.approx(0.2 * 10 ** (0.4 * (m - 23.0)), rel=0.06)
+    with pytest.raises(ct.InputError, match=r"^`mag_error` has 0 usable values \(finite, > 0, "
+                                            r"at magnitudes in \[30, 31\]\); at least 20"):
+        ct.scatter_from_errors(mag, error, mag_range=(30.0, 31.0))
 
 
 @pytest.fixture(scope="module")
@@ -101,10 +139,11 @@ def test_demo_recovers_its_truth(demo_run):
     for name, true in (("m50", reference), ("width", truth["measurement"]["width"])):
         est = comp[name]
         sigma = 0.5 * (est["interval_68"][1] - est["interval_68"][0])
-        assert abs(est["median"] - true) < 2.5 * sigma, name
+        assert abs(est["median"] - true) < 3 * sigma, name
     counts = results["counts"]
     slope = counts["fit"]["slope"]["median"]
-    assert 0.33 <= slope <= 0.50  # McCracken et al. 2001 faint-galaxy range (REFERENCES §6)
+    # An r-band slope between the published B and I faint-galaxy slopes (tests/published.py).
+    assert FAINT_GALAXY_SLOPE_B_TO_I[0] <= slope <= FAINT_GALAXY_SLOPE_B_TO_I[1]
     # N(< faint end of the fit range) over the footprint against the galaxies actually drawn
     # there (true magnitudes), interpolated in log N between the truth's magnitude limits.
     integral = counts["integral_counts"]
@@ -134,6 +173,77 @@ def test_demo_report_has_sections_and_figures(demo_run):
         assert set(block) == {"median", "interval_68", "interval_95", "unit", "budget"}
         if block["budget"]:
             assert sum(block["budget"].values()) == pytest.approx(1.0, abs=0.01)
+
+
+def test_a_plain_injection_table_recovers_the_mock_completeness_and_slope(tmp_path):
+    # The most common injection table holds only `mag` and `recovered`. A mock whose truth is
+    # known: stars of one class uniform in static Euclidean space (infinite scale height),
+    # whose counts have slope d log10 N / dm = 0.6 exactly (textbook, from N(>S) ~ S^-3/2),
+    # detected by a logistic of m50 = 21.5, width 0.2, the same in every tile; sky-limited
+    # errors. The run fits the plain table and applies the (uniform) depth map without
+    # moving injections, and says so.
+    from countscale.mock import DiskStars, Injections, Measurement, MockSpec, make_mock
+    from countscale.pipeline import run_survey
+
+    footprint = Footprint.box((212.0, 215.0), (28.0, 31.0), max_order=12)
+    spec = MockSpec(
+        stars=DiskStars(abs_mag=(4.0,), density_pc3=(2e-6,), scale_height_pc=math.inf),
+        measurement=Measurement(m50=21.5, width=0.2, depth_nside=32),
+        injections=Injections(n=4000, mag_range=(19.0, 24.0)),
+        mag_limits=(21.0,),
+    )
+    mock = make_mock(spec, rng=1, footprint=footprint)
+    catalogue = mock.catalogue
+    catalogue[["id", "ra", "dec", "mag", "mag_err"]].to_parquet(tmp_path / "cat.parquet")
+    mock.injections[["mag", "recovered"]].to_csv(tmp_path / "injections.csv", index=False)
+    depth = np.where(np.isnan(mock.depth.m50_mag), hp.UNSEEN, mock.depth.m50_mag)
+    hp.write_map(tmp_path / "depth.fits", depth, dtype=np.float64)
+    (tmp_path / "survey.toml").write_text("""\
+[survey]
+name = "Plain injection table (fictional)"
+[catalog]
+paths = ["cat.parquet"]
+ra = "ra"
+dec = "dec"
+mag = "mag"
+mag_error = "mag_err"
+id = "id"
+[footprint]
+max_order = 12
+include = [{box = {ra = [212.0, 215.0], dec = [28.0, 31.0]}}]
+[completeness]
+injections = "injections.csv"
+depth_map = "depth.fits"
+[counts]
+bins = {start = 15.0, stop = 23.0, width = 0.25}
+fit_range = [16.0, 21.0]
+reference_mag = 19.0
+n_bootstrap = 20
+[output]
+formats = ["json", "markdown"]
+""")
+    result = run_survey(tmp_path / "survey.toml", out_dir=tmp_path / "out", seed=3,
+                        progress=False)
+    comp = result.results["completeness"]
+    assert comp["positions"] is False
+    assert comp["n_injections_fitted"] == 4000
+    assert comp["depth_map"]["shifted_injections"] is False
+    assert any("no positions" in note for note in comp["notes"])
+    assert "no positions" in (tmp_path / "out" / "report.md").read_text()
+    for name, true in (("m50", 21.5), ("width", 0.2)):
+        est = comp[name]
+        sigma = 0.5 * (est["interval_68"][1] - est["interval_68"][0])
+        assert abs(est["median"] - true) < 3 * sigma, (name, est)
+    # The run file's reference magnitude and bootstrap size are used.
+    assert result.results["counts"]["fit"]["reference_mag"] == 19.0
+    assert result.results["counts"]["fit"]["n_bootstrap"] == 20
+    slope = result.results["counts"]["fit"]["slope"]
+    sigma = 0.5 * (slope["interval_68"][1] - slope["interval_68"][0])
+    assert abs(slope["median"] - 0.6) < 3 * sigma, slope
+    assert sigma < 0.02  # a real test of the slope, not a wide interval
+    # N(<21) over the footprint against the stars drawn there (true magnitudes).
+    lo, hi = result.results["counts"]["integral_counts"]["total"]["interval_95"]
+    assert lo <= mock.truth.n_true_footprint["stars"][0] <= hi
 
 
 # --------------------------------------------------------------------------------------------

@@ -3,13 +3,16 @@
 Outside references used here:
 - closed-form sky geometry: a point is in an RA/Dec box when its RA and Dec are within the
   box's ranges; the box's area is (pi/180) dRA (sin dec_hi - sin dec_lo) sr (standard
-  spherical geometry, REFERENCES.md §1);
-- healpy (Górski et al. 2005, ApJ 622, 759): ``ang2pix`` NEST pixels for region membership, and
-  the NEST hierarchy (a cell's parent is its index shifted right by two bits per order);
+  spherical geometry);
+- healpy (Górski et al. 2005, ApJ 622, 759): ``ang2pix`` NEST pixels at the regions' order for
+  region membership (which also checks the tally's use of the NEST hierarchy, a cell's parent
+  being its index shifted right by two bits per order);
 - numpy ``searchsorted`` on the bin edges as the definition of half-open bins, and
   ``numpy.histogram``;
-- the footprint's public API (``Footprint.contains``, ``weight_at``) as the definition of
-  "inside", which the tally's shortcut table must reproduce exactly;
+- self-consistency, labelled as such: the footprint's public API (``Footprint.contains``,
+  ``weight_at``) as the definition of "inside", which the tally's shortcut table must
+  reproduce exactly (the footprint itself is tested against closed forms in
+  test_footprint.py);
 - an independent row-by-row oracle (a plain Python loop written from the documented rules of
   countscale.catalog) for the ledger with duplicate ids across files;
 - counts by construction: every corruption is injected a known number of times.
@@ -180,17 +183,6 @@ def test_footprint_summary_and_area_are_the_footprints_own(tmp_path, threads):
     assert result.area_uncertainty_deg2 == fp.area_uncertainty_deg2 > 0
 
 
-def test_nest_parent_is_a_two_bit_shift_per_order():
-    # The tally takes regions and the shortcut table from one pixel per source; healpy's NEST
-    # scheme (Górski et al. 2005, §4) makes a cell's parent its index >> 2 per order.
-    rng = np.random.default_rng(3)
-    ra, dec = rng.uniform(0, 360, 200_000), np.degrees(np.arcsin(rng.uniform(-1, 1, 200_000)))
-    fine = hp.ang2pix(2**16, ra, dec, nest=True, lonlat=True)
-    for order in (0, 3, 7, 10, 13):
-        coarse = hp.ang2pix(2**order, ra, dec, nest=True, lonlat=True)
-        np.testing.assert_array_equal(coarse, fine >> (2 * (16 - order)))
-
-
 def _footprints():
     holes = Footprint.circles([152.0, 155.5, 158.0], [2.0, 5.0, 8.5], [900.0, 1500.0, 400.0],
                               max_order=13)
@@ -212,6 +204,8 @@ def _footprints():
 
 @pytest.mark.parametrize("name", list(_footprints()))
 def test_inside_and_coverage_equal_the_footprint_api(tmp_path, name):
+    # Self-consistency: the tally's shortcut table must give exactly the footprint's own
+    # answers (contains, weight_at, Regions.label), whatever the footprint's kind.
     fp = _footprints()[name]
     rng = np.random.default_rng(11)
     df = frame(30_000, rng, ra=(146.0, 164.0), dec=(-4.0, 14.0))
@@ -324,12 +318,15 @@ def corrupted(tmp_path):
     df.loc[50:59, "RA"] = 400.0                  # 10 ra_out_of_range
     df.loc[60:99, "MAG"] = 99.0                  # 40 mag_missing (sentinel)
     df.loc[100:104, "Z"] = -0.5                  # 5 redshift_invalid
+    df.loc[110:117, "MAG"] = -999.0              # 8 mag_implausible
+    df.loc[118:119, "MAG"] = 1e30                # 2 mag_implausible
     df.loc[200:224, "OBJID"] = df.loc[300:324, "OBJID"].to_numpy()  # 25 duplicate_id later
     df.loc[400:414, "RA"] = -10.0                # 15 wrapped to RA 350 and kept
     a = write(df.iloc[:3500], tmp_path / "a.parquet", row_group_size=1000)
     b = write(df.iloc[3500:], tmp_path / "b.fits")
     expected = {"ra_dec_not_finite": 30, "dec_out_of_range": 20, "ra_out_of_range": 10,
-                "mag_missing": 40, "redshift_invalid": 5, "duplicate_id": 25}
+                "mag_missing": 40, "mag_implausible": 10, "redshift_invalid": 5,
+                "duplicate_id": 25}
     return [a, b], expected, df
 
 
@@ -628,6 +625,7 @@ def duplicate_catalogue(tmp_path):
     b.loc[200:249, "OBJID"] = b.loc[300:349, "OBJID"].to_numpy()  # duplicates within b
     b.loc[0:9, "RA"] = -5.0                                       # wrapped duplicates
     b.loc[50:54, "MAG"] = 99.0                                    # invalid duplicates
+    b.loc[55:57, "MAG"] = -999.0                                  # implausible duplicates
     c = frame(1500, rng, id_start=20_000)
     c.loc[0:49, "OBJID"] = b.loc[500:549, "OBJID"].to_numpy()     # duplicates of b
     c.loc[50:59, "OBJID"] = a.loc[2990:2999, "OBJID"].to_numpy()  # duplicates of a's last group
@@ -650,7 +648,8 @@ def duplicate_catalogue(tmp_path):
 def oracle_ledger(rows, footprint):
     """Row by row, in catalogue order, from the documented rules of countscale.catalog."""
     rejected = dict.fromkeys(["ra_dec_not_finite", "dec_out_of_range", "ra_out_of_range",
-                              "mag_missing", "redshift_invalid", "duplicate_id"], 0)
+                              "mag_missing", "mag_implausible", "redshift_invalid",
+                              "duplicate_id"], 0)
     seen, n_in, n_out, wrapped, missing = set(), 0, 0, 0, 0
     for ra, dec, mag, z, objid in rows[["RA", "DEC", "MAG", "Z", "OBJID"]].itertuples(
             index=False):
@@ -666,6 +665,9 @@ def oracle_ledger(rows, footprint):
             continue
         if not math.isfinite(mag) or mag in (99.0, -99.0, 99.99):
             rejected["mag_missing"] += 1
+            continue
+        if not -30.0 <= mag <= 40.0:  # the documented default plausible range
+            rejected["mag_implausible"] += 1
             continue
         if z < 0:
             rejected["redshift_invalid"] += 1
