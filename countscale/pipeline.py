@@ -2239,6 +2239,10 @@ def _totals_stars(ctx: RunContext, out: _Totals, function: Any, sampler: Any, co
     if section.galaxy_log10_mass is not None:
         galaxy = tt.stars_per_galaxy(section.galaxy_log10_mass, per_msun, n_draws, ctx.rng)
         out.estimates["stars_per_galaxy"] = galaxy
+        mass = 10.0 ** section.galaxy_log10_mass
+        out.details["stars"]["stars_per_galaxy_by_imf"] = {
+            name: mass * float(np.asarray(tt.stars_per_msun_sampler(name, section.mass_imf)
+                                          .central(1))[0]) for name in imfs}
         out.definitions["stars_per_galaxy"] = (
             f"stars in one galaxy of stellar mass 10^{section.galaxy_log10_mass:g} Msun "
             f"({section.mass_imf} IMF masses) ÷ the mean stellar mass of the {imf_text} IMF")

@@ -598,12 +598,6 @@ def _range(pair: list[float]) -> str:
     return f"{_sig(pair[0])} – {_sig(pair[1])}"
 
 
-def _budget_text(budget: Mapping[str, float], top: int = 3) -> str:
-    items = sorted(budget.items(), key=lambda kv: -kv[1])
-    shown = [f"{k} {v:.0%}" for k, v in items[:top] if v >= 0.005]
-    return ", ".join(shown) if shown else "—"
-
-
 def _totals_markdown(totals: Mapping[str, Any]) -> list[str]:
     """The report's Totals section: the table, budgets, and why the definitions differ."""
     n_draws = totals.get("n_draws")
@@ -698,6 +692,11 @@ def _totals_markdown(totals: Mapping[str, Any]) -> list[str]:
         out += ["", "### Stars: stated systematics (not in the budget)", ""]
         out += [f"- {item['note']}: {item['effect_log10']:+.2f} dex"
                 for item in stars["systematics"]]
+        by_imf = stars.get("stars_per_galaxy_by_imf")
+        if by_imf:
+            out += ["", "Stars per galaxy, by IMF (`stars_per_galaxy` mixes them): "
+                    + ", ".join(f"{name} {_sig(value)}" for name, value in by_imf.items())
+                    + "."]
     elif stars:
         out += ["", f"`stars_total` counts {stars['quantity_counted']}."]
     for text in totals.get("warnings", []):

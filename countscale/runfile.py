@@ -42,6 +42,8 @@ What the validated values look like
   ``H0`` and ``Om0`` with ``name = None``.
 * ``[totals].target_sky`` is a tuple of :class:`FootprintItem` (any kind but ``occupancy``), or
   None for the whole sky; :func:`countscale.skymodel.target_sky_footprint` builds it.
+  ``[totals].imf`` is a name, or a tuple of names (a mixture); ``[totals].mass_to_light`` a
+  :class:`Table` of ``value``, ``sigma_dex``, ``sun_abs_mag`` and ``source``.
 * ``[extinction]`` has ``map`` (a path) and exactly one of ``coefficient`` (R) and ``band`` (a
   name of :data:`countscale.extinction.COEFFICIENTS`).
 * ``[sky_model].covariate_sets`` is a tuple of tuples of names (None: the defaults for the
