@@ -1818,7 +1818,8 @@ def _sky_total_isotropic(ctx: RunContext, out: _Totals, m_limit: float, target_a
     if sigma_cv is None:
         out.caution("sky_total", cv_note)
     sky = tt.SkyTotal(m_limit, target_area, area, float(ctx.footprint.area_uncertainty_deg2),
-                      n_bright, fit_lo, models, weights, cov, sigma_cv, unit=unit)
+                      n_bright, fit_lo, models, weights, cov, sigma_cv, unit=unit,
+                      m_fitted=fit_hi)
     estimate = _with_budget_check(out, "sky_total", lambda: sky.estimate(n_draws, ctx.rng))
     out.estimates["sky_total"] = estimate
     central = max(weights, key=lambda k: weights[k])
@@ -2248,6 +2249,11 @@ def _totals_stars(ctx: RunContext, out: _Totals, function: Any, sampler: Any, co
             f"({section.mass_imf} IMF masses) ÷ the mean stellar mass of the {imf_text} IMF")
 
 
+def _totals_columns(runfile: Any) -> tuple[str, ...]:
+    """The magnitudes, for counting the sources brighter than the sky totals' limit."""
+    return ("mag",) if runfile.totals.whole_sky_mag_limit is not None else ()
+
+
 def _stage_totals(ctx: RunContext) -> StageResult:
     """Totals over the target sky, a volume and the light cone, and in stars (``[totals]``).
 
@@ -2313,7 +2319,7 @@ STAGES: list[Stage] = [
           reads=("contamination",)),
     Stage("sky_model", ("catalog", "footprint"), _stage_sky_model, columns=("mag", "cell"),
           when=_wants_sky_model, reads=("sky_model",)),
-    Stage("totals", ("totals",), _stage_totals, columns=("mag",), reads=("cosmology",)),
+    Stage("totals", ("totals",), _stage_totals, columns=_totals_columns, reads=("cosmology",)),
 ]
 
 

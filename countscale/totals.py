@@ -227,17 +227,28 @@ class CountModelDraws:
     def n_params(self) -> int:
         return len(self.model.param_names)
 
-    def thetas(self, z: np.ndarray, delta_completeness: np.ndarray | None = None) -> np.ndarray:
-        """Parameter draws ``theta_hat + F z [+ J delta_p]`` (z standard normal, (n, >= k))."""
-        z = np.asarray(z, dtype=float)
-        theta = self.model.params[None, :] + z[:, : self.n_params] @ self._factor.T
-        if delta_completeness is not None and self.jacobian is not None:
-            theta = theta + np.asarray(delta_completeness, dtype=float) @ self.jacobian.T
-        return theta
-
     def integral(self, thetas: np.ndarray, m_lo: float, m_hi: float) -> np.ndarray:
-        """Sources per deg^2 between m_lo and m_hi for each parameter draw."""
-        return self.model.integral_draws(thetas, m_lo, m_hi)
+        """Sources per deg^2 between m_lo and m_hi for each parameter vector, shape (n,)."""
+        return self.model.integral_draws(np.atleast_2d(thetas), m_lo, m_hi)
+
+    def log_gradient(self, m_lo: float, m_hi: float) -> tuple[float, np.ndarray]:
+        """The integral at the fit and d log10(integral) / d parameters (central differences).
+
+        Steps of 1e-3 of each parameter's Poisson sigma (1e-7 at least).
+        """
+        theta = self.model.params
+        steps = np.maximum(1e-3 * np.sqrt(np.abs(np.diag(self.covariance))), 1e-7)
+        rows = [theta]
+        for i, h in enumerate(steps):
+            for sign in (1.0, -1.0):
+                row = theta.copy()
+                row[i] += sign * h
+                rows.append(row)
+        values = self.integral(np.array(rows), m_lo, m_hi)
+        log_values = np.log10(values)
+        gradient = np.array([(log_values[1 + 2 * i] - log_values[2 + 2 * i]) / (2 * h)
+                             for i, h in enumerate(steps)])
+        return float(values[0]), gradient
 
 
 @dataclass(frozen=True, eq=False)
@@ -272,6 +283,9 @@ class SkyTotal:
         Fractional rms of the footprint's mean density about the population's (cosmic
         variance); None: not included.
     unit : str
+    m_fitted : float, optional
+        The faint end of the count fits' range; beyond it the models are extrapolated
+        (default: ``m_limit``, no extrapolation).
 
     Notes
     -----
@@ -280,6 +294,18 @@ class SkyTotal:
     Jacobians), ``count_model`` (a mixture of the models by weight), ``cosmic_variance`` (a
     lognormal factor of median 1 and rms ``sigma_cv``), ``area`` (the footprint's area: the
     densities scale as 1 / area). Absent or zero-width inputs get no share.
+
+    Over the fitted range a model's part of the density is carried to its draws by the delta
+    method in log10: with g the gradient of log10 of its integral there at the fit,
+    ``I = I(theta_hat) 10^(g . (F z + J delta_p))`` (F F^T the Poisson covariance, J the
+    completeness Jacobian). Pushing Gaussian parameter draws through that integral overstated
+    the spread of N(<m) of the two-slope models (their break is loosely constrained and the
+    likelihood is curved in it, while the counts themselves pin N(<m) down) by a factor 1.4-1.9
+    in mocks, where the delta method matched the estimates' actual scatter within 10 %. Beyond
+    the fitted range (``m_fitted`` < ``m_limit``) the same draws ``theta_hat + F z + J
+    delta_p`` go through the model's own integral: there the spread of the extrapolation is
+    the point, and the delta method understated it (68 % intervals covered 62 % instead of
+    70 % in mocks 0.4 mag beyond the range). Both from the ensembles of tests/test_totals.py.
     """
 
     m_limit: float
@@ -293,6 +319,7 @@ class SkyTotal:
     completeness_covariance: Any = None
     sigma_cv: float | None = None
     unit: str = "sources"
+    m_fitted: float | None = None
 
     def __post_init__(self) -> None:
         for name in ("m_limit", "m_bright"):
@@ -323,6 +350,24 @@ class SkyTotal:
         if models and (any(w < 0 for w in weights.values()) or sum(weights.values()) <= 0):
             raise InputError(f"`weights` must be >= 0 and not all 0; got {weights}")
         object.__setattr__(self, "weights", weights)
+        m_fitted = self.m_limit if self.m_fitted is None else _finite_scalar(
+            "m_fitted", self.m_fitted)
+        if models and m_fitted <= self.m_bright:
+            raise InputError(f"`m_fitted` must be fainter than `m_bright` ({self.m_bright:g}); "
+                             f"got {m_fitted!r}")
+        object.__setattr__(self, "m_fitted", m_fitted)
+        # Each model's integral over the fitted range at the fit and its log10 gradient (the
+        # delta method, Notes); beyond the range the draws go through the model itself.
+        linear = []
+        for model in models:
+            value, gradient = model.log_gradient(self.m_bright, min(self.m_limit, m_fitted))
+            if not (math.isfinite(value) and value > 0):
+                raise InputError(f"the {model.name} count model gives no sources between "
+                                 f"{self.m_bright:g} and {self.m_limit:g}; got {value!r}")
+            on_completeness = (None if model.jacobian is None
+                               else model.jacobian.T @ gradient)
+            linear.append((value, model._factor.T @ gradient, on_completeness))
+        object.__setattr__(self, "_linear", tuple(linear))
         if self.sigma_cv is not None:
             value = _finite_scalar("sigma_cv", self.sigma_cv)
             if value < 0:
@@ -378,13 +423,23 @@ class SkyTotal:
             else:
                 index = np.full(z.shape[0], self._central_index)
             delta = values.get("completeness") if self._draws_completeness else None
-            for k, model in enumerate(self.models):
+            beyond = self.m_limit > self.m_fitted
+            for k, (value, on_fit, on_completeness) in enumerate(self._linear):
                 chosen = index == k
                 if not chosen.any():
                     continue
-                d = None if delta is None else np.asarray(delta, dtype=float)[chosen]
-                theta = model.thetas(z[chosen], d)
-                density[chosen] += model.integral(theta, self.m_bright, self.m_limit)
+                model = self.models[k]
+                z_k = z[chosen][:, : on_fit.size]
+                d_k = None if delta is None else np.asarray(delta, dtype=float)[chosen]
+                shift = z_k @ on_fit
+                if d_k is not None and on_completeness is not None:
+                    shift = shift + d_k @ on_completeness
+                density[chosen] += value * 10.0**shift
+                if beyond:
+                    theta = model.model.params[None, :] + z_k @ model._factor.T
+                    if d_k is not None and model.jacobian is not None:
+                        theta = theta + d_k @ model.jacobian.T
+                    density[chosen] += model.integral(theta, self.m_fitted, self.m_limit)
         return density
 
     def function(self) -> Callable[[Mapping[str, Any]], np.ndarray]:
@@ -426,19 +481,10 @@ def jackknife_sigma(model: CountModelDraws, covariance_reported: Any, n_bright: 
     The jackknife sees only scales smaller than the footprint (an underestimate of the
     population's cosmic variance), which the caller must say.
     """
-    theta = model.model.params
     excess = np.array(covariance_reported, dtype=float) - model.covariance
-    steps = np.maximum(1e-4 * np.sqrt(np.abs(np.diag(model.covariance))), 1e-7)
-    rows = [theta]
-    for i, h in enumerate(steps):
-        for sign in (1.0, -1.0):
-            row = theta.copy()
-            row[i] += sign * h
-            rows.append(row)
-    density = n_bright / area_deg2 + model.integral(np.array(rows), m_bright, m_limit)
-    log_s = np.log10(density)
-    gradient = np.array([(log_s[1 + 2 * i] - log_s[2 + 2 * i]) / (2 * h)
-                         for i, h in enumerate(steps)])
+    value, gradient = model.log_gradient(m_bright, m_limit)
+    # d log10(n_bright / area + I) = I / (n_bright / area + I) d log10 I.
+    gradient = gradient * value / (n_bright / area_deg2 + value)
     var = max(float(gradient @ excess @ gradient), 0.0)
     return math.sqrt(math.expm1(var * _LN10**2))
 

@@ -129,6 +129,27 @@ def test_budgets_sum_to_one_same_seed_same_draws_and_zero_width_gets_zero():
     assert not np.array_equal(a.draws, c.draws)
 
 
+def test_fitted_range_is_linear_in_log_and_the_extrapolation_goes_through_the_model():
+    # Power law n = 10^(a + b (m - 20)): the integral over [lo, hi] is closed form. Draw z = 1
+    # in the slope (sigma 0.01): over the fitted range 18-21 the density moves by the delta
+    # method, 10^(d log10 I / db x 0.01); beyond it (21-22) by the model at b + 0.01.
+    cov = np.diag([0.001**2, 0.01**2])  # eigen-order: log10_norm first, then slope
+    model = ct.PowerLaw(log10_norm=3.0, slope=0.4, reference_mag=20.0, m_bright=18.0)
+    sky = tt.SkyTotal(22.0, 1.0, 10.0, 0.0, 0, 18.0,
+                      [tt.CountModelDraws("power_law", model, cov)], m_fitted=21.0)
+    values = {"poisson": np.array([[0.0, 1.0, 0.0]]), "area": np.array([10.0])}
+    density = sky.function()(values)[0]
+
+    def log10_in(b):
+        return mpmath.log10((mpmath.power(10, 3 + b * 1) - mpmath.power(10, 3 - 2 * b))
+                            / (b * mpmath.log(10)))
+
+    derivative = float(mpmath.diff(log10_in, 0.4))
+    inside = _power_law_integral(18.0, 21.0) * 10 ** (derivative * 0.01)
+    outside = _power_law_integral(21.0, 22.0, slope=0.41)
+    assert density == pytest.approx(inside + outside, rel=1e-6)
+
+
 def test_cosmic_variance_factor_has_the_requested_fractional_rms():
     sky = _power_law_total(n_bright=0, sigma_cv=0.08)
     est = sky.estimate(20000, rng=3)
@@ -517,7 +538,7 @@ def mock_sky_total(mock, footprint, sigma_cv, m_limit, n_draws=2000, seed=0):
               for k, f in fits.items()]
     n_bright = n_brighter + int(counts[MOCK_EDGES[1:] <= lo + 1e-9].sum())
     sky = tt.SkyTotal(m_limit, FULL_SKY_DEG2, area, 0.0, n_bright, lo, models, weights,
-                      cfit.cov_, sigma_cv)
+                      cfit.cov_, sigma_cv, m_fitted=hi)
     with warnings.catch_warnings():
         # The intervals are what is checked here; an indicative budget does not matter.
         warnings.simplefilter("ignore", BudgetWarning)

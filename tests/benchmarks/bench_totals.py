@@ -6,13 +6,11 @@ Run as a script (not collected by pytest):
 
 The demo survey's stages up to the counts and the luminosity function run once (not timed);
 then each total is timed from its fitted inputs: ``sky_total`` (three count models with the
-completeness linearised, cosmic variance, area: six passes of ``propagate``), the same with its
-completeness Jacobians recomputed (the refits the stage makes), the present-day and light-cone
-volume totals, the stars total, and the whole totals stage. The baselines, measured in the same
-process: bare numpy draws of the same size and passes (lognormal draws, a product, log10 and a
-variance), and -- for ``sky_total`` -- the obvious loop that builds a count model per draw and
-calls its ``cumulative`` (the vectorised ``integral_draws`` replaces it). Printed: seconds, the
-ratio to the baseline, and the peak RSS. The target is <= 5 s per total for 10^4 draws.
+completeness linearised, cosmic variance, area: six passes of ``propagate``), the present-day
+and light-cone volume totals, the stars total, and the whole totals stage (with its refits and
+checks). The baseline, measured in the same process: bare numpy draws of the same size and
+passes (lognormal draws, a product, log10 and a variance). Printed: seconds, the ratio to the
+baseline, and the peak RSS. The target is <= 5 s per total for 10^4 draws.
 """
 
 from __future__ import annotations
@@ -89,14 +87,6 @@ def main():
     cosmology = CosmologyDraws(cosmo)
     per_msun = tt.stars_per_msun_sampler(["chabrier", "kroupa"])
 
-    def loop_baseline():
-        # One model object per draw and its own N(<m): what integral_draws replaces.
-        model = sky.models[sky._central_index]
-        rng = np.random.default_rng(0)
-        theta = model.thetas(rng.standard_normal((n, model.n_params)))
-        return [float(model.model.with_params(t).integral(sky.m_bright, sky.m_limit))
-                for t in theta]
-
     cases = [
         ("sky_total (6 passes)", lambda: sky.estimate(n, 1), 6),
         ("present_day_volume_total (4)", lambda: tt.present_day_total(
@@ -114,12 +104,6 @@ def main():
         elapsed, est = timed(run)
         base = numpy_baseline(n, passes)
         print(f"{name:34s} {elapsed:8.3f} {base:8.4f} {elapsed / base:7.0f}   {est.median:.4g}")
-    loop, _ = timed(loop_baseline)
-    vector, _ = timed(lambda: sky.models[sky._central_index].integral(
-        sky.models[sky._central_index].thetas(np.random.default_rng(0).standard_normal(
-            (n, sky.models[sky._central_index].n_params))), sky.m_bright, sky.m_limit))
-    print(f"\none pass of N(<m) for {n:,d} draws: vectorised {vector:.3f} s, a model per draw "
-          f"{loop:.2f} s (x{loop / vector:.0f})")
     ctx.rng = np.random.default_rng(2)
     whole, _ = timed(lambda: pipeline._stage_totals(ctx))
     print(f"the whole totals stage on the demo (refits, checks, five totals and stars per "
