@@ -4,10 +4,10 @@
 list of stages (:data:`STAGES`); each declares the run-file sections it needs and runs only
 when all of them are present (and its optional ``when`` condition holds: the contamination
 stage runs with a classifier or ``[contamination]``, the sky model for stars or with
-``[sky_model]``). Later stages (number counts, luminosity function, cosmic
-variance, totals) are added to :data:`STAGES` by their modules' issues; a section the file has
-but no stage reads yet is listed in the results under ``run.sections_not_run``, not ignored
-silently.
+``[sky_model]``). The stages: tally, completeness, luminosity function, cosmic variance,
+number counts, contamination, sky model, totals (the last turns the fits into totals over the
+sky, a volume, the light cone and in stars, with their budgets). A section the file has but no
+stage reads is listed in the results under ``run.sections_not_run``, not ignored silently.
 
 Topics
 ------
