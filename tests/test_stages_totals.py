@@ -9,6 +9,7 @@ test_stages.py (galaxies) and test_stages_sky.py (stars).
 from __future__ import annotations
 
 import json
+import math
 import textwrap
 
 import healpy as hp
@@ -176,3 +177,75 @@ def test_a_volume_whose_redshifts_do_not_increase_is_exit_2(tmp_path, capsys):
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1
     assert "[totals] 'volume.redshift' must be two increasing redshifts" in err
+
+
+def test_a_mass_function_gives_volume_and_star_totals_without_a_mass_to_light(tmp_path):
+    # A Schechter stellar-mass function (a mock, no clustering) fitted at 0.02 < z < 0.2:
+    # galaxies above 10^9.5 Msun in the shell z < 0.2 today, and the stars in it. The truth
+    # is computed here: n(>M) = phi* Gamma(alpha + 1, M / M*) (mpmath) times astropy's
+    # Planck18 comoving volume; rho* = phi* M* Gamma(alpha + 2).
+    import mpmath
+    from astropy.cosmology import Planck18
+
+    from countscale.extrapolation import stars_from_stellar_mass
+    from countscale.lumfunc import SchechterMass
+    from countscale.mock import MassFunctionGalaxies
+
+    form = SchechterMass(log10_mass_star=10.8, alpha=-1.2, phi_star=3e-3)
+    footprint = Footprint.cap(150.0, 20.0, 4.0, max_order=10)
+    spec = MockSpec(galaxies=MassFunctionGalaxies(mass_function=form, log10_mass_min=6.0,
+                                                  z_max=0.3),
+                    measurement=Measurement(m50=30.0, width=0.1), mag_limits=(18.5,),
+                    generation_mag_limit=18.5)
+    cat = make_mock(spec, rng=12, footprint=footprint).catalogue
+    frame = cat[["ra", "dec", "mag_true", "z", "log10_mass"]].rename(
+        columns={"mag_true": "mag"})
+    frame.to_parquet(tmp_path / "cat.parquet")
+    (tmp_path / "run.toml").write_text(textwrap.dedent("""\
+        [survey]
+        name = "Mass totals (a mock)"
+
+        [catalog]
+        paths = ["cat.parquet"]
+        ra = "ra"
+        dec = "dec"
+        mag = "mag"
+        redshift = "z"
+        stellar_mass = "log10_mass"
+
+        [footprint]
+        max_order = 10
+        include = [{cap = {ra = 150.0, dec = 20.0, radius = 4.0}}]
+
+        [luminosity_function]
+        quantity = "stellar_mass"
+        redshift_range = [0.02, 0.2]
+        mag_limits = [10.0, 18.5]
+
+        [totals]
+        volume = {redshift = [0.0, 0.2]}
+        faint_limit = 9.5
+        stars = true
+        imf = "kroupa"
+        draws = 2000
+
+        [output]
+        formats = ["json"]
+        """))
+    totals = run_survey(tmp_path / "run.toml", out_dir=tmp_path / "out",
+                        seed=3).results["totals"]
+    # The mock's mass function is in the units of its cosmology, Planck18, the run's too.
+    n_above = 3e-3 * float(mpmath.gammainc(-0.2, 10 ** (9.5 - 10.8)))
+    volume = Planck18.comoving_volume(0.2).value
+    lo, hi = totals["present_day_volume_total"]["interval_95"]
+    assert lo <= n_above * volume <= hi
+    rho = 3e-3 * 10**10.8 * math.gamma(0.8)
+    stars = rho * volume * float(stars_from_stellar_mass(1.0, "kroupa", mass_imf="chabrier"))
+    lo, hi = totals["stars_total"]["interval_95"]
+    assert lo <= stars <= hi
+    assert "mass_to_light" not in totals["stars_total"]["budget"]
+    assert totals["stars_total"]["budget"]["imf"] == 0.0  # one IMF: a fixed value
+    # The shell reaches beyond the fit's redshifts (0.02-0.2 against 0-0.2): said beside it.
+    assert totals["cautions"]["present_day_volume_total"]
+    assert totals["not_computed"] == {"sky_total": "no [totals] whole_sky_mag_limit",
+                                      "sky_total_naive": "no [totals] whole_sky_mag_limit"}
