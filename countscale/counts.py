@@ -407,6 +407,61 @@ class CountModel:
             values = self._integral(start, np.maximum(flat, self.m_bright))
         return _scalar_out(values.reshape(array.shape), scalar)
 
+    def integral_draws(self, params, m_lo, m_hi, panel_mag=0.1, block=2048):
+        """Integral of n(m) over [m_lo, m_hi] for many parameter vectors at once.
+
+        For Monte Carlo draws of a fit's parameters: one vectorised evaluation instead of a
+        model per draw. The fixed settings (``reference_mag``, ...) are this model's.
+
+        Parameters
+        ----------
+        params : array_like, shape (n_draws, n_params)
+            Parameter vectors in :attr:`param_names` order.
+        m_lo, m_hi : float
+            Magnitude range (AB), ``m_lo <= m_hi``.
+        panel_mag : float
+            Width of the Gauss-Legendre panels (8 nodes each), mag.
+        block : int
+            Draws evaluated at once (bounds the memory to block x nodes doubles).
+
+        Returns
+        -------
+        ndarray, shape (n_draws,)
+            Sources per deg^2 in the range for each parameter vector.
+
+        Notes
+        -----
+        Composite 8-point Gauss-Legendre quadrature. A model with a kink (the broken power
+        law) loses the quadrature's high order in the one panel holding the kink; with 0.1
+        mag panels the relative error stays below 5e-5 for a change of slope up to 1 dex per
+        mag (tested against :meth:`integral`), far below the Poisson error of any count.
+        """
+        theta = np.asarray(params, dtype=float)
+        if theta.ndim != 2 or theta.shape[1] != len(self.param_names):
+            raise InputError(
+                f"`params` must have shape (n_draws, {len(self.param_names)}); got "
+                f"{theta.shape}"
+            )
+        lo = _check_real(m_lo, "m_lo")
+        hi = _check_real(m_hi, "m_hi")
+        if hi < lo:
+            raise InputError(f"`m_hi` must be >= `m_lo`; got m_lo = {lo}, m_hi = {hi}")
+        out = np.zeros(theta.shape[0])
+        if hi == lo or theta.shape[0] == 0:
+            return out
+        n_panels = max(1, math.ceil((hi - lo) / _check_real(panel_mag, "panel_mag", 0.0)))
+        edges = np.linspace(lo, hi, n_panels + 1)
+        half = 0.5 * np.diff(edges)
+        nodes = (0.5 * (edges[1:] + edges[:-1]))[:, None] + half[:, None] * _GL_NODES[None, :]
+        weights = (half[:, None] * _GL_WEIGHTS[None, :]).ravel()
+        nodes = nodes.ravel()
+        for start in range(0, theta.shape[0], int(block)):
+            part = theta[start:start + int(block)]
+            columns = tuple(part.T[:, :, None])
+            values = self._log10_density_at(columns, nodes[None, :])
+            out[start:start + part.shape[0]] = (10.0 ** values) @ weights
+        return out
+
     # -------------------------------------------------------------- hooks
     def _log10_density(self, m):
         raise NotImplementedError
@@ -2015,8 +2070,43 @@ class CountsFit:
         self.region_area_grids_ = None if region_grids is None else _read_only(region_grids)
         self.estimates_ = self._estimates(model, cov_poisson, cov, cov_jackknife)
         self._likelihood = likelihood
+        self._maxima = maxima
         self._profiles = {}
         return self
+
+    def refit(self, forward):
+        """Maximum-likelihood parameters of the same counts through another forward model.
+
+        For small changes of the forward model (a completeness curve moved within its
+        errors): the bins, counts, fit range and model are this fit's, and the search starts
+        from this fit's local maxima, so it is much faster than a new :meth:`fit`. Nothing
+        else is computed (no covariance, jackknife or p-value).
+
+        Parameters
+        ----------
+        forward : ForwardModel
+            With the same bin edges as this fit's.
+
+        Returns
+        -------
+        ndarray, shape (n_params,)
+            The parameters in ``param_names`` order.
+        """
+        self._fitted("model_")
+        if not isinstance(forward, ForwardModel):
+            raise InputTypeError(f"`forward` must be a ForwardModel; got {type(forward).__name__}")
+        if not np.array_equal(forward.bin_edges_mag, self.forward.bin_edges_mag):
+            raise InputError("`forward` must have this fit's bin edges")
+        used = self.used_bins_
+        counts = self.observed_counts_
+        old = self._likelihood
+        likelihood = _Likelihood(old.template, forward._cell_lo, forward._cell_hi,
+                                 forward._response[used], counts[used], old.fit_range,
+                                 old.location_range)
+        theta, _, _ = self._maximise_from_data(likelihood, counts,
+                                               forward.bin_effective_area_deg2(),
+                                               starts=self._maxima)
+        return np.array(theta, dtype=float)
 
     def _maximise_from_data(self, likelihood, counts, bin_area, starts=()):
         """Maximise ``likelihood``; returns ``(theta, loglike, maxima)``.

@@ -27,7 +27,9 @@ Vectorised Schechter tails
     :func:`schechter_number_density_above` (arrays of parameters, for Monte Carlo draws).
 Monte Carlo propagation
     Samplers :class:`Fixed`, :class:`Normal`, :class:`LogNormal`, :class:`MultivariateNormal`,
-    :class:`Mixture`; :func:`propagate`; cosmology draws :class:`CosmologyDraws`.
+    :class:`Mixture`, :class:`Poisson`, :class:`Empirical` (existing draws resampled),
+    :class:`Joint` (several samplers as one budget entry); :func:`propagate`; cosmology draws
+    :class:`CosmologyDraws`.
 
 Examples
 --------
@@ -67,14 +69,18 @@ __all__ = [
     "AnchoredEvolution",
     "Chabrier",
     "CosmologyDraws",
+    "Empirical",
     "Fixed",
+    "Joint",
     "Kroupa",
     "LogNormal",
     "MassFunctionEvolution",
     "Mixture",
     "MultivariateNormal",
     "Normal",
+    "Poisson",
     "Salpeter",
+    "Sampler",
     "get_imf",
     "light_cone_total",
     "mass_function_in_h",
@@ -1034,6 +1040,93 @@ class Mixture(Sampler):
         return len(used) == 1
 
 
+@dataclass(frozen=True)
+class Poisson(Sampler):
+    """A Poisson count of mean ``mean`` (>= 0); central value the mean."""
+
+    mean: float
+
+    def __post_init__(self) -> None:
+        mean = _finite_scalar("mean", self.mean)
+        if mean < 0:
+            raise InputError(f"`mean` must be >= 0; got {mean!r}")
+        object.__setattr__(self, "mean", mean)
+
+    def sample(self, n, rng):
+        return rng.poisson(self.mean, size=n).astype(float)
+
+    def central(self, n):
+        return np.full(n, self.mean)
+
+    @property
+    def zero_width(self) -> bool:
+        return self.mean == 0.0
+
+
+@dataclass(frozen=True, eq=False)
+class Empirical(Sampler):
+    """Draws that already exist (another Monte Carlo's), resampled with replacement.
+
+    For carrying a total computed elsewhere (e.g. a sky model's draws) into a product with
+    further inputs. Central value: the median of the draws.
+    """
+
+    draws: Any
+
+    def __post_init__(self) -> None:
+        values = np.array(self.draws, dtype=float)
+        if values.ndim != 1 or values.size < 2 or not np.all(np.isfinite(values)):
+            raise InputError(
+                f"`draws` must be a finite 1-D array of at least 2 values; got shape "
+                f"{values.shape}"
+            )
+        values.flags.writeable = False
+        object.__setattr__(self, "draws", values)
+
+    def sample(self, n, rng):
+        return self.draws[rng.integers(0, self.draws.size, size=n)]
+
+    def central(self, n):
+        return np.full(n, float(np.median(self.draws)))
+
+    @property
+    def zero_width(self) -> bool:
+        return bool(np.all(self.draws == self.draws[0]))
+
+
+@dataclass(frozen=True, eq=False)
+class Joint(Sampler):
+    """Several samplers drawn together as the columns of one input (one budget entry).
+
+    ``parts`` are samplers of scalar draws or of (n, k) blocks; a draw is their columns side
+    by side, shape (n, total columns). Use it when one source of uncertainty has pieces of
+    different kinds (e.g. a fit's normal parameters and a Poisson count of the sources the
+    fit does not cover).
+    """
+
+    parts: tuple
+
+    def __post_init__(self) -> None:
+        parts = tuple(self.parts)
+        if not parts or not all(isinstance(p, Sampler) for p in parts):
+            raise InputTypeError(f"`parts` must be a non-empty sequence of samplers; got {parts!r}")
+        object.__setattr__(self, "parts", parts)
+
+    @staticmethod
+    def _stack(blocks):
+        return np.column_stack([np.asarray(b, dtype=float).reshape(len(b), -1) for b in blocks])
+
+    def sample(self, n, rng):
+        return self._stack([p.sample(n, rng) for p in self.parts])
+
+    def central(self, n):
+        return self._stack([p.central(n) for p in self.parts])
+
+    @property
+    def zero_width(self) -> bool:
+        return all(p.zero_width for p in self.parts)
+
+
 def _check_n_draws(n_draws: Any) -> int:
     if isinstance(n_draws, bool) or not isinstance(n_draws, numbers.Integral) or n_draws < 2:
         raise InputError(f"`n_draws` must be an integer >= 2; got {n_draws!r}")
@@ -1083,7 +1176,8 @@ def propagate(
         if not isinstance(sampler, (Sampler, CosmologyDraws)):
             raise InputTypeError(
                 f"`inputs[{name!r}]` must be a sampler (Normal, LogNormal, MultivariateNormal, "
-                f"Mixture, Fixed or CosmologyDraws); got {type(sampler).__name__}"
+                f"Mixture, Poisson, Empirical, Joint, Fixed or CosmologyDraws); got "
+                f"{type(sampler).__name__}"
             )
     n = _check_n_draws(n_draws)
     gen = _generator(rng)

@@ -4,10 +4,10 @@
 list of stages (:data:`STAGES`); each declares the run-file sections it needs and runs only
 when all of them are present (and its optional ``when`` condition holds: the contamination
 stage runs with a classifier or ``[contamination]``, the sky model for stars or with
-``[sky_model]``). Later stages (number counts, luminosity function, cosmic
-variance, totals) are added to :data:`STAGES` by their modules' issues; a section the file has
-but no stage reads yet is listed in the results under ``run.sections_not_run``, not ignored
-silently.
+``[sky_model]``). The stages: tally, completeness, luminosity function, cosmic variance,
+number counts, contamination, sky model, totals (the last turns the fits into totals over the
+sky, a volume, the light cone and in stars, with their budgets). A section the file has but no
+stage reads is listed in the results under ``run.sections_not_run``, not ignored silently.
 
 Topics
 ------
@@ -1097,7 +1097,8 @@ def _stage_counts(ctx: RunContext) -> StageResult:
         },
         "notes": notes,
     }
-    return StageResult(data, {"fit": main, "fits": fits, "forward": forward})
+    return StageResult(data, {"fit": main, "fits": fits, "forward": forward,
+                              "scatter": scatter})
 
 
 def _count_models() -> dict[str, Any]:
@@ -1396,9 +1397,6 @@ def _lf_notes(sample: Any, fit: Any, vmax: Any, weight_info: dict | None,
     return notes
 
 
-#: The stages, in order (a totals stage goes last, with a later issue).
-
-
 def _wants_contamination(runfile: Any) -> bool:
     return runfile.catalog.classifier is not None or "contamination" in runfile.present
 
@@ -1602,7 +1600,713 @@ def _stage_sky_model(ctx: RunContext) -> StageResult:
     return StageResult(data, objects)
 
 
-#: The stages, in order. A later issue adds totals (after sky_model).
+# --------------------------------------------------------------------------------------------
+# Totals
+# --------------------------------------------------------------------------------------------
+
+#: Footprint-average completeness below which a limit is "fainter than the data" (the
+#: counts' default fit range stops at the same 50 %).
+_DATA_COMPLETENESS = 0.5
+#: A completeness linearisation whose refit misses by more than this share of the effect,
+#: on an effect of more than _LINEARISATION_MIN_DEX, is reported (judgement call).
+_LINEARISATION_TOLERANCE = 0.25
+_LINEARISATION_MIN_DEX = 1e-3
+
+
+@dataclass
+class _Totals:
+    """What the totals stage collects: Estimates and the words that go beside them."""
+
+    estimates: dict = field(default_factory=dict)
+    definitions: dict = field(default_factory=dict)
+    cautions: dict = field(default_factory=dict)
+    warnings: list = field(default_factory=list)
+    details: dict = field(default_factory=dict)
+    not_computed: dict = field(default_factory=dict)
+
+    def caution(self, key: str, text: str, warn: bool = True) -> None:
+        """A caution beside one total; ``warn`` also lists it under ``warnings``."""
+        self.cautions.setdefault(key, []).append(text)
+        if warn and text not in self.warnings:
+            self.warnings.append(text)
+
+    def to_json(self, n_draws: int) -> dict:
+        from countscale.totals import dominant_source
+
+        order = ("sky_total", "sky_total_naive", "present_day_volume_total",
+                 "light_cone_total", "stars_total", "stars_per_galaxy")
+        data: dict[str, Any] = {k: self.estimates[k].to_json() for k in order
+                                if k in self.estimates}
+        data["warnings"] = list(self.warnings)
+        data["definitions"] = {k: v for k, v in self.definitions.items() if k in data}
+        data["cautions"] = {k: list(v) for k, v in self.cautions.items() if k in data}
+        data["dominant_source"] = {k: dominant_source(self.estimates[k].budget)
+                                   for k in order if k in self.estimates}
+        data["details"] = self.details
+        data["not_computed"] = self.not_computed
+        data["n_draws"] = int(n_draws)
+        return data
+
+
+def _with_budget_check(out: _Totals, key: str, make: Callable[[], Any]) -> Any:
+    """Run ``make()``; a BudgetWarning (sources interact) becomes a caution beside ``key``."""
+    from countscale.estimate import BudgetWarning
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", BudgetWarning)
+        result = make()
+    for item in caught:
+        if issubclass(item.category, BudgetWarning):
+            out.caution(key, f"the budget is only indicative: {item.message}", warn=False)
+        else:
+            warnings.warn_explicit(item.message, item.category, item.filename, item.lineno)
+    return result
+
+
+def _completeness_perturbation(fit: Any) -> tuple[list[str], np.ndarray, np.ndarray,
+                                                  Callable[[np.ndarray], Any]]:
+    """The completeness parameters the totals draw, and the curve for each value.
+
+    Parametric curves: all their parameters (``params_``, ``cov_``). The monotone curve has
+    no parameters to move: it is shifted in magnitude by the uncertainty of its m50.
+    """
+    from countscale import completeness as cm
+
+    names = list(fit.params_)
+    p_hat = np.array([fit.params_[k] for k in names], dtype=float)
+    cov = np.atleast_2d(np.asarray(fit.cov_, dtype=float))
+    if fit.model == "monotone":
+        base = fit.model_
+        m50 = float(fit.params_["m50"])
+        i = names.index("m50")
+
+        class _Shifted:
+            def __init__(self, shift: float) -> None:
+                self.m50 = m50 + shift
+                self.shift = shift
+
+            def __call__(self, m: Any) -> Any:
+                return base(np.asarray(m, dtype=float) - self.shift)
+
+        return (["m50"], np.array([m50]), np.array([[cov[i, i]]]),
+                lambda p: _Shifted(float(p[0]) - m50))
+
+    def shape(p: np.ndarray) -> Any:
+        values = dict(zip(names, (float(v) for v in p), strict=True))
+        c_max = min(values.get("c_max", 1.0), 1.0)
+        if fit.model == "logistic":
+            return cm.LogisticCompleteness(values["m50"], max(values["width"], 1e-6), c_max)
+        return cm.FlemingCompleteness(values["m_lim"], max(values["alpha"], 1e-6), c_max)
+
+    return names, p_hat, cov, shape
+
+
+def _magnitude_at_completeness(effective: Any, area_deg2: float, level: float,
+                               lo: float, hi: float) -> float | None:
+    """Faintest magnitude in [lo, hi] where the footprint-average completeness is >= level."""
+    grid = np.arange(lo, hi + 1e-9, 0.01)
+    c = np.asarray(effective(grid), dtype=float) / area_deg2
+    above = np.flatnonzero(c >= level)
+    return None if above.size == 0 else float(grid[above[-1]])
+
+
+def _include_only_area(runfile: Any) -> float | None:
+    """Area of the footprint's include items without its exclusions (None if not built)."""
+    from types import SimpleNamespace
+
+    from countscale.footprint import Footprint
+
+    section = runfile.footprint
+    if not section.exclude or any(i.kind in ("occupancy", "map", "moc") for i in
+                                  section.include):
+        return None
+    shapes = SimpleNamespace(max_order=section.max_order, include=section.include, exclude=())
+    return float(Footprint.from_runfile_section(shapes).area_deg2)
+
+
+def _totals_sky(ctx: RunContext, out: _Totals, n_draws: int) -> Any:
+    """sky_total and sky_total_naive; returns the SkyTotal for isotropic populations."""
+    from countscale import skymodel as sk
+
+    runfile, section = ctx.runfile, ctx.runfile.totals
+    m_limit = float(section.whole_sky_mag_limit)
+    where = runfile.location("totals", "whole_sky_mag_limit")
+    tally_result = ctx.results["tally"]
+    mags = np.asarray((tally_result.columns or {}).get("mag", ()), dtype=float)
+    n_observed = int(np.count_nonzero(mags < m_limit))
+    if n_observed == 0:
+        brightest = f"m = {mags.min():.4g}" if mags.size else "none"
+        raise InputError(f"{where}: no source is brighter than {m_limit:g} (the brightest is "
+                         f"{brightest}); there is nothing to scale to the sky")
+    sky_stage = ctx.results.get("sky_model")
+    if sky_stage is not None:
+        target = sky_stage["target"]
+    else:
+        try:
+            target = sk.target_sky_footprint(section.target_sky)
+        except InputError as exc:
+            raise InputError(f"{runfile.location('totals', 'target_sky')}: {exc}") from None
+    target_area = float(target.area_deg2)
+    area = float(tally_result.area_deg2)
+    target_text = ("the whole sky" if section.target_sky is None else
+                   "the target sky ([totals] target_sky)") + f", {target_area:,.0f} deg²"
+    population = runfile.catalog.population
+    unit = "stars" if population == "stars" else "galaxies"
+    out.details["sky"] = {"m_limit": m_limit, "target_area_deg2": target_area,
+                          "footprint_area_deg2": area, "n_observed_brighter": n_observed,
+                          "target_sky": ([item.to_dict() for item in section.target_sky]
+                                         if section.target_sky is not None else "whole sky")}
+    naive = sk.naive_total(n_observed, area, target_area, n_draws=n_draws, rng=ctx.rng,
+                           unit=unit)
+    out.estimates["sky_total_naive"] = naive
+    out.definitions["sky_total_naive"] = (
+        f"plain area scaling: the {n_observed:,d} sources observed brighter than "
+        f"{m_limit:g} in the {area:.4g} deg² footprint × {target_text.split(', ')[-1]} / "
+        f"{area:.4g} deg² (the raw count divided by the footprint's share of the target)")
+    if sky_stage is not None:
+        _sky_total_from_model(ctx, out, sky_stage, m_limit, n_draws, target_text, unit)
+        return None
+    return _sky_total_isotropic(ctx, out, m_limit, target_area, n_observed, n_draws,
+                                target_text, unit)
+
+
+def _sky_total_isotropic(ctx: RunContext, out: _Totals, m_limit: float, target_area: float,
+                         n_observed: int, n_draws: int, target_text: str, unit: str) -> Any:
+    from countscale import completeness as cm
+    from countscale import counts as ct
+    from countscale import totals as tt
+
+    counts = ctx.results.get("counts")
+    if counts is None:
+        out.not_computed["sky_total"] = ("needs a [counts] section: the total comes from the "
+                                         "counts fitted through completeness and scatter")
+        return None
+    tally_result = ctx.results["tally"]
+    area = float(tally_result.area_deg2)
+    fits = counts["fits"]
+    main = counts["fit"]
+    forward = counts["forward"]
+    fit_lo, fit_hi = (float(v) for v in main.fit_range_)
+    edges = tally_result.mag_edges
+    if m_limit > fit_lo:
+        n_bright = int(tally_result.n_brighter
+                       + main.observed_counts_[edges[1:] <= fit_lo + 1e-9].sum())
+    else:
+        n_bright = n_observed
+    weights, choice = tt.count_model_weights(fits)
+    completeness = ctx.results.get("completeness")
+    jacobians = cov = p_hat = refit = None
+    if completeness is not None and m_limit > fit_lo:
+        _, p_hat, cov, shape_of = _completeness_perturbation(completeness["fit"])
+        effective = completeness["total"]
+        scatter = counts["scatter"]
+
+        def refit(p: np.ndarray) -> dict[str, np.ndarray]:
+            curve = cm.ShiftedCompleteness(shape_of(p), effective.shifts, effective.weights_deg2)
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", ct.CountsWarning)
+                moved = ct.ForwardModel(forward.bin_edges_mag, curve, scatter,
+                                        area_deg2=forward.area_deg2)
+                return {name: fit.refit(moved) for name, fit in fits.items()}
+
+        jacobians = tt.completeness_jacobians(refit, p_hat, cov)
+    models = [tt.CountModelDraws(name, fit.model_, fit.cov_poisson_,
+                                 None if jacobians is None else jacobians[name])
+              for name, fit in fits.items()]
+    sigma_cv, cv_note = _sky_cosmic_variance(ctx, models, fits, weights, n_bright, area,
+                                             fit_lo, m_limit)
+    if sigma_cv is None:
+        out.caution("sky_total", cv_note)
+    sky = tt.SkyTotal(m_limit, target_area, area, float(ctx.footprint.area_uncertainty_deg2),
+                      n_bright, fit_lo, models, weights, cov, sigma_cv, unit=unit,
+                      m_fitted=fit_hi)
+    estimate = _with_budget_check(out, "sky_total", lambda: sky.estimate(n_draws, ctx.rng))
+    out.estimates["sky_total"] = estimate
+    central = max(weights, key=lambda k: weights[k])
+    out.definitions["sky_total"] = (
+        f"{unit} brighter than {m_limit:g} over {target_text}: the population's mean surface "
+        f"density (the {n_bright:,d} observed brighter than {min(fit_lo, m_limit):g}, taken as "
+        "complete, plus the fitted counts corrected for completeness and photometric scatter"
+        + (f", a mixture of the count models weighted by evidence, mostly {central}"
+           if len(models) > 1 and m_limit > fit_lo else "")
+        + ") times the target's area: the expected number for a population the same "
+        "everywhere, not a census")
+    # Depth: how far beyond the data and the fit the limit reaches.
+    c_limit = 1.0
+    m_half = None
+    if completeness is not None:
+        c_limit = float(completeness["total"](m_limit)) / area
+        m_half = _magnitude_at_completeness(completeness["total"], area, _DATA_COMPLETENESS,
+                                            float(edges[0]), float(edges[-1]) + 3.0)
+    if c_limit < _DATA_COMPLETENESS:
+        out.caution("sky_total",
+                    f"depth extrapolation: at m = {m_limit:g} the survey is {100 * c_limit:.0f} % "
+                    "complete" + (f" (50 % at m = {m_half:.2f})" if m_half is not None else "")
+                    + "; the sources fainter than the data are the count models' extrapolation, "
+                    "and the spread between the models is in the budget (count_model)")
+    if m_limit > fit_hi + 1e-9:
+        out.caution("sky_total",
+                    f"the counts were fitted over {fit_lo:g}–{fit_hi:g}; the total extrapolates "
+                    f"the count models {m_limit - fit_hi:.2g} mag beyond the fitted range"
+                    + (" (where the data are still complete)"
+                       if c_limit >= _DATA_COMPLETENESS else ""))
+    details = out.details["sky"]
+    details.update({
+        "method": "isotropic: fitted counts × target area",
+        "m_bright": fit_lo,
+        "n_bright": n_bright,
+        "fit_range": [fit_lo, fit_hi],
+        "completeness_at_limit": c_limit,
+        "m50_footprint": m_half,
+        "count_models": {"weights": weights, **choice,
+                         "density_per_deg2": {m.name: sky.density_per_deg2(m.name)
+                                              for m in models} if m_limit > fit_lo else {}},
+        "cosmic_variance": {"sigma": sigma_cv, "note": cv_note},
+        "area_uncertainty_deg2": float(ctx.footprint.area_uncertainty_deg2),
+        "completeness": None,
+    })
+    if jacobians is not None:
+        check = tt.check_linearisation(sky, refit, p_hat, cov)
+        details["completeness"] = {
+            "method": "checked linearisation: each count model refitted with the completeness "
+                      "parameters moved by ±1σ (central differences give d parameters / d "
+                      "completeness), then checked by a refit 2σ along the widest axis",
+            "parameters": list(completeness["fit"].params_),
+            "check": check,
+        }
+        if (check["relative_error"] > _LINEARISATION_TOLERANCE
+                and check["max_effect_dex"] > _LINEARISATION_MIN_DEX):
+            out.caution("sky_total",
+                        f"the completeness term is linearised; a refit 2σ away moves the total "
+                        f"by {check['max_effect_dex']:.3g} dex where the linear form says "
+                        f"{check['max_effect_dex'] - check['max_error_dex']:.3g}: the "
+                        "completeness share of the budget is approximate")
+    elif completeness is None:
+        out.caution("sky_total", "no [completeness] section: the survey is taken as complete "
+                    "(no completeness correction, no completeness term in the budget)", False)
+    details["naive_explained"] = _naive_explained(ctx, sky, counts, completeness, estimate,
+                                                  out.estimates["sky_total_naive"], m_limit,
+                                                  sigma_cv)
+    return sky
+
+
+def _sky_cosmic_variance(ctx: RunContext, models: list, fits: Mapping, weights: Mapping,
+                         n_bright: int, area: float, fit_lo: float, m_limit: float
+                         ) -> tuple[float | None, str]:
+    """Cosmic variance of the population's mean density: analytic, else jackknife, labelled."""
+    from countscale import totals as tt
+
+    variance = ctx.results.get("variance")
+    cosmic = None if variance is None else getattr(variance, "objects", {}).get("sigma_cv")
+    if cosmic is not None:
+        try:
+            sigma = float(cosmic(m_limit))
+            return sigma, (f"analytic: {sigma:.3g} (fractional rms of this footprint's mean "
+                           f"density of sources brighter than {m_limit:g}, variance stage)")
+        except InputError as exc:
+            fallback = f"the analytic cosmic variance failed at m = {m_limit:g} ({exc}); "
+    else:
+        fallback = ""
+    central = max(weights, key=lambda k: weights[k])
+    fit = fits[central]
+    if fit.cov_jackknife_ is not None and m_limit > fit_lo:
+        model = next(m for m in models if m.name == central)
+        sigma = tt.jackknife_sigma(model, fit.cov_, n_bright, area, fit_lo, m_limit)
+        return sigma, (fallback + f"jackknife over {fit.n_regions_} regions: {sigma:.3g}; it "
+                       "misses modes larger than the footprint, so the interval is too narrow "
+                       "(add [variance] methods = [\"analytic\"])")
+    return None, (fallback + "no cosmic variance: the interval holds Poisson noise and the "
+                  "fits only, too narrow for a clustered population (add a [variance] section)")
+
+
+def _naive_explained(ctx: RunContext, sky: Any, counts: Any, completeness: Any,
+                     estimate: Any, naive: Any, m_limit: float, sigma_cv: float | None) -> dict:
+    """Why plain area scaling differs from sky_total, factor by factor."""
+    from scipy import stats
+
+    area = sky.area_deg2
+    bright = sky.n_bright / area
+    ratio = naive.median / estimate.median
+    out: dict[str, Any] = {"naive_over_sky_total": float(ratio)}
+    if sky.models:
+        model = sky.models[sky._central_index].model
+        scatter = counts["scatter"]
+        sigma_max = 0.0 if scatter is None else float(np.max(scatter(np.array([m_limit]))))
+        grid = np.arange(sky.m_bright, m_limit + max(5.0 * sigma_max, 0.0) + 0.05, 0.002)
+        step = 0.002
+        n = np.asarray(model.density(grid), dtype=float)
+        c = (np.ones_like(grid) if completeness is None
+             else np.asarray(completeness["total"](grid), dtype=float) / area)
+        below = grid < m_limit
+        intrinsic = bright + float(np.sum(n[below])) * step
+        detected = bright + float(np.sum((n * c)[below])) * step
+        if scatter is None:
+            observed = detected
+        else:
+            sigma = np.maximum(np.asarray(scatter(grid), dtype=float), 1e-9)
+            observed = bright + float(np.sum(n * c * stats.norm.cdf((m_limit - grid) / sigma))
+                                      ) * step
+        field_ratio = ratio / (observed / intrinsic)
+        out.update({
+            "completeness_factor": detected / intrinsic,
+            "scatter_factor": observed / detected,
+            "expected_naive_over_sky_total": observed / intrinsic,
+            "this_field_over_model": float(field_ratio),
+            "cosmic_variance_sigma": sigma_cv,
+        })
+    outer = _include_only_area(ctx.runfile)
+    if outer is not None and outer > 0:
+        out["holes"] = {"area_without_holes_deg2": outer,
+                        "naive_if_holes_ignored_factor": area / outer}
+    return out
+
+
+def _sky_total_from_model(ctx: RunContext, out: _Totals, stage: Any, m_limit: float,
+                          n_draws: int, target_text: str, unit: str) -> None:
+    """sky_total from the sky model's draws, with the completeness uncertainty multiplied in."""
+    from countscale import completeness as cm
+    from countscale import skymodel as sk
+    from countscale import totals as tt
+
+    prediction = stage["prediction"]
+    units = stage["units"]
+    model = stage["model"]
+    completeness = ctx.results.get("completeness")
+    gradient = cov = None
+    check = None
+    if completeness is not None:
+        _, p_hat, cov, shape_of = _completeness_perturbation(completeness["fit"])
+        depth = completeness["depth"]
+        counts = ctx.results.get("counts")
+        density = None if counts is None else counts["fit"].model_.density
+        centre_m50 = float(shape_of(p_hat).m50)
+
+        def kappa(p: np.ndarray) -> np.ndarray:
+            shape = shape_of(p)
+            moved = None if depth is None else cm.DepthMap(
+                depth.m50_mag + (float(shape.m50) - centre_m50), shape, nest=depth.nest)
+            return sk.cell_completeness(m_limit, shape, moved, density)(units.order, units.cells)
+
+        def log_exposure(p: np.ndarray) -> float:
+            return math.log(float(np.sum(units.area_deg2 * kappa(p))))
+
+        sigma = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+        gradient = np.zeros(p_hat.size)
+        for j, h in enumerate(sigma):
+            if h > 0:
+                up, down = p_hat.copy(), p_hat.copy()
+                up[j] += h
+                down[j] -= h
+                # The density scales as 1 / (exposure): d ln total = -d ln exposure.
+                gradient[j] = -(log_exposure(up) - log_exposure(down)) / (2 * h)
+        check = _sky_model_check(ctx, stage, kappa, gradient, p_hat, cov)
+    estimate = _with_budget_check(out, "sky_total", lambda: tt.sky_model_total(
+        prediction.total, gradient, cov, n_draws=n_draws, rng=ctx.rng, unit=unit))
+    out.estimates["sky_total"] = estimate
+    sets = " or ".join("(" + (", ".join(f.names_) or "constant") + ")" for f in model.fits_)
+    out.definitions["sky_total"] = (
+        f"{unit} brighter than {m_limit:g} over {target_text}: the sky model (counts per field "
+        f"regressed on sky covariates {sets}, weighted by AIC) integrated over the target, "
+        "completeness-corrected")
+    for text in prediction.warnings:
+        out.caution("sky_total", text)
+    units_exposure = float(np.sum(units.weight_deg2))
+    units_area = float(np.sum(units.area_deg2))
+    naive = out.estimates["sky_total_naive"]
+    ratio = naive.median / estimate.median
+    out.details["sky"].update({
+        "method": "sky model: counts per field regressed on sky covariates, integrated over "
+                  "the target",
+        "fraction_outside_observed_range": {"area": prediction.fraction_outside_area,
+                                            "total": prediction.fraction_outside_total},
+        "completeness": None if check is None else {
+            "method": "checked linearisation: the total scales as 1 / (area-weighted "
+                      "completeness of the counted sources), differentiated at ±1σ of each "
+                      "completeness parameter; checked by refitting the sky model 2σ along "
+                      "the widest axis",
+            "gradient_ln_total": gradient.tolist(),
+            "check": check,
+        },
+        "naive_explained": {
+            "naive_over_sky_total": float(ratio),
+            "completeness_factor": units_exposure / units_area,
+            "structure_factor": float(ratio / (units_exposure / units_area)),
+            "note": ("plain scaling takes the fields' mean density as the target's; for a "
+                     "population that changes across the sky (stars: the Galaxy's disk and "
+                     "bulge) the fields are not typical of the target"),
+        },
+    })
+
+
+def _sky_model_check(ctx: RunContext, stage: Any, kappa: Callable, gradient: np.ndarray,
+                     p_hat: np.ndarray, cov: np.ndarray) -> dict:
+    """Refit the sky model's heaviest set with the completeness 2σ away; compare."""
+    import dataclasses
+
+    from countscale import skymodel as sk
+
+    model, units, prediction = stage["model"], stage["units"], stage["prediction"]
+    values, vectors = np.linalg.eigh(0.5 * (cov + cov.T))
+    widest = int(np.argmax(values))
+    delta = 2.0 * math.sqrt(max(values[widest], 0.0)) * vectors[:, widest]
+    best = int(np.argmax(model.weights_))
+    names = model.fits_[best].names_
+    moved = dataclasses.replace(units, completeness=kappa(p_hat + delta))
+    section = ctx.runfile.sky_model
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", sk.SkyModelWarning)
+        refit = sk.SkyModel([names], model.likelihood).fit(moved, model.maps_).predict(
+            stage["target"], nside=section.nside, n_draws=100, rng=0)
+    before = prediction.per_set[best]["best_fit_total"]
+    after = refit.per_set[0]["best_fit_total"]
+    refit_dex = math.log10(after / before)
+    linear_dex = float(delta @ gradient) / math.log(10.0)
+    return {"n_sigma": 2.0, "refit_dex": refit_dex, "linear_dex": linear_dex,
+            "max_error_dex": abs(refit_dex - linear_dex),
+            "relative_error": abs(refit_dex - linear_dex) / abs(refit_dex)
+            if refit_dex else 0.0}
+
+
+def _volume_of(section: Any) -> tuple[tuple[float, float] | None, tuple[float, float], str]:
+    """(present-day shell or None for the horizon, light-cone redshifts, words)."""
+    if section.volume.kind == "observable_universe":
+        return (None, (0.0, float(section.light_cone_z_max)),
+                "the observable universe (the comoving volume inside the particle horizon)")
+    z_lo, z_hi = (float(v) for v in section.volume.redshift)
+    return (z_lo, z_hi), (z_lo, z_hi), f"the comoving shell {z_lo:g} < z < {z_hi:g}"
+
+
+def _normalisation_sigma(ctx: RunContext, fit: Any) -> tuple[float | None, str]:
+    """Cosmic variance of the fitted normalisation beyond what its draws already hold."""
+    variance = ctx.results.get("variance")
+    cosmic = None if variance is None else getattr(variance, "objects", {}).get("sigma_cv")
+    info = fit.normalisation_
+    jackknife = info["jackknife_relative_variance"]
+    held = 0.0 if jackknife is None else max(jackknife - info["poisson_relative_variance"], 0.0)
+    m_lf = float(ctx.runfile.luminosity_function.mag_limits[1])
+    if cosmic is not None:
+        try:
+            sigma = float(cosmic(m_lf))
+        except InputError as exc:
+            return None, f"no analytic cosmic variance for the normalisation ({exc})"
+        top = math.sqrt(max(sigma**2 - held, 0.0))
+        return top, (f"the normalisation's cosmic variance is the analytic {sigma:.3g} for "
+                     f"sources brighter than m = {m_lf:g} over the footprint (variance stage); "
+                     f"the fit's jackknife already held {math.sqrt(held):.3g} of it, the rest "
+                     f"({top:.3g}) is the budget's cosmic_variance")
+    if jackknife is not None:
+        return None, ("the normalisation's cosmic variance is the jackknife's (inside the "
+                      "fit's draws): it misses modes larger than the footprint")
+    return None, "no cosmic variance in the normalisation (add a [variance] section)"
+
+
+def _totals_volume(ctx: RunContext, out: _Totals, n_draws: int) -> None:
+    """present_day_volume_total, light_cone_total and, for galaxies, stars_total."""
+    from countscale import cosmology as cs
+    from countscale import totals as tt
+    from countscale.extrapolation import CosmologyDraws, LogNormal
+
+    runfile, section = ctx.runfile, ctx.runfile.totals
+    lf = ctx.results.get("luminosity_function")
+    fit = None if lf is None else lf["fit"]
+    keys = ["present_day_volume_total", "light_cone_total"] + (
+        ["stars_total"] if section.stars else [])
+    if fit is None:
+        for key in keys:
+            out.not_computed[key] = "the luminosity-function stage has no STY fit"
+        return
+    cosmo = run_cosmology(runfile)
+    quantity = fit.sample_.quantity
+    function = tt.FittedFunction(quantity, runfile.luminosity_function.model,
+                                 dict(fit.params_), cs.hubble_h(cosmo))
+    sampler = tt.FunctionDraws(function, fit.draw_params)
+    cosmology = CosmologyDraws(cosmo)
+    shell, cone, volume_text = _volume_of(section)
+    limit = float(section.faint_limit)
+    top_up, cv_note = _normalisation_sigma(ctx, fit)
+    if quantity == "luminosity":
+        limit_text = f"brighter than M = {limit:g}"
+        x = fit.sample_.x(fit.evolution_.Q)
+        data_edge = float(np.max(x))
+        beyond = limit > data_edge
+        edge_text = f"the faintest galaxy in the fit has M = {data_edge:.3g}"
+    else:
+        limit_text = f"above 10^{limit:g} Msun"
+        x = fit.sample_.x(0.0)
+        data_edge = float(np.min(x))
+        beyond = limit < data_edge
+        edge_text = f"the least massive galaxy in the fit has 10^{data_edge:.3g} Msun"
+    z_fit = tuple(float(v) for v in lf["fit_redshift_range"])
+    evolution = fit.evolution_
+    fitted = fit.fitted_evolution_
+    evo_text = (f"Q = {evolution.Q:g}, P = {evolution.P:g}"
+                + ("" if fitted else ", from the run file, not fitted"))
+    common = {"faint_limit": limit, "limit_text": limit_text, "volume": volume_text,
+              "fit_redshift_range": list(z_fit), "evolution": evo_text,
+              "normalisation_cosmic_variance": {"sigma": top_up, "note": cv_note}}
+    present = _with_budget_check(out, "present_day_volume_total", lambda: tt.present_day_total(
+        function, sampler, limit, cosmology, shell, n_draws, ctx.rng,
+        normalisation_sigma=top_up))
+    cone_total = _with_budget_check(out, "light_cone_total", lambda: tt.light_cone_total(
+        function, sampler, limit, cosmology, cone, n_draws, ctx.rng,
+        normalisation_sigma=top_up))
+    out.estimates["present_day_volume_total"] = present
+    out.estimates["light_cone_total"] = cone_total
+    out.definitions["present_day_volume_total"] = (
+        f"present-day density × volume: today's number density of galaxies {limit_text} "
+        f"(the fitted function at z = 0) times the comoving volume of {volume_text}; the "
+        "volume filled with galaxies as they are now, not as we see them")
+    out.definitions["light_cone_total"] = (
+        f"along our past light cone: galaxies {limit_text} counted in each redshift shell as "
+        f"it was when its light left it (∫ n(z) dV/dz dz, {cone[0]:g} < z < {cone[1]:g}, "
+        f"fitted function with its evolution, {evo_text}); what a complete survey of the "
+        "whole sky would catalogue")
+    for key in ("present_day_volume_total", "light_cone_total"):
+        if beyond:
+            out.caution(key, f"faint-end extrapolation: the limit ({limit_text}) lies beyond "
+                        f"the data ({edge_text}); the fitted form's faint end is assumed to "
+                        "continue")
+    if cone[1] > z_fit[1] + 1e-9 or cone[0] < z_fit[0] - 1e-9:
+        out.caution("light_cone_total",
+                    f"evolution extrapolation: the function was fitted at {z_fit[0]:g} < z < "
+                    f"{z_fit[1]:g}; the light cone to z = {cone[1]:g} carries its evolution "
+                    f"({evo_text}) beyond the data, an assumption not a measurement, and its "
+                    "error is not in the budget")
+    if shell is not None and (shell[1] > z_fit[1] + 1e-9 or shell[0] < z_fit[0] - 1e-9):
+        out.caution("present_day_volume_total",
+                    f"the shell {shell[0]:g} < z < {shell[1]:g} reaches beyond the redshifts of "
+                    f"the fit ({z_fit[0]:g}–{z_fit[1]:g}); it is filled with the z = 0 density",
+                    False)
+    out.details["volume"] = {**common, "present_over_light_cone":
+                             present.median / cone_total.median}
+    if section.stars and runfile.catalog.population == "galaxies":
+        _totals_stars(ctx, out, function, sampler, cosmology, shell, volume_text, top_up,
+                      n_draws, LogNormal)
+
+
+def _totals_stars(ctx: RunContext, out: _Totals, function: Any, sampler: Any, cosmology: Any,
+                  shell: Any, volume_text: str, top_up: float | None, n_draws: int,
+                  lognormal: Any) -> None:
+    from countscale import totals as tt
+
+    section = ctx.runfile.totals
+    imfs = [section.imf] if isinstance(section.imf, str) else list(section.imf)
+    per_msun = tt.stars_per_msun_sampler(imfs, section.mass_imf)
+    m2l = section.mass_to_light
+    mass_to_light = None if m2l is None else lognormal(m2l.value, m2l.sigma_dex)
+    try:
+        estimate = _with_budget_check(out, "stars_total", lambda: tt.stars_total(
+            function, sampler, cosmology, per_msun, shell, mass_to_light,
+            None if m2l is None else m2l.sun_abs_mag, n_draws, ctx.rng,
+            normalisation_sigma=top_up))
+    except InputError as exc:
+        out.not_computed["stars_total"] = f"the stellar mass density cannot be formed ({exc})"
+        return
+    out.estimates["stars_total"] = estimate
+    if function.quantity == "luminosity":
+        mass_text = (f"the luminosity density × a mass-to-light ratio of {m2l.value:g} "
+                     f"(± {m2l.sigma_dex:g} dex; {m2l.source}; Sun at M = {m2l.sun_abs_mag:g})")
+    else:
+        mass_text = "the fitted mass function's ∫ M Φ dM"
+    imf_text = " or ".join(imfs)
+    out.definitions["stars_total"] = (
+        f"stars in {volume_text} today (present-day density × volume): the stellar mass "
+        f"density ({mass_text}, masses for a {section.mass_imf} IMF) × the comoving volume ÷ "
+        f"the mean stellar mass of the {imf_text} IMF (every star ever formed, counted at birth "
+        "mass from 0.08 to 100 Msun; remnants not counted)")
+    # Stated systematics: the IMFs not drawn, and counting only living stars.
+    base = tt.stars_per_msun_sampler(imfs[0], section.mass_imf)
+    centre = float(np.asarray(base.central(1))[0])
+    systematics = []
+    for name in ("chabrier", "kroupa", "salpeter"):
+        if name not in imfs:
+            other = float(np.asarray(tt.stars_per_msun_sampler(name, section.mass_imf)
+                                     .central(1))[0])
+            systematics.append({"name": f"imf_{name}", "effect_log10": math.log10(other / centre),
+                                "note": f"with the {name} IMF instead of {imfs[0]}"})
+    living = float(np.asarray(tt.stars_per_msun_sampler(imfs[0], section.mass_imf,
+                                                         turnoff_mass=1.0).central(1))[0])
+    systematics.append({"name": "living_stars", "effect_log10": math.log10(living / centre),
+                        "note": "counting only stars alive in an old population (turnoff 1 "
+                                "Msun; the mass of remnants kept in the stellar mass)"})
+    out.details["stars"] = {"imf": imfs, "mass_imf": section.mass_imf,
+                            "quantity_counted": "stars in the volume",
+                            "systematics": systematics}
+    for item in systematics:
+        out.caution("stars_total", f"{item['note']}: {item['effect_log10']:+.2f} dex", False)
+    if m2l is not None and m2l.source.strip().lower() in ("assumed", "assumption", "guess"):
+        out.caution("stars_total", f"the mass-to-light ratio ({m2l.value:g}) is assumed, not "
+                    "measured")
+    if section.galaxy_log10_mass is not None:
+        galaxy = tt.stars_per_galaxy(section.galaxy_log10_mass, per_msun, n_draws, ctx.rng)
+        out.estimates["stars_per_galaxy"] = galaxy
+        mass = 10.0 ** section.galaxy_log10_mass
+        out.details["stars"]["stars_per_galaxy_by_imf"] = {
+            name: mass * float(np.asarray(tt.stars_per_msun_sampler(name, section.mass_imf)
+                                          .central(1))[0]) for name in imfs}
+        out.definitions["stars_per_galaxy"] = (
+            f"stars in one galaxy of stellar mass 10^{section.galaxy_log10_mass:g} Msun "
+            f"({section.mass_imf} IMF masses) ÷ the mean stellar mass of the {imf_text} IMF")
+
+
+def _totals_columns(runfile: Any) -> tuple[str, ...]:
+    """The magnitudes, for counting the sources brighter than the sky totals' limit."""
+    return ("mag",) if runfile.totals.whole_sky_mag_limit is not None else ()
+
+
+def _stage_totals(ctx: RunContext) -> StageResult:
+    """Totals over the target sky, a volume and the light cone, and in stars (``[totals]``).
+
+    ``results["totals"]``: the Estimates ``sky_total`` (sources brighter than
+    ``whole_sky_mag_limit`` over ``target_sky``), ``sky_total_naive`` (plain area scaling),
+    ``present_day_volume_total``, ``light_cone_total``, ``stars_total`` (and
+    ``stars_per_galaxy`` with ``galaxy_log10_mass``), each with its budget; ``warnings``
+    (extrapolations beyond the data); ``definitions`` and ``cautions`` per total (what the
+    number means and what to say beside it); ``dominant_source`` per total; ``details`` (how
+    each was made: the count-model weights, the completeness linearisation and its check,
+    why plain scaling differs, the volume, the IMF systematics); ``not_computed`` (totals the
+    run cannot give, and why); ``n_draws``.
+
+    Which route gives ``sky_total``: with a sky model (stars, or ``[sky_model]``), the sky
+    model's draws with the completeness uncertainty multiplied in; otherwise (galaxies, a
+    population the same everywhere) the fitted counts times the target's area
+    (:class:`countscale.totals.SkyTotal`). For ``population = "stars"``, ``stars_total`` is
+    ``sky_total`` (stars on the sky brighter than the limit); for galaxies it is the stars in
+    ``[totals] volume``.
+    """
+    section = ctx.runfile.totals
+    out = _Totals()
+    n_draws = int(section.draws)
+    sky = None
+    if section.whole_sky_mag_limit is None:
+        for key in ("sky_total", "sky_total_naive"):
+            out.not_computed[key] = "no [totals] whole_sky_mag_limit"
+    else:
+        sky = _totals_sky(ctx, out, n_draws)
+    population = ctx.runfile.catalog.population
+    if section.volume is None:
+        for key in ("present_day_volume_total", "light_cone_total"):
+            out.not_computed[key] = ("no [totals] volume" if population == "galaxies" else
+                                     "volume totals apply to galaxies")
+    else:
+        _totals_volume(ctx, out, n_draws)
+    if section.stars and population == "stars":
+        if "sky_total" in out.estimates:
+            out.estimates["stars_total"] = out.estimates["sky_total"]
+            out.definitions["stars_total"] = ("stars on the sky: the same number as sky_total ("
+                                              + out.definitions["sky_total"] + ")")
+            if out.cautions.get("sky_total"):
+                out.cautions["stars_total"] = list(out.cautions["sky_total"])
+            out.details["stars"] = {"quantity_counted": "stars on the sky brighter than the "
+                                                        "limit (sky_total)"}
+        else:
+            out.not_computed["stars_total"] = "stars on the sky need sky_total"
+    elif not section.stars:
+        out.not_computed["stars_total"] = "[totals] stars = false"
+    return StageResult(out.to_json(n_draws), {"estimates": dict(out.estimates), "sky": sky})
+
+
+#: The stages, in order.
 STAGES: list[Stage] = [
     Stage("tally", ("catalog", "footprint"), _stage_tally, reads=("extinction",)),
     Stage("completeness", ("completeness",), _stage_completeness),
@@ -1615,6 +2319,7 @@ STAGES: list[Stage] = [
           reads=("contamination",)),
     Stage("sky_model", ("catalog", "footprint"), _stage_sky_model, columns=("mag", "cell"),
           when=_wants_sky_model, reads=("sky_model",)),
+    Stage("totals", ("totals",), _stage_totals, columns=_totals_columns, reads=("cosmology",)),
 ]
 
 

@@ -10,6 +10,8 @@ luminosity_function_figure
     1/Vmax, SWML and the STY curve on one plot, and the M*-alpha error ellipse.
 sky_model_figure, contamination_figure
     The sky model (densities per unit, residuals, totals); stars among the sources per bin.
+totals_figure, totals_budget_figure
+    The run's totals with their intervals; their error budgets as stacked bars.
 
 Each figure function writes its PNG and returns a list of notes: one sentence for each part
 of the figure left empty and why (no bin complete enough to correct, ...), so that the report
@@ -638,3 +640,143 @@ def plan_figure(plan, path, title=None):
     ax.legend(fontsize=7.5, loc="lower left")
     fig.tight_layout()
     _save(fig, path)
+
+
+#: Totals drawn in the totals figure, grouped by panel (the same unit within a panel).
+_TOTAL_PANELS = (
+    ("Sources over the sky", (("sky_total", "sky_total"),
+                              ("sky_total_naive", "plain area scaling"))),
+    ("Galaxies in a volume", (("present_day_volume_total", "present-day density × volume"),
+                              ("light_cone_total", "along our past light cone"))),
+    ("Stars", (("stars_total", "stars_total"),)),
+    ("Stars in one galaxy", (("stars_per_galaxy", "stars_per_galaxy"),)),
+)
+
+
+def totals_figure(totals, path, title=None):
+    """The totals: median, 68 % and 95 % intervals on a log scale, a panel per kind.
+
+    Parameters
+    ----------
+    totals : mapping
+        The ``totals`` block of ``results.json``.
+    path : path
+        PNG to write.
+    """
+    plt = _pyplot()
+    from matplotlib import ticker
+
+    counted = ((totals.get("details") or {}).get("stars") or {}).get("quantity_counted", "")
+    same_as_sky = counted.startswith("stars on the sky")  # stars_total is sky_total then
+    panels = [(name, [(key, label) for key, label in rows if isinstance(totals.get(key), dict)
+                      and not (key == "stars_total" and same_as_sky)])
+              for name, rows in _TOTAL_PANELS]
+    panels = [(name, rows) for name, rows in panels if rows]
+    if not panels:
+        return _empty_totals_figure(path, title, "no total was computed")
+    heights = [len(rows) + 0.9 for _, rows in panels]
+    fig, axes = plt.subplots(len(panels), 1, figsize=(10, 1.0 + 0.62 * sum(heights)),
+                             gridspec_kw={"height_ratios": heights}, squeeze=False)
+    cautions = totals.get("cautions", {})
+    for ax, (name, rows) in zip(axes[:, 0], panels, strict=True):
+        values = []
+        for i, (key, _label) in enumerate(rows):
+            est = totals[key]
+            y = len(rows) - 1 - i
+            colour = "tab:grey" if key == "sky_total_naive" else "tab:blue"
+            lo95, hi95 = est["interval_95"]
+            lo68, hi68 = est["interval_68"]
+            ax.plot([lo95, hi95], [y, y], color=colour, lw=1.3)
+            ax.plot([lo68, hi68], [y, y], color=colour, lw=6, solid_capstyle="butt")
+            ax.plot(est["median"], y, "o", color="white", mec=colour, ms=7, zorder=3)
+            values += [lo95, hi95]
+            flag = " (!)" if cautions.get(key) else ""
+            ax.text(1.01, y, f"{est['median']:.3g} {est['unit']}{flag}", va="center",
+                    fontsize=8, color="tab:red" if flag else "black",
+                    transform=ax.get_yaxis_transform())
+        ax.set_yticks(range(len(rows)))
+        ax.set_yticklabels([label for _, label in reversed(rows)], fontsize=8.5)
+        ax.set_ylim(-0.7, len(rows) - 0.3)
+        lo, hi = min(values), max(values)
+        span = np.log10(hi / lo)
+        margin = 10 ** max(0.15 * span, 0.01)
+        if span > 0.5:
+            ax.set_xscale("log")
+            ax.set_xlim(lo / margin, hi * margin)
+        else:  # a narrow range reads better on a linear axis
+            ax.set_xlim(lo / margin, hi * margin)
+            ax.xaxis.set_major_formatter(ticker.ScalarFormatter(useMathText=True))
+            ax.ticklabel_format(axis="x", style="sci", scilimits=(0, 0))
+        ax.set_title(name, fontsize=9.5, loc="left")
+        ax.grid(alpha=0.3, which="both", axis="x")
+    legend = ("median (circle), 68 % (thick) and 95 % (thin) intervals; (!) = a caution in the "
+              "report")
+    fig.suptitle(f"{title}\n{legend}" if title else legend, fontsize=10)
+    fig.tight_layout()
+    fig.subplots_adjust(right=0.8)
+    _save(fig, path)
+    return []
+
+
+def _empty_totals_figure(path, title, reason):
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(8, 2.5))
+    ax.axis("off")
+    ax.text(0.5, 0.5, reason, ha="center", va="center", fontsize=11)
+    if title:
+        ax.set_title(title, fontsize=11)
+    _save(fig, path)
+    return [reason]
+
+
+def totals_budget_figure(totals, path, title=None):
+    """The error budgets of the totals: each source's share of the variance of log10.
+
+    One horizontal bar per total (plain area scaling left out: Poisson only), split by
+    source, with the 68 % interval's half-width in dex beside its name.
+    """
+    plt = _pyplot()
+    counted = ((totals.get("details") or {}).get("stars") or {}).get("quantity_counted", "")
+    skip = {"sky_total_naive"} | ({"stars_total"} if counted.startswith("stars on the sky")
+                                  else set())
+    keys = [key for key, _ in (row for _, rows in _TOTAL_PANELS for row in rows)
+            if key not in skip and isinstance(totals.get(key), dict)
+            and totals[key].get("budget")]
+    sources = []
+    for key in keys:
+        for source in totals[key]["budget"]:
+            if source not in sources:
+                sources.append(source)
+    if not keys:
+        return _empty_totals_figure(path, title, "no total has an error budget")
+    cmap = plt.get_cmap("tab20")
+    colours = {s: cmap(i % 20) for i, s in enumerate(sources)}
+    fig, ax = plt.subplots(figsize=(10.5, 1.5 + 0.5 * max(len(keys), 1)))
+    labels = []
+    for i, key in enumerate(keys):
+        y = len(keys) - 1 - i
+        left = 0.0
+        for source in sources:
+            share = float(totals[key]["budget"].get(source, 0.0))
+            if share <= 0:
+                continue
+            ax.barh(y, share, left=left, color=colours[source], edgecolor="white", lw=0.5)
+            if share >= 0.06:
+                ax.text(left + share / 2, y, f"{share:.0%}", ha="center", va="center",
+                        fontsize=7.5)
+            left += share
+        lo, hi = totals[key]["interval_68"]
+        width = 0.5 * np.log10(hi / lo) if lo > 0 else float("nan")
+        labels.append(f"{key}\n(±{width:.3f} dex)")
+    ax.set_yticks(range(len(keys)))
+    ax.set_yticklabels(list(reversed(labels)), fontsize=8)
+    ax.set_xlim(0, 1)
+    ax.set_xlabel("share of the variance of log10 of the total")
+    handles = [plt.Rectangle((0, 0), 1, 1, color=colours[s]) for s in sources]
+    ax.legend(handles, sources, fontsize=7.5, loc="center left", bbox_to_anchor=(1.01, 0.5),
+              title="source", title_fontsize=8)
+    if title:
+        ax.set_title(title, fontsize=11)
+    fig.tight_layout()
+    _save(fig, path)
+    return []

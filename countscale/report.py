@@ -978,6 +978,157 @@ def _variance_markdown(variance: Mapping[str, Any]) -> list[str]:
     return out
 
 
+# --------------------------------------------------------------------------------------------
+# Totals
+# --------------------------------------------------------------------------------------------
+
+#: The totals in the order reports list them, with a short label.
+TOTALS_ORDER = (
+    ("sky_total", "over the sky"),
+    ("sky_total_naive", "plain area scaling"),
+    ("present_day_volume_total", "present-day density × volume"),
+    ("light_cone_total", "along our past light cone"),
+    ("stars_total", "stars"),
+    ("stars_per_galaxy", "stars per galaxy"),
+)
+
+
+def _sig(x: float, digits: int = 3) -> str:
+    return f"{x:.{digits}g}" if 1e-3 <= abs(x) < 1e6 else f"{x:.{digits - 1}e}"
+
+
+def _range(pair: list[float]) -> str:
+    return f"{_sig(pair[0])} – {_sig(pair[1])}"
+
+
+def _totals_markdown(totals: Mapping[str, Any]) -> list[str]:
+    """The report's Totals section: the table, budgets, and why the definitions differ."""
+    n_draws = totals.get("n_draws")
+    definitions = totals.get("definitions", {})
+    cautions = totals.get("cautions", {})
+    out = [
+        "## Totals",
+        "",
+        "What the survey implies beyond its footprint. Each total is a Monte Carlo estimate"
+        + (f" ({n_draws:,d} draws of every uncertain input)" if n_draws else "")
+        + "; its budget gives each input's share of the variance of log10 of the total. "
+        "Read each number with its definition: they answer different questions.",
+        "",
+        "| total | median | 68 % | 95 % | dominant source | definition and caution |",
+        "|---|---:|---|---|---|---|",
+    ]
+    for key, label in TOTALS_ORDER:
+        est = totals.get(key)
+        if not isinstance(est, Mapping):
+            continue
+        dominant = (totals.get("dominant_source") or {}).get(key)
+        share = est.get("budget", {}).get(dominant) if dominant else None
+        dominant_text = "—" if dominant is None else f"{dominant} ({share:.0%})"
+        words = definitions.get(key, "")
+        warn = "".join(f" **Caution: {c.rstrip('.')}.**" for c in cautions.get(key, []))
+        out.append(f"| `{key}` ({label}) | {_sig(est['median'])} {est['unit']} | "
+                   f"{_range(est['interval_68'])} | {_range(est['interval_95'])} | "
+                   f"{dominant_text} | {words}.{warn} |")
+    out += ["", "Budgets (shares of the variance of log10 of each total):", ""]
+    for key, _ in TOTALS_ORDER:
+        est = totals.get(key)
+        if isinstance(est, Mapping) and est.get("budget"):
+            out.append(f"- `{key}`: " + ", ".join(
+                f"{k} {v:.1%}" for k, v in sorted(est["budget"].items(), key=lambda kv: -kv[1])))
+    details = totals.get("details", {})
+    sky = details.get("sky", {})
+    explained = sky.get("naive_explained")
+    if explained and "sky_total" in totals and "sky_total_naive" in totals:
+        out += ["", "### Plain area scaling against `sky_total`", ""]
+        ratio = explained["naive_over_sky_total"]
+        if "scatter_factor" in explained:
+            cv = explained.get("cosmic_variance_sigma")
+            out.append(
+                f"Plain area scaling gives {ratio:.4g} × `sky_total`. The raw count misses the "
+                f"sources the survey did not detect (completeness: × "
+                f"{explained['completeness_factor']:.4g}) and holds sources scattered across "
+                f"the limit by photometric errors, more of them in than out on rising counts "
+                f"(scatter, the Eddington bias: × {explained['scatter_factor']:.4g}); together "
+                f"× {explained['expected_naive_over_sky_total']:.4g}. The rest, × "
+                f"{explained['this_field_over_model']:.4g}, is this field against the "
+                "population's mean: large-scale structure made this footprint what it is"
+                + (f" (cosmic variance σ = {cv:.3g}), and plain scaling carries it to the "
+                   "whole target unchanged" if cv is not None else "")
+                + ".")
+        elif "structure_factor" in explained:
+            out.append(
+                f"Plain area scaling gives {ratio:.4g} × `sky_total`: completeness × "
+                f"{explained['completeness_factor']:.4g}, and the population's change across "
+                f"the sky × {explained['structure_factor']:.4g} ({explained['note']}).")
+        holes = explained.get("holes")
+        if holes:
+            out.append("")
+            out.append(
+                f"Holes: the footprint's outline covers {holes['area_without_holes_deg2']:.5g} "
+                "deg²; dividing the count by that area instead of the measured one would move "
+                f"plain scaling by × {holes['naive_if_holes_ignored_factor']:.4g}.")
+    count_models = sky.get("count_models")
+    if count_models and count_models.get("weights"):
+        out += ["", "Count models mixed in `sky_total` (" + count_models["criterion"]
+                + f"; c_hat = {count_models['c_hat']:.3g}): "
+                + ", ".join(f"{k} {w:.3g}" for k, w in count_models["weights"].items()) + "."]
+    completeness = sky.get("completeness")
+    if completeness:
+        check = completeness["check"]
+        out += ["", f"Completeness in the budget: {completeness['method']}; at "
+                f"{check['n_sigma']:g}σ the refit moves the total by "
+                f"{check.get('max_effect_dex', check.get('refit_dex', 0.0)):.2g} dex, the "
+                f"linear form misses by {check['max_error_dex']:.2g} dex."]
+    if sky.get("cosmic_variance"):
+        out += ["", f"Cosmic variance in `sky_total`: {sky['cosmic_variance']['note']}."]
+    volume = details.get("volume")
+    if volume and "present_day_volume_total" in totals and "light_cone_total" in totals:
+        out += ["", "### Present-day density × volume against the past light cone", "",
+                f"Galaxies {volume['limit_text']}: filling {volume['volume']} with today's "
+                f"density gives {volume['present_over_light_cone']:.3g} × the number along our "
+                "past light cone. The light cone sees each shell as it was, when galaxies "
+                "were different; the two are different questions, and quoted totals that "
+                "disagree often answer different ones. "
+                + volume["normalisation_cosmic_variance"]["note"].capitalize() + "."]
+    stars = details.get("stars")
+    if stars and "systematics" in stars:
+        out += ["", "### Stars: stated systematics (not in the budget)", ""]
+        out += [f"- {item['note']}: {item['effect_log10']:+.2f} dex"
+                for item in stars["systematics"]]
+        by_imf = stars.get("stars_per_galaxy_by_imf")
+        if by_imf:
+            out += ["", "Stars per galaxy, by IMF (`stars_per_galaxy` mixes them): "
+                    + ", ".join(f"{name} {_sig(value)}" for name, value in by_imf.items())
+                    + "."]
+    elif stars:
+        out += ["", f"`stars_total` counts {stars['quantity_counted']}."]
+    for text in totals.get("warnings", []):
+        out += ["", f"**Warning:** {text.rstrip('.')}."]
+    not_computed = totals.get("not_computed", {})
+    if not_computed:
+        out += ["", "Not computed: " + "; ".join(f"`{k}` ({v})"
+                                                 for k, v in not_computed.items()) + "."]
+    return out
+
+
+def _totals_text(totals: Mapping[str, Any]) -> list[str]:
+    """The totals lines of the command line's summary."""
+    lines = [""]
+    head = "totals"
+    for key, label in TOTALS_ORDER:
+        est = totals.get(key)
+        if not isinstance(est, Mapping):
+            continue
+        dominant = (totals.get("dominant_source") or {}).get(key)
+        lines.append(f"{head:<16}{key} ({label}): {_sig(est['median'])} {est['unit']} "
+                     f"(68 %: {_range(est['interval_68'])}; 95 %: "
+                     f"{_range(est['interval_95'])})"
+                     + (f"; dominant: {dominant}" if dominant else ""))
+        head = ""
+    lines += [f"                WARNING: {w}" for w in totals.get("warnings", [])]
+    return lines
+
+
 #: The report's sections after the summary and the footprint, in order. A stage adds its
 #: entry here: its results key, a function of its block returning Markdown lines (from its
 #: ``## `` heading on), and its figures (names in :data:`FIGURE_NAMES`, with their words).
@@ -991,6 +1142,9 @@ STAGE_SECTIONS: list[StageSection] = [
     StageSection("contamination", _contamination_markdown,
                  (("contamination", "stars among the sources"),)),
     StageSection("sky_model", _sky_model_markdown, (("sky_model", "sky model"),)),
+    StageSection("totals", _totals_markdown,
+                 (("totals", "totals with their intervals"),
+                  ("totals_budget", "error budgets of the totals"))),
 ]
 
 
@@ -1082,6 +1236,8 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
         if outside["area"] > 0:
             lines.append(f"                WARNING: {100 * outside['area']:.3g} % of the target "
                          "lies outside the covariate range observed (an extrapolation)")
+    if "totals" in results:
+        lines += _totals_text(results["totals"])
     for name, notes in results.get("figure_notes", {}).items():
         lines += [f"figure {name:<9}{note}" for note in notes]
     other = _other_warnings(results)
@@ -1134,7 +1290,8 @@ def summary_text(summary: Mapping[str, Any]) -> list[str]:
 FIGURE_NAMES = {"footprint": "footprint.png", "completeness": "completeness.png",
                 "counts": "counts.png", "luminosity_function": "luminosity_function.png",
                 "variance": "variance.png", "contamination": "contamination.png",
-                "sky_model": "sky_model.png"}
+                "sky_model": "sky_model.png", "totals": "totals.png",
+                "totals_budget": "totals_budget.png"}
 
 
 def figure_names(results: Mapping[str, Any], formats: Iterable[str],
@@ -1153,6 +1310,9 @@ def figure_names(results: Mapping[str, Any], formats: Iterable[str],
     if (results.get("variance") or {}).get("area_curve"):
         names.append("variance")
     names += [name for name in ("contamination", "sky_model") if name in results]
+    totals = results.get("totals") or {}
+    if any(isinstance(v, Mapping) and "median" in v for v in totals.values()):
+        names += ["totals", "totals_budget"]
     return {name: FIGURE_NAMES[name] for name in names}
 
 
@@ -1218,6 +1378,10 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
             "contamination": lambda p: plots.contamination_figure(results["contamination"], p),
             "sky_model": lambda p: plots.sky_model_figure(
                 results["sky_model"], p, title=f"{title}: sky model"),
+            "totals": lambda p: plots.totals_figure(
+                results["totals"], p, title=f"{title}: totals"),
+            "totals_budget": lambda p: plots.totals_budget_figure(
+                results["totals"], p, title=f"{title}: error budgets of the totals"),
         }
         for name in figure_names(results, formats, footprint):
             figures[name] = drawers[name]

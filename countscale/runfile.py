@@ -42,6 +42,8 @@ What the validated values look like
   ``H0`` and ``Om0`` with ``name = None``.
 * ``[totals].target_sky`` is a tuple of :class:`FootprintItem` (any kind but ``occupancy``), or
   None for the whole sky; :func:`countscale.skymodel.target_sky_footprint` builds it.
+  ``[totals].imf`` is a name, or a tuple of names (a mixture); ``[totals].mass_to_light`` a
+  :class:`Table` of ``value``, ``sigma_dex``, ``sun_abs_mag`` and ``source``.
 * ``[extinction]`` has ``map`` (a path) and exactly one of ``coefficient`` (R) and ``band`` (a
   name of :data:`countscale.extinction.COEFFICIENTS`).
 * ``[sky_model].covariate_sets`` is a tuple of tuples of names (None: the defaults for the
@@ -646,6 +648,25 @@ def _volume() -> Check:
     return check
 
 
+_IMF_NAMES = ("kroupa", "chabrier", "salpeter")
+
+
+def _imf_choice() -> Check:
+    one = _choice(_IMF_NAMES)
+    several = _subset(_IMF_NAMES)
+    rule = ("must be an IMF name or a list of distinct IMF names from "
+            + ", ".join(f'"{n}"' for n in _IMF_NAMES))
+
+    def check(value: Any, where: _Where) -> str | tuple[str, ...]:
+        if isinstance(value, str):
+            return one(value, where)
+        if isinstance(value, list):
+            return several(value, where)
+        raise where.type_error(rule, value)
+
+    return check
+
+
 def _power_of_two(lo: int, hi: int) -> Check:
     rule = f"must be a power of 2 in [{lo}, {hi}]"
 
@@ -1218,10 +1239,38 @@ SECTIONS: dict[str, Section] = {
         {
             "whole_sky_mag_limit": Key(_real()),
             "volume": Key(_volume()),
+            # Absolute magnitude (luminosity function: brighter than it) or log10 stellar mass
+            # in Msun (mass function: more massive) of the volume and light-cone totals.
             "faint_limit": Key(_real()),
             "stars": Key(_boolean(), False),
-            # Chabrier 2003, PASP 115, 763: the IMF most stellar-mass catalogues assume.
-            "imf": Key(_choice(["kroupa", "chabrier", "salpeter"]), "chabrier"),
+            # The IMF whose stars are counted; a list makes the IMF choice a mixture in the
+            # budget. Chabrier 2003, PASP 115, 763: the IMF most stellar-mass catalogues assume.
+            "imf": Key(_imf_choice(), "chabrier"),
+            # The IMF the stellar masses (catalogue masses or the mass-to-light ratio) were
+            # derived with.
+            "mass_imf": Key(_choice(_IMF_NAMES), "chabrier"),
+            # Stars from a luminosity function: its luminosity density times this ratio.
+            "mass_to_light": Key(
+                _table(
+                    {
+                        "value": Key(_real(0.0, lo_open=True, unit="(Msun / Lsun)"), REQUIRED),
+                        "sigma_dex": Key(_real(0.0, 2.0), REQUIRED),
+                        # The Sun's absolute magnitude in the band of [catalog] mag.
+                        "sun_abs_mag": Key(_real(-10.0, 20.0), REQUIRED),
+                        # Where the ratio comes from (a citation, or "assumed").
+                        "source": Key(_text(), REQUIRED),
+                    },
+                    rule="must be a table {value = , sigma_dex = , sun_abs_mag = , source = }",
+                ),
+            ),
+            # Stars in one galaxy of this log10 stellar mass [Msun] (reported when given).
+            "galaxy_log10_mass": Key(_real(3.0, 14.0)),
+            # How far along the past light cone the light-cone total reaches when `volume` is
+            # "observable_universe" (a choice of this project: z = 8, where galaxy counts of
+            # the literature stop; beyond it the fitted evolution is all there is).
+            "light_cone_z_max": Key(_real(0.0, 30.0, lo_open=True), 8.0),
+            # Monte Carlo draws per total (10^4 takes a few seconds).
+            "draws": Key(_integer(1000, 1_000_000), 10_000),
             # The part of the sky totals are for (union of footprint items); absent: all of it.
             "target_sky": Key(_target_sky_items()),
         }
@@ -1364,11 +1413,40 @@ def _check_contamination(
                          f"one of them; got classifier = {_show(sections['catalog'].classifier)}")
 
 
+def _check_totals(
+    sections: Mapping[str, Table], present: frozenset[str], where: _Where
+) -> None:
+    if "totals" not in present or "catalog" not in present:
+        return
+    here = where.in_section("totals")
+    totals = sections["totals"]
+    population = sections["catalog"].population
+    if totals.volume is not None:
+        if population != "galaxies":
+            raise InputError(f"{here.key('volume')} totals over a volume apply to galaxies; got "
+                             f"[catalog] population = {_show(population)}")
+        if "luminosity_function" not in present:
+            raise InputError(f"{here.key('volume')} needs a [luminosity_function] section (the "
+                             "number density comes from its fit); got none")
+        if totals.faint_limit is None:
+            raise InputError(f"{here.key('volume')} needs 'faint_limit' (an absolute magnitude, "
+                             "or a log10 stellar mass for a mass function); got none")
+    if totals.stars and population == "galaxies":
+        if totals.volume is None:
+            raise InputError(f"{here.key('stars')} = true counts the stars in 'volume'; got no "
+                             "'volume'")
+        quantity = sections["luminosity_function"].quantity
+        if quantity == "luminosity" and totals.mass_to_light is None:
+            raise InputError(f"{here.key('stars')} = true with a luminosity function needs "
+                             "'mass_to_light' (light is not mass); got none")
+
+
 _FILE_CHECKS: tuple[Callable[[Mapping[str, Table], frozenset[str], _Where], None], ...] = (
     _check_redshifts_for_lf,
     _check_masses_for_mf,
     _check_sky_model,
     _check_contamination,
+    _check_totals,
 )
 
 

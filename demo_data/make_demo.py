@@ -260,6 +260,40 @@ def add_bad_rows(frame, rng):
     return out, bad_ids, positions
 
 
+MASS_TO_LIGHT_SOURCE = (
+    "local stellar mass density (Baldry et al. 2012, MNRAS 421, 621) over the 0.1r luminosity "
+    "density (Blanton et al. 2003, ApJ 592, 819), computed; width assumed")
+
+
+def totals_section(population, whole_sky_mag):
+    """The demo's [totals]: the sky, the observable universe, the light cone, and stars."""
+    if population != "galaxies":
+        return f"[totals]\nwhole_sky_mag_limit = {whole_sky_mag}\nstars = true\n"
+    # The r-band mass-to-light ratio is the local stellar mass density of Baldry et al. 2012
+    # (MNRAS 421, 621; 2.23e8 Msun Mpc^-3 for H0 = 70, Chabrier IMF) over the 0.1r
+    # luminosity density of Blanton et al. 2003 (ApJ 592, 819; 1.84e8 h Lsun Mpc^-3): 1.7,
+    # computed here; both scale as h, so the ratio does not depend on H0.
+    return f"""[totals]
+whole_sky_mag_limit = {whole_sky_mag}
+# Galaxies brighter than M_r = -17 in the observable universe: today's density x volume, and
+# along the past light cone to z = 8 (light_cone_z_max, the default).
+volume = "observable_universe"
+faint_limit = -17.0
+stars = true
+imf = ["chabrier", "kroupa"]
+mass_imf = "chabrier"
+# Stars in one galaxy of the Milky Way's stellar mass (Licquia & Newman 2015, ApJ 806, 96).
+galaxy_log10_mass = 10.78
+
+# Sun: M = 4.76 in the 0.1r band of Blanton et al. 2003 (from memory).
+[totals.mass_to_light]
+value = 1.7
+sigma_dex = 0.15
+sun_abs_mag = 4.76
+source = "{MASS_TO_LIGHT_SOURCE}"
+"""
+
+
 def runfile_text(name, box_spec, catalogue, population, spec_limit, counts_range,
                  whole_sky_mag):
     ra, dec = box_spec["ra"], box_spec["dec"]
@@ -310,10 +344,7 @@ fit_range = [{counts_range[2]}, {counts_range[3]}]
 methods = ["jackknife", "analytic"]
 regions = 24
 
-[totals]
-whole_sky_mag_limit = {whole_sky_mag}
-stars = {'true' if population == 'stars' else 'false'}
-
+{totals_section(population, whole_sky_mag)}
 [cosmology]
 name = "Planck18"
 

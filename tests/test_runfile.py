@@ -112,7 +112,12 @@ FULL = textwrap.dedent(
     volume = {redshift = [0.0, 3.0]}
     faint_limit = 30.0
     stars = true
-    imf = "kroupa"
+    imf = ["kroupa", "chabrier"]
+    mass_imf = "kroupa"
+    mass_to_light = {value = 1.7, sigma_dex = 0.1, sun_abs_mag = 4.76, source = "assumed"}
+    galaxy_log10_mass = 10.8
+    light_cone_z_max = 6.0
+    draws = 20000
     target_sky = [{galactic_latitude_above = 30}, {cap = {ra = 10.0, dec = 5.0, radius = 3}}]
 
     [extinction]
@@ -279,7 +284,13 @@ def test_full_runfile_round_trip(full_file: Path) -> None:
         "volume": {"kind": "redshift", "redshift": (0.0, 3.0)},
         "faint_limit": 30.0,
         "stars": True,
-        "imf": "kroupa",
+        "imf": ("kroupa", "chabrier"),
+        "mass_imf": "kroupa",
+        "mass_to_light": {"value": 1.7, "sigma_dex": 0.1, "sun_abs_mag": 4.76,
+                          "source": "assumed"},
+        "galaxy_log10_mass": 10.8,
+        "light_cone_z_max": 6.0,
+        "draws": 20000,
     }
     assert [(item.kind, item.params) for item in target] == [
         ("galactic_latitude_above", {"b_deg": 30.0}),
@@ -393,6 +404,11 @@ def test_defaults_inside_sections_and_items(tmp_path: Path) -> None:
         "faint_limit": None,
         "stars": False,
         "imf": "chabrier",
+        "mass_imf": "chabrier",
+        "mass_to_light": None,
+        "galaxy_log10_mass": None,
+        "light_cone_z_max": 8.0,
+        "draws": 10000,
         "target_sky": None,
     }
     assert "totals" in rf.present
@@ -531,6 +547,8 @@ def test_require_and_location(tmp_path: Path) -> None:
 # --------------------------------------------------------------------------------------------
 
 F = "survey.toml"
+CATALOG_Z = '[catalog]\npaths = ["c.parquet"]\nra = "ra"\ndec = "dec"\nmag = "m"\nredshift = "z"\n'
+LF_SECTION = "[luminosity_function]\nredshift_range = [0.01, 0.3]\nmag_limits = [12.0, 19.8]\n"
 
 
 def exact(message: str) -> str:
@@ -1261,6 +1279,82 @@ BAD = [
             f'{F}: [totals] \'imf\' must be one of "kroupa", "chabrier", "salpeter";'
             ' got "kroupa01"; did you mean "kroupa"?'
         ),
+    ),
+    (
+        "imf-list-repeated",
+        '[totals]\nimf = ["kroupa", "kroupa"]\n',
+        InputError,
+        exact(f'{F}: [totals] \'imf\' must be a non-empty list of distinct names from "kroupa",'
+              ' "chabrier", "salpeter"; got ["kroupa", "kroupa"]'),
+    ),
+    (
+        "imf-type",
+        "[totals]\nimf = 3\n",
+        InputTypeError,
+        exact(f'{F}: [totals] \'imf\' must be an IMF name or a list of distinct IMF names from'
+              ' "kroupa", "chabrier", "salpeter"; got 3'),
+    ),
+    (
+        "mass-to-light-without-source",
+        "[totals]\nmass_to_light = {value = 1.7, sigma_dex = 0.1, sun_abs_mag = 4.76}\n",
+        InputError,
+        exact(f"{F}: [totals] missing required key 'mass_to_light.source'"),
+    ),
+    (
+        "mass-to-light-negative",
+        '[totals]\nmass_to_light = {value = -1, sigma_dex = 0.1, sun_abs_mag = 4.76, '
+        'source = "assumed"}\n',
+        InputError,
+        exact(f"{F}: [totals] 'mass_to_light.value' must be a number > 0 (Msun / Lsun); "
+              "got -1"),
+    ),
+    (
+        "draws-too-few",
+        "[totals]\ndraws = 10\n",
+        InputError,
+        exact(f"{F}: [totals] 'draws' must be an integer in [1000, 1000000]; got 10"),
+    ),
+    (
+        "light-cone-z-max-zero",
+        "[totals]\nlight_cone_z_max = 0\n",
+        InputError,
+        exact(f"{F}: [totals] 'light_cone_z_max' must be a number in (0, 30]; got 0"),
+    ),
+    (
+        "volume-without-luminosity-function",
+        CATALOG_Z + '[totals]\nvolume = "observable_universe"\nfaint_limit = -17\n',
+        InputError,
+        exact(f"{F}: [totals] 'volume' needs a [luminosity_function] section (the number "
+              "density comes from its fit); got none"),
+    ),
+    (
+        "volume-without-faint-limit",
+        CATALOG_Z + LF_SECTION + '[totals]\nvolume = "observable_universe"\n',
+        InputError,
+        exact(f"{F}: [totals] 'volume' needs 'faint_limit' (an absolute magnitude, or a log10 "
+              "stellar mass for a mass function); got none"),
+    ),
+    (
+        "volume-for-stars",
+        CATALOG_Z.replace('redshift = "z"', 'population = "stars"')
+        + '[totals]\nvolume = "observable_universe"\nfaint_limit = -17\n',
+        InputError,
+        exact(f"{F}: [totals] 'volume' totals over a volume apply to galaxies; got [catalog] "
+              'population = "stars"'),
+    ),
+    (
+        "stars-without-volume",
+        CATALOG_Z + "[totals]\nstars = true\n",
+        InputError,
+        exact(f"{F}: [totals] 'stars' = true counts the stars in 'volume'; got no 'volume'"),
+    ),
+    (
+        "stars-without-mass-to-light",
+        CATALOG_Z + LF_SECTION
+        + '[totals]\nstars = true\nvolume = "observable_universe"\nfaint_limit = -17\n',
+        InputError,
+        exact(f"{F}: [totals] 'stars' = true with a luminosity function needs "
+              "'mass_to_light' (light is not mass); got none"),
     ),
     (
         "stars-type",

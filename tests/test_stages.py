@@ -371,3 +371,80 @@ def test_demo_with_luminosity_function_nz_brackets_the_population_mean(demo_run_
     assert norm["log10_norm"]["interval_68"][1] - norm["log10_norm"]["interval_68"][0] > \
         5 * (norm["log10_norm_this_field"]["interval_68"][1]
              - norm["log10_norm_this_field"]["interval_68"][0])
+
+
+# --------------------------------------------------------------------------------------------
+# Totals on the demo
+# --------------------------------------------------------------------------------------------
+def _demo_lf_totals(limit, z_max):
+    """The demo model's galaxies brighter than M = limit: today's density x the horizon
+    volume, and along the light cone to z_max -- computed here with mpmath's incomplete gamma
+    (Schechter 1976: n(<M) = phi* Gamma(alpha + 1, 10^(0.4 (M* - M)))), scipy quadrature and
+    astropy's Planck18 dV/dz, with the model's parameters from truth.json; the horizon volume
+    is countscale.cosmology's (checked against closed forms in test_cosmology.py)."""
+    import mpmath
+    from astropy.cosmology import Planck18
+    from scipy import integrate
+
+    from countscale.cosmology import observable_universe_volume_mpc3
+
+    lf = json.loads((DEMO / "truth.json").read_text())["mock"]["galaxies"]
+
+    def n_above(z):
+        m_star = lf["m_star"] - lf["Q"] * z
+        x = 10 ** (0.4 * (m_star - limit))
+        return lf["phi_star"] * 10 ** (0.4 * lf["P"] * z) * float(
+            mpmath.gammainc(lf["alpha"] + 1, x))
+
+    present = n_above(0.0) * observable_universe_volume_mpc3(Planck18)
+    cone, _ = integrate.quad(
+        lambda z: n_above(z) * 4 * np.pi * Planck18.differential_comoving_volume(z).value,
+        0.0, z_max, limit=200)
+    return present, cone
+
+
+def test_demo_totals_hold_their_truths(demo_run):
+    truth = json.loads((DEMO / "truth.json").read_text())["mock"]
+    totals = demo_run.results["totals"]
+    sky = totals["details"]["sky"]
+    expected = truth["n_expected_sky"]["galaxies"][truth["mag_limits"].index(sky["m_limit"])]
+    lo, hi = totals["sky_total"]["interval_95"]
+    assert lo <= expected <= hi  # issue 11: the demo's truth inside the 95 % interval
+    keys = ("sky_total", "sky_total_naive", "present_day_volume_total", "light_cone_total",
+            "stars_total", "stars_per_galaxy")
+    for key in keys:
+        assert sum(totals[key]["budget"].values()) == pytest.approx(1.0, abs=0.01), key
+        assert totals[key]["interval_95"][0] <= totals[key]["median"] \
+            <= totals[key]["interval_95"][1]
+    assert totals["dominant_source"]["sky_total"] == "cosmic_variance"
+    present, cone = _demo_lf_totals(-17.0, 8.0)
+    for key, value in (("present_day_volume_total", present), ("light_cone_total", cone)):
+        lo, hi = totals[key]["interval_95"]
+        assert lo <= value <= hi, (key, value, totals[key])
+    # The two definitions differ by about a factor of 2 here (the model's own ratio).
+    ratio = totals["details"]["volume"]["present_over_light_cone"]
+    assert ratio == pytest.approx(present / cone, rel=0.05)
+    # Stars: a common figure of 10^22-10^23 stars in the observable universe (no single
+    # source) within a factor of 10, and a Milky-Way mass galaxy holding 1-2 x 10^11 stars
+    # (Licquia & Newman 2015's mass; common figure).
+    assert 1e21 < totals["stars_total"]["median"] < 1e23
+    assert 1e11 <= totals["stars_per_galaxy"]["interval_95"][0]
+    assert totals["stars_per_galaxy"]["interval_95"][1] <= 2e11
+    # The light cone reaches beyond the luminosity function's redshifts: said beside it.
+    assert any(c.startswith("evolution extrapolation") for c in
+               totals["cautions"]["light_cone_total"])
+    # Plain area scaling is off by completeness, scatter and this field's fluctuation.
+    explained = sky["naive_explained"]
+    assert explained["scatter_factor"] > 1.0 > explained["completeness_factor"]
+    assert explained["naive_over_sky_total"] == pytest.approx(
+        explained["expected_naive_over_sky_total"] * explained["this_field_over_model"])
+
+
+def test_demo_report_has_the_totals_section_and_figures(demo_run):
+    out = demo_run.out_dir
+    report = (out / "report.md").read_text()
+    assert "## Totals" in report
+    assert "### Present-day density × volume against the past light cone" in report
+    assert "![error budgets of the totals](totals_budget.png)" in report
+    for name in ("totals.png", "totals_budget.png"):
+        assert (out / name).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

@@ -268,3 +268,21 @@ def test_a_missing_star_catalogue_names_the_key(tmp_path):
     with pytest.raises(InputError, match=r"\[contamination\] 'star_catalog': `paths`: file "
                                          r"'.*nowhere.parquet' does not exist"):
         run_survey(path, out_dir=tmp_path / "out", seed=2)
+
+
+def test_demo_star_totals_carry_the_sky_model_and_hold_the_truth(stars_run):
+    truth = json.loads((DEMO / "truth.json").read_text())["star_fields"]
+    totals = stars_run.results["totals"]
+    expected = truth["n_expected_target"][truth["mag_limits"].index(truth["sky_mag_limit"])]
+    lo, hi = totals["sky_total"]["interval_95"]
+    assert lo <= expected <= hi
+    # With population = "stars", stars_total is sky_total (stars on the sky), said so.
+    assert totals["stars_total"] == totals["sky_total"]
+    assert totals["details"]["stars"]["quantity_counted"].startswith("stars on the sky")
+    budget = totals["sky_total"]["budget"]
+    assert {"sky_model_fit", "completeness"} <= set(budget)
+    assert sum(budget.values()) == pytest.approx(1.0, abs=0.01)
+    # Plain area scaling misses the Galaxy's structure: the fields are not typical.
+    explained = totals["details"]["sky"]["naive_explained"]
+    assert explained["structure_factor"] < 0.8
+    assert set(totals["not_computed"]) == {"present_day_volume_total", "light_cone_total"}
