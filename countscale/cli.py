@@ -108,7 +108,7 @@ def build_parser():
         help="run the bundled demo survey",
         description="Run demo_data/survey.toml from the countscale source repository.",
     )
-    _add_run_options(demo, default_out=DEMO_OUT)
+    _add_run_options(demo, default_out=DEMO_OUT, default_seed=DEMO_SEED)
     demo.set_defaults(handler=_cmd_demo)
 
     horizon = sub.add_parser(
@@ -302,17 +302,21 @@ def _cmd_area(args):
 # ----------------------------------------------------------------------------------------
 #: Where ``countscale demo`` writes unless told (relative to the working folder).
 DEMO_OUT = "countscale_demo"
+#: The seed ``countscale demo`` uses unless told, so that its report is the same everywhere.
+DEMO_SEED = 1
 
 
-def _add_run_options(parser, default_out=None):
+def _add_run_options(parser, default_out=None, default_seed=None):
     where = f"default {default_out}" if default_out else "default: the run file's [output].dir"
+    seed_help = (f"default {default_seed}, so the demo's report is the same on every machine"
+                 if default_seed is not None else "default: drawn and recorded")
     parser.add_argument("--out", metavar="DIR", default=default_out,
                         help=f"report folder ({where})")
     parser.add_argument("--json", action="store_true",
                         help="print the results as one JSON object")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
-    parser.add_argument("--seed", type=int, metavar="N",
-                        help="seed of the run's random generator (default: drawn and recorded)")
+    parser.add_argument("--seed", type=int, metavar="N", default=default_seed,
+                        help=f"seed of the run's random generator ({seed_help})")
 
 
 def demo_runfile():

@@ -2439,7 +2439,10 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     write_report`).
     """
     from countscale import __version__, report
+    from countscale.provenance import run_provenance, utc_now
     from countscale.runfile import RunFile, load_runfile
+
+    started_utc = utc_now()
 
     if not isinstance(runfile, RunFile):
         if not isinstance(runfile, str | os.PathLike):
@@ -2467,36 +2470,47 @@ def run_survey(runfile: Any, out_dir: str | os.PathLike | None = None, engine: s
     ctx = RunContext(runfile=runfile, engine=engine, scheduler=scheduler,
                      rng=np.random.default_rng(seed), progress=progress, columns=columns)
     run_warnings: list[str] = []
-    for stage in to_run:
-        # Warnings (ours, astropy's, healpy's) go into the results and the report, one line
-        # each, instead of onto stderr with source lines.
-        with warnings.catch_warnings(record=True) as caught:
-            ctx.results[stage.name] = stage.run(ctx)
-        run_warnings += _warning_lines(stage.name, caught)
+    # One bar for the run's stages (and the report, last); slow stages add their own below it.
+    with _progress_bar(ctx, len(to_run) + 1, "run", "stage") as stages_bar:
+        for stage in to_run:
+            stages_bar.set_description(f"run: {stage.name}")
+            # Warnings (ours, astropy's, healpy's) go into the results and the report, one line
+            # each, instead of onto stderr with source lines.
+            with warnings.catch_warnings(record=True) as caught:
+                ctx.results[stage.name] = stage.run(ctx)
+            run_warnings += _warning_lines(stage.name, caught)
+            stages_bar.update(1)
+        stages_bar.set_description("run: report")
 
-    tally_result = ctx.results["tally"]
-    survey = {k: v for k, v in runfile.survey.to_dict().items() if v is not None}
-    content = tally_result.to_dict()
-    results: dict[str, Any] = {
-        "countscale_version": __version__,
-        "survey": survey,
-        "run": {
-            "runfile": str(runfile.path),
-            "engine": engine,
-            "seed": seed,
-            "stages": [s.name for s in to_run],
-            "sections_not_run": list(not_run),
-            "warnings": run_warnings,
-        },
-        "ledger": content.pop("ledger"),
-        "footprint": content.pop("footprint"),
-        "tally": content,
-    }
-    for stage in to_run:
-        if stage.name != "tally":
-            results[stage.name] = ctx.results[stage.name].to_dict()
-    files, results = report.write_report(results, out_dir, formats=runfile.output.formats,
-                                         footprint=ctx.footprint)
+        tally_result = ctx.results["tally"]
+        survey = {k: v for k, v in runfile.survey.to_dict().items() if v is not None}
+        content = tally_result.to_dict()
+        results: dict[str, Any] = {
+            "countscale_version": __version__,
+            "survey": survey,
+            "run": {
+                "runfile": str(runfile.path),
+                "engine": engine,
+                "seed": seed,
+                "population": runfile.catalog.population,
+                "stages": [s.name for s in to_run],
+                "sections_not_run": list(not_run),
+                "warnings": run_warnings,
+            },
+            "ledger": content.pop("ledger"),
+            "footprint": content.pop("footprint"),
+            "tally": content,
+        }
+        for stage in to_run:
+            if stage.name != "tally":
+                results[stage.name] = ctx.results[stage.name].to_dict()
+        results["provenance"] = run_provenance(runfile, seed, engine, scheduler, started_utc,
+                                               utc_now())
+        completeness = ctx.results.get("completeness")
+        files, results = report.write_report(
+            results, out_dir, formats=runfile.output.formats, footprint=ctx.footprint,
+            depth=completeness["depth"] if completeness else None)
+        stages_bar.update(1)
     return RunResult(
         runfile=runfile, out_dir=out_dir, files=files, engine=engine, seed=seed,
         stages=tuple(s.name for s in to_run), sections_not_run=not_run,

@@ -42,21 +42,30 @@ def _unwrap_ra(ra_deg):
     return centre + (ra_deg - centre + 180.0) % 360.0 - 180.0
 
 
-def footprint_figure(footprint, path, title=None, zoom_pixels=700):
-    """Write a two-panel PNG: the footprint on the whole sky, and a zoom on it.
+def footprint_figure(footprint, path, title=None, zoom_pixels=700, depth=None):
+    """Write the footprint figure: where it lies on the whole sky, and a zoom on it.
 
     The zoom samples the coverage fraction on a regular RA/Dec grid of `zoom_pixels` across,
-    so holes larger than a grid step show; its caption gives the step. Returns notes on
-    what is left empty (see the module docstring).
+    so holes larger than a grid step show; its caption gives the step. With `depth` (a
+    :class:`countscale.completeness.DepthMap`), a second zoom shows the 50 % completeness
+    magnitude across the footprint, holes and the outside left blank. Returns notes on what
+    is left empty (see the module docstring).
     """
     import healpy as hp
+    from matplotlib.ticker import FuncFormatter
 
     plt = _pyplot()
     order = min(footprint.max_order, 7)
     cells, fraction = footprint.coverage_cells(order)
     ra_c, dec_c = hp.pix2ang(2**order, cells, nest=True, lonlat=True)
-    fig = plt.figure(figsize=(12, 5.2))
-    sky = fig.add_subplot(1, 2, 1, projection="mollweide")
+    fig = plt.figure(figsize=(11, 9.6) if depth is not None else (12, 5.2))
+    if depth is not None:
+        grid = fig.add_gridspec(2, 2, height_ratios=[1, 1.05])
+        sky = fig.add_subplot(grid[0, :], projection="mollweide")
+        zooms = [fig.add_subplot(grid[1, 0]), fig.add_subplot(grid[1, 1])]
+    else:
+        sky = fig.add_subplot(1, 2, 1, projection="mollweide")
+        zooms = [fig.add_subplot(1, 2, 2)]
     # Centre the view on the footprint, RA increasing to the left as on the sky.
     mean_ra = 180.0
     if len(ra_c):
@@ -71,10 +80,11 @@ def footprint_figure(footprint, path, title=None, zoom_pixels=700):
     sky.set_xticks(np.radians(ticks))
     sky.set_xticklabels([f"{(mean_ra - t) % 360:.0f}°" for t in ticks], fontsize=7)
     sky.grid(True, alpha=0.4)
-    sky.set_title(f"Whole sky (RA increasing to the left)\n{footprint.area_deg2:.4g} deg², "
-                  f"sky fraction {footprint.sky_fraction:.3g}", fontsize=10)
+    sky.set_title(f"Whole sky (RA increasing to the left; red circle: the footprint)\n"
+                  f"{footprint.area_deg2:.4g} deg², sky fraction {footprint.sky_fraction:.3g}",
+                  fontsize=10)
 
-    zoom = fig.add_subplot(1, 2, 2)
+    notes = []
     if len(ra_c):
         ra_u = _unwrap_ra(ra_c)
         half = np.degrees(hp.max_pixrad(2**order))
@@ -88,26 +98,44 @@ def footprint_figure(footprint, path, title=None, zoom_pixels=700):
         gdec = np.linspace(dec_lo, dec_hi, ny)
         mra, mdec = np.meshgrid(gra, gdec)
         cover = footprint.weight_at(mra.ravel() % 360.0, mdec.ravel()).reshape(mdec.shape)
-        image = zoom.imshow(cover, origin="lower", extent=(ra_hi, ra_lo, dec_lo, dec_hi),
-                            cmap="viridis", vmin=0, vmax=1, interpolation="nearest",
-                            aspect=1.0 / cos_dec)
-        fig.colorbar(image, ax=zoom, label="coverage fraction", shrink=0.85)
+        extent = (ra_hi, ra_lo, dec_lo, dec_hi)
         step_arcsec = (ra_hi - ra_lo) * cos_dec / nx * 3600
-        from matplotlib.ticker import FuncFormatter
-
-        zoom.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v % 360:g}"))
-        zoom.set_xlabel("RA [deg]")
-        zoom.set_ylabel("Dec [deg]")
         cell_arcsec = np.degrees(np.sqrt(4 * np.pi / (12 * 4**footprint.max_order))) * 3600
-        zoom.set_title(f"Zoom (grid step {step_arcsec:.3g}″; finest cells {cell_arcsec:.2g}″)",
-                       fontsize=10)
+        zoom = zooms[0]
+        image = zoom.imshow(cover, origin="lower", extent=extent, cmap="viridis", vmin=0,
+                            vmax=1, interpolation="nearest", aspect=1.0 / cos_dec)
+        fig.colorbar(image, ax=zoom, label="coverage fraction", shrink=0.85)
+        zoom.set_title(f"Zoom: coverage and holes (grid step {step_arcsec:.3g}″; finest "
+                       f"cells {cell_arcsec:.2g}″)", fontsize=10)
+        if depth is not None:
+            pixel = hp.ang2pix(depth.nside, mra.ravel() % 360.0, mdec.ravel(),
+                               nest=depth.nest, lonlat=True)
+            m50 = np.asarray(depth.m50_mag, dtype=float)[pixel].reshape(mdec.shape)
+            m50 = np.where(cover > 0, m50, np.nan)
+            cmap = plt.get_cmap("magma").with_extremes(bad="white")
+            shown = np.isfinite(m50)
+            if shown.any():
+                image = zooms[1].imshow(np.ma.masked_invalid(m50), origin="lower",
+                                        extent=extent, cmap=cmap, interpolation="nearest",
+                                        aspect=1.0 / cos_dec)
+                fig.colorbar(image, ax=zooms[1], label="m50: 50 % completeness [mag]",
+                             shrink=0.85)
+            else:
+                notes.append("the depth map has no value inside the footprint")
+            zooms[1].set_title("Zoom: depth (holes and outside blank)", fontsize=10)
+        for zoom in zooms:
+            zoom.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v % 360:g}"))
+            zoom.set_xlabel("RA [deg]")
+            zoom.set_ylabel("Dec [deg]")
     else:
-        zoom.text(0.5, 0.5, "empty footprint", ha="center", va="center")
+        for zoom in zooms:
+            zoom.text(0.5, 0.5, "empty footprint", ha="center", va="center")
+        notes.append("the footprint is empty: there is nothing to draw")
     if title:
         fig.suptitle(title)
     fig.tight_layout(rect=(0, 0.02, 1, 0.96))
     _save(fig, path)
-    return [] if len(ra_c) else ["the footprint is empty: there is nothing to draw"]
+    return notes
 
 
 def completeness_figure(completeness, path, title=None):

@@ -26,26 +26,35 @@ only when the whole report of one run is there; after an interrupted run the fol
 from __future__ import annotations
 
 import json
+import math
 import os
+import re
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any, NamedTuple
 
 from countscale._io import atomic_path
+from countscale._markdown_html import anchor
 from countscale.errors import InputError, InputTypeError
 
 __all__ = [
+    "HTML_NAME",
     "REPORT_NAME",
     "RESULTS_NAME",
+    "STAGE_SECTIONS",
+    "StageSection",
     "WrittenReport",
+    "render_html",
     "render_markdown",
     "render_text",
     "results_json",
+    "summarise",
     "write_report",
 ]
 
 RESULTS_NAME = "results.json"
 REPORT_NAME = "report.md"
+HTML_NAME = "report.html"
 
 
 def results_json(results: Mapping[str, Any]) -> str:
@@ -91,19 +100,364 @@ def _title(results: Mapping[str, Any]) -> str:
     return results.get("survey", {}).get("name") or "countscale run"
 
 
-def render_markdown(results: Mapping[str, Any]) -> str:
-    """The ``report.md`` text: ledger, footprint, counts per magnitude bin, regions."""
-    run, ledger, fp, tally = (results["run"], results["ledger"], results["footprint"],
-                              results["tally"])
+# --------------------------------------------------------------------------------------------
+# The summary: how many, how sure, and why
+# --------------------------------------------------------------------------------------------
+
+#: Readable names of error-budget entries (a name not listed is shown with its underscores
+#: turned into spaces).
+ERROR_SOURCES = {
+    "poisson": "Poisson noise",
+    "cosmic_variance": "cosmic variance",
+    "completeness": "completeness correction",
+    "count_model": "choice of count model",
+    "area": "footprint area",
+    "injections": "number of injections",
+    "sky_model_fit": "sky-model fit",
+    "sky_model_choice": "choice of sky covariates",
+    "sky_model_extrapolation": "sky beyond the covariates observed",
+    "cosmology": "cosmological parameters",
+    "imf": "initial mass function",
+    "luminosity_function": "luminosity-function fit",
+    "mass_to_light": "mass-to-light ratio",
+}
+
+#: The totals a summary leads with, in order, when the run computed them.
+_TOTAL_KEYS = ("sky_total", "present_day_volume_total", "light_cone_total", "stars_total",
+               "stars_per_galaxy")
+
+#: Below this area (deg²) a field's mean density is dominated by cosmic variance for most
+#: galaxy samples: the summary then says so even without a [variance] section (common
+#: figure, no source: cosmic variance of a few per cent at ~1-10 deg² for deep samples).
+_SMALL_FIELD_DEG2 = 100.0
+
+
+def _dominant(budget: Mapping[str, float], population: str | None = None
+              ) -> dict[str, Any] | None:
+    if not budget:
+        return None
+    name = max(budget, key=lambda k: (budget[k], k))
+    label = ERROR_SOURCES.get(name, name.replace("_", " "))
+    if name == "cosmic_variance" and population == "stars":
+        label = "field-to-field scatter"  # the Galaxy's structure, not cosmic variance
+    return {"name": name, "label": label, "share": float(budget[name])}
+
+
+def _headline(key: str, label: str, estimate: Mapping[str, Any], cautions: Iterable[str] = (),
+              definition: str | None = None, population: str | None = None) -> dict[str, Any]:
+    return {
+        "key": key,
+        "label": label,
+        "definition": definition,
+        "median": estimate["median"],
+        "interval_68": list(estimate["interval_68"]),
+        "interval_95": list(estimate["interval_95"]),
+        "unit": estimate.get("unit", ""),
+        "dominant_error": _dominant(estimate.get("budget") or {}, population),
+        "cautions": [c for c in cautions if c],
+    }
+
+
+def _sky_caution(area_deg2: float, target_deg2: float | None, modelled: bool = False) -> str:
+    target = (f"{target_deg2:,.0f} deg²" if target_deg2 else "the target sky")
+    share = (f" ({100 * area_deg2 / target_deg2:.2g} % of it)" if target_deg2 else "")
+    if modelled:
+        return (f"extrapolation beyond the surveyed sky: {area_deg2:.4g} deg² observed{share}; "
+                f"a model of how the density changes across the sky carries it to {target}")
+    return (f"extrapolation beyond the surveyed sky: {area_deg2:.4g} deg² observed{share}, "
+            f"scaled to {target}; the rest of that sky is assumed to hold the same population")
+
+
+def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
+    """The summary a report opens with (also ``results["summary"]``); reads results only.
+
+    Returns
+    -------
+    dict
+        ``survey``; ``population``; ``area`` (``area_deg2``, ``area_uncertainty_deg2``,
+        ``sky_fraction``);
+        ``sources`` (``in_footprint``, ``rows_read``, ``rejected``); ``m50`` (the footprint's
+        median 50 % completeness magnitude, when known); ``headlines``: the run's headline
+        numbers, each ``{key, label, definition, median, interval_68, interval_95, unit,
+        dominant_error: {name, label, share}, cautions}`` (``key`` is where the number is in
+        ``results.json``, ``cautions`` the plain-language cautions that go beside it: an
+        extrapolation beyond the surveyed depth or sky says so there); ``cautions``: those
+        about the whole run (the cosmic variance of a small field, a count model that fails
+        its goodness-of-fit test).
+    """
+    fp, ledger = results["footprint"], results["ledger"]
+    area = float(fp["area_deg2"])
+    out: dict[str, Any] = {
+        "survey": _title(results),
+        "population": results["run"].get("population"),
+        "area": {"area_deg2": area, "area_uncertainty_deg2": fp["area_uncertainty_deg2"],
+                 "sky_fraction": fp["sky_fraction"]},
+        "sources": {"in_footprint": ledger["rows_in_footprint"],
+                    "rows_read": ledger["rows_read"],
+                    "rejected": sum(ledger["rows_rejected"].values())},
+        "m50": None,
+        "headlines": [],
+        "cautions": [],
+    }
+    comp = results.get("completeness")
+    if comp:
+        depth = comp.get("depth_map") or {}
+        out["m50"] = depth.get("m50_median") or comp["m50"]["median"]
+    population = results["run"].get("population")
+    headlines = out["headlines"]
+    counts = results.get("counts")
+    if counts and "integral_counts" in counts:
+        # What the survey measured first, then what it implies beyond its footprint.
+        integral = counts["integral_counts"]
+        m = integral["m_limit"]
+        what = "stars" if population == "stars" else "sources"
+        headlines.append(_headline(
+            "counts.integral_counts.per_deg2", f"{what.capitalize()} per deg² brighter than "
+            f"m = {m:g} (the population's mean density)", integral["per_deg2"],
+            definition=integral.get("note"), population=population))
+    totals = results.get("totals") or {}
+    definitions = totals.get("definitions") or {}
+    cautions = totals.get("cautions") or {}
+    details = totals.get("details") or {}
+    for key in _TOTAL_KEYS:
+        if not isinstance(totals.get(key), Mapping):
+            continue
+        extra = []
+        if key == "sky_total" and not any("surveyed sky" in c for c in cautions.get(key, ())):
+            sky_details = details.get("sky") or {}
+            method = sky_details.get("method") or "isotropic"
+            extra.append(_sky_caution(area, sky_details.get("target_area_deg2"),
+                                      modelled=not method.startswith("isotropic")))
+        if key in ("present_day_volume_total", "light_cone_total", "stars_total"):
+            extra.append(_volume_caution(results, details.get("volume") or {},
+                                         light_cone=key == "light_cone_total"))
+        headlines.append(_headline(f"totals.{key}", _total_label(key, totals, details),
+                                   totals[key], [*extra, *cautions.get(key, ())],
+                                   definitions.get(key), population))
+    sky = results.get("sky_model")
+    if sky and "total" in sky:
+        outside = sky.get("fraction_outside_observed_range") or {}
+        caution = [_sky_caution(area, sky.get("target_sky", {}).get("area_deg2"),
+                                modelled=True)]
+        if outside.get("area", 0) > 0:
+            caution.append(f"{100 * outside['area']:.3g} % of the target lies outside the "
+                           "covariates the fields observed: the model is extrapolated there")
+        what = "Stars" if population == "stars" else "Sources"
+        headlines.append(_headline("sky_model.total", f"{what} brighter than "
+                                   f"m = {sky['mag_limit']:g} over the target sky (sky model)",
+                                   sky["total"], [*caution, *sky.get("warnings", ())],
+                                   sky.get("naive_note"), population))
+    out["cautions"] = _run_cautions(results, area)
+    return out
+
+
+def _short_volume(volume: Mapping[str, Any]) -> str:
+    """``"the observable universe"`` from ``"the observable universe (the comoving ...)"``."""
+    text = volume.get("volume") or "the volume"
+    return text.split(" (")[0]
+
+
+def _total_label(key: str, totals: Mapping[str, Any], details: Mapping[str, Any]) -> str:
+    unit = (totals[key].get("unit") or "sources").strip()
+    sky, volume = details.get("sky") or {}, details.get("volume") or {}
+    limit = f" {volume['limit_text']}" if volume.get("limit_text") else ""
+    if key == "sky_total":
+        m = sky.get("m_limit")
+        target = sky.get("target_sky")
+        where = "the whole sky" if target in (None, "whole sky") else "the target sky"
+        return (f"{unit.capitalize()} brighter than m = {m:g} over {where}" if m is not None
+                else f"{unit.capitalize()} over {where}")
+    if key == "present_day_volume_total":
+        return (f"{unit.capitalize()}{limit} in {_short_volume(volume)} (today's density × "
+                "its volume)")
+    if key == "light_cone_total":
+        return f"{unit.capitalize()}{limit} along our past light cone"
+    if key == "stars_total":
+        return f"Stars in {_short_volume(volume)}"
+    if key == "stars_per_galaxy":
+        mass = re.search(r"stellar mass (10\^[\d.]+ Msun)", totals.get("definitions", {})
+                         .get(key, ""))
+        return f"Stars in one galaxy of {mass[1]}" if mass else "Stars in one galaxy"
+    return key.replace("_", " ").capitalize()
+
+
+def _volume_caution(results: Mapping[str, Any], volume: Mapping[str, Any],
+                    light_cone: bool = False) -> str:
+    """An extrapolation beyond the surveyed volume, in words."""
+    selection = (results.get("luminosity_function") or {}).get("selection") or {}
+    z_range = volume.get("fit_redshift_range") or selection.get("redshift_range")
+    measured = (f"measured at {z_range[0]:g} < z < {z_range[1]:g}" if z_range
+                else "measured nearby")
+    where = ("along our past light cone, far beyond that redshift" if light_cone
+             else f"to {_short_volume(volume)}")
+    return (f"extrapolation beyond the surveyed volume: the luminosity function was {measured} "
+            f"over {results['footprint']['area_deg2']:.4g} deg²; this number carries it {where}")
+
+
+def _run_cautions(results: Mapping[str, Any], area: float) -> list[str]:
+    out = []
+    variance = results.get("variance") or {}
+    analytic = variance.get("analytic") or {}
+    population = results["run"].get("population")
+    if analytic.get("sigma_cv") is not None:
+        sigma, poisson = analytic["sigma_cv"], variance.get("poisson_fraction")
+        ratio = (f", {sigma / poisson:.2g} times its Poisson error" if poisson else "")
+        out.append(
+            f"Cosmic variance: galaxies cluster, so the mean density of a field of "
+            f"{area:.4g} deg² differs from the mean over the whole sky by about "
+            f"{100 * sigma:.2g} % (1σ, linear theory{ratio}). Densities and totals scaled from "
+            "this field carry that error, and only more area or more separate fields shrink "
+            "it; on scales smaller than linear theory handles it may be larger.")
+    elif population != "stars" and area < _SMALL_FIELD_DEG2:
+        out.append(
+            f"Cosmic variance: this field covers {area:.4g} deg². Galaxies cluster, so the "
+            "mean density of a field this small can differ from the sky's by several per cent "
+            "or more; the run has no [variance] section, so its errors do not include this.")
+    counts = results.get("counts") or {}
+    fit = counts.get("fit") or {}
+    p = fit.get("p_value")
+    if p is not None and p < 0.05:
+        out.append(f"The count model `{fit['model']}` does not describe the counts within their "
+                   f"errors ({_p_value_text(fit).split(' (')[0]}); its parameters summarise a "
+                   "curved relation" + (f"; `{counts['preferred']['model']}` is preferred"
+                                        if counts.get("preferred") else "") + ".")
+    return out
+
+
+def _words(value: float, sig: int = 3) -> str:
+    """A number for a general reader: ``420 million``, ``8,490``, ``3.1 × 10²²``."""
+    if value == 0 or not math.isfinite(value):
+        return f"{value:g}"
+    magnitude = abs(value)
+    if magnitude >= 1e15 or magnitude < 1e-3:
+        exponent = math.floor(math.log10(magnitude))
+        mantissa = f"{value / 10**exponent:.{sig - 1}f}"
+        return f"{mantissa} × 10{str(exponent).translate(_SUPERSCRIPT)}"
+    for scale, word in ((1e12, "trillion"), (1e9, "billion"), (1e6, "million")):
+        if magnitude >= scale:
+            return f"{_significant(value / scale, sig)} {word}"
+    if magnitude >= 1000:
+        return f"{round(value, sig - 1 - math.floor(math.log10(magnitude))):,.0f}"
+    return _significant(value, sig)
+
+
+_SUPERSCRIPT = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
+
+
+def _significant(value: float, sig: int) -> str:
+    decimals = max(0, sig - 1 - math.floor(math.log10(abs(value))))
+    return f"{value:.{decimals}f}"
+
+
+def _range_words(pair: Iterable[float], sig: int = 3) -> str:
+    lo, hi = (_words(v, sig) for v in pair)
+    if " × 10" in lo and " × 10" in hi and lo.split(" × ")[1] == hi.split(" × ")[1]:
+        return f"{lo.split(' × ')[0]}–{hi}"
+    lo_parts, hi_parts = lo.rsplit(" ", 1), hi.rsplit(" ", 1)
+    if (len(lo_parts) == 2 and len(hi_parts) == 2 and lo_parts[1] == hi_parts[1]
+            and lo_parts[1] in ("million", "billion", "trillion")):
+        return f"{lo_parts[0]}–{hi_parts[0]} {hi_parts[1]}"
+    return f"{lo} to {hi}" if lo.startswith("-") or hi.startswith("-") else f"{lo}–{hi}"
+
+
+def _unit_words(unit: str) -> str:
+    return {"deg^-2": "per deg²", "Mpc^-3": "per Mpc³"}.get(unit, unit)
+
+
+def _short_caution(cautions: Iterable[str]) -> str:
+    """The extrapolations among a number's cautions, in a few words for its table cell:
+    ``"extrapolation beyond the surveyed sky"``."""
+    heads = [c.split(":")[0].strip() for c in cautions if ":" in c]
+    heads = [h for h in heads if "extrapolation" in h and len(h) < 60]
+    return "; ".join(dict.fromkeys(heads))
+
+
+def _area_precision(area: Mapping[str, Any]) -> str:
+    sigma = area["area_uncertainty_deg2"]
+    if sigma < 1e-3:
+        return "measured to better than 0.001 deg²"
+    return f"measured to ±{sigma:.2g} deg²"
+
+
+def summary_markdown(summary: Mapping[str, Any]) -> list[str]:
+    """The report's opening section from :func:`summarise`'s object."""
+    area = summary["area"]
+    sources = summary["sources"]
     out = [
-        f"# {_title(results)}",
+        "## Summary",
         "",
-        f"Run file `{run['runfile']}`; engine `{run['engine']}`; seed {run['seed']}; "
-        f"countscale {results.get('countscale_version', '?')}.",
+        f"The survey covers **{area['area_deg2']:.4g} deg²** ({100 * area['sky_fraction']:.2g} % "
+        f"of the sky, holes removed; {_area_precision(area)}) and "
+        f"holds **{sources['in_footprint']:,d} catalogued sources** inside it "
+        f"({sources['rejected']:,d} of {sources['rows_read']:,d} rows rejected, each counted "
+        "in the row ledger)"
+        + (f"; it detects half of the sources at magnitude {summary['m50']:.2f}"
+           if summary.get("m50") else "") + ".",
+    ]
+    headlines = summary["headlines"]
+    if headlines:
+        out += [
+            "",
+            "| quantity | value | 68 % interval | 95 % interval | largest source of error "
+            "(share of the variance) |",
+            "|---|---:|---:|---:|---|",
+        ]
+        for item in headlines:
+            unit = _unit_words(item["unit"])
+            dominant = item["dominant_error"]
+            source = (f"{dominant['label']}, {100 * dominant['share']:.0f} %" if dominant
+                      else "not broken down")
+            note = _short_caution(item["cautions"])
+            flag = f" — ⚠ {note}" if note else (" ⚠" if item["cautions"] else "")
+            out.append(f"| {item['label']}{flag} | **{_words(item['median'])}** {unit} | "
+                       f"{_range_words(item['interval_68'])} | "
+                       f"{_range_words(item['interval_95'])} | {source} |")
+        flagged = [item for item in headlines if item["cautions"]]
+        for item in flagged:
+            text = "; ".join(c.rstrip(".") for c in item["cautions"])
+            out += ["", f"> ⚠ **{item['label']}:** {text[0].upper() + text[1:]}."]
+        out += ["", "The intervals hold the true value with 68 % and 95 % probability if the "
+                    "run's models hold. Poisson noise is the chance in counting a finite number "
+                    "of sources; " + ("field-to-field scatter is how much the density of stars "
+                    "differs between fields beyond that (the Galaxy's structure)"
+                    if summary.get("population") == "stars" else "cosmic variance is how much "
+                    "the density of a field this size differs from place to place because "
+                    "galaxies cluster") + ". Each share is of the variance of log₁₀ of the "
+                    "number; definitions and full error budgets are in the sections below."]
+    else:
+        out += ["", "This run computed no total: add `[counts]` (and `[totals]`) to the run "
+                    "file for densities and totals with intervals."]
+    for caution in summary["cautions"]:
+        out += ["", f"> ⚠ {caution}"]
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# One section per stage
+# --------------------------------------------------------------------------------------------
+
+
+class StageSection(NamedTuple):
+    """How a stage's results appear in the report: its ``results.json`` key, the function
+    of its block that renders its Markdown lines (from its ``## `` heading on), and its
+    figures as ``(name in FIGURE_NAMES, words for the image)``, shown after the text."""
+
+    key: str
+    render: Any
+    figures: tuple[tuple[str, str], ...] = ()
+
+
+def _footprint_markdown(results: Mapping[str, Any]) -> list[str]:
+    fp, ledger, tally = results["footprint"], results["ledger"], results["tally"]
+    out = [
+        "## Footprint and catalogue",
         "",
-        "## Row ledger",
+        f"Area {fp['area_deg2']:.6g} ± {fp['area_uncertainty_deg2']:.2g} deg² "
+        f"({fp['area_sr']:.6g} sr, sky fraction {fp['sky_fraction']:.4g}); finest HEALPix "
+        f"order {fp['max_order']}, {fp['n_cells']:,d} cells. "
+        f"{_regions_line(tally['regions'])} (for jackknife errors).",
         "",
-        "Every row of the catalogue, counted once.",
+        "Every row of the catalogue, counted once:",
         "",
         "| rows | count |",
         "|---|---:|",
@@ -112,67 +466,105 @@ def render_markdown(results: Mapping[str, Any]) -> str:
     notes = {k: v for k, v in ledger.get("notes", {}).items() if v}
     if notes:
         out += ["", "Notes: " + "; ".join(f"{k} {v:,d}" for k, v in notes.items()) + "."]
+    out += _figure_markdown(results, "footprint", "footprint")
+    rows = _bin_rows(results)
     out += [
         "",
-        "## Footprint",
-        "",
-        f"Area {fp['area_deg2']:.6g} ± {fp['area_uncertainty_deg2']:.2g} deg² "
-        f"({fp['area_sr']:.6g} sr, sky fraction {fp['sky_fraction']:.4g}); finest HEALPix "
-        f"order {fp['max_order']}, {fp['n_cells']:,d} cells.",
-        "",
-        "## Counts per magnitude bin",
+        "<details>",
+        f"<summary>Sources in each of the {len(rows)} magnitude bins (raw, before any "
+        "correction)</summary>",
         "",
         f"Bins: {tally['mag_bins']['grid']} grid. Density is per deg² per magnitude over the "
-        "footprint's covered area (no completeness correction).",
+        "footprint's covered area (no completeness correction). Brighter than the first edge: "
+        f"{tally['n_brighter']:,d}; at or fainter than the last edge: {tally['n_fainter']:,d}.",
         "",
         "| magnitude | sources | per deg² per mag |",
         "|---|---:|---:|",
     ]
-    out += [f"| {lo:.4g}–{hi:.4g} | {n:,d} | {d:.4g} |" for lo, hi, n, d in _bin_rows(results)]
+    out += [f"| {lo:.4g}–{hi:.4g} | {n:,d} | {d:.4g} |" for lo, hi, n, d in rows]
+    out += ["", "</details>"]
     if tally.get("extinction"):
         out += ["", _extinction_line(tally["extinction"])]
-    out += [
-        "",
-        f"Brighter than the first edge: {tally['n_brighter']:,d}; at or fainter than the last "
-        f"edge: {tally['n_fainter']:,d}.",
-        "",
-        "## Regions (for jackknife errors)",
-        "",
-        _regions_line(tally["regions"]) + ".",
-    ]
-    out += _figure_markdown(results, "footprint", "footprint")
-    if "completeness" in results:
-        out += ["", *_completeness_markdown(results["completeness"])]
-        out += _figure_markdown(results, "completeness", "completeness")
-    if "luminosity_function" in results:
-        out += ["", *_luminosity_function_markdown(results["luminosity_function"])]
-        out += _figure_markdown(results, "luminosity_function", "luminosity function")
-    if "variance" in results:
-        out += ["", *_variance_markdown(results["variance"])]
-        out += _figure_markdown(results, "variance", "cosmic variance against area")
-    if "counts" in results:
-        out += ["", *_counts_markdown(results["counts"])]
-        out += _figure_markdown(results, "counts", "number counts")
-    if "contamination" in results:
-        out += ["", *_contamination_markdown(results["contamination"])]
-        out += _figure_markdown(results, "contamination", "stars among the sources")
-    if "sky_model" in results:
-        out += ["", *_sky_model_markdown(results["sky_model"])]
-        out += _figure_markdown(results, "sky_model", "sky model")
-    if "totals" in results:
-        out += ["", *_totals_markdown(results["totals"])]
-        out += _figure_markdown(results, "totals", "totals with their intervals")
-        out += _figure_markdown(results, "totals_budget", "error budgets of the totals")
+    return out
+
+
+def render_markdown(results: Mapping[str, Any]) -> str:
+    """The ``report.md`` text: the summary, one section per stage, provenance.
+
+    ``report.html`` is made from this text (:func:`render_html`), so both say the same.
+    """
+    run = results["run"]
+    survey = results.get("survey") or {}
+    summary = results.get("summary") or summarise(results)
+    out = [f"# {_title(results)}", ""]
+    if survey.get("description"):
+        out += [survey["description"], ""]
+    out += [f"A countscale {results.get('countscale_version', '?')} report: run file "
+            f"`{Path(run['runfile']).name}`, seed {run['seed']}, engine `{run['engine']}` "
+            "(see [Provenance](#provenance) to repeat it).", ""]
+    out += summary_markdown(summary)
+    sections: list[list[str]] = [_footprint_markdown(results)]
+    for section in STAGE_SECTIONS:
+        if section.key in results:
+            lines = section.render(results[section.key])
+            for name, alt in section.figures:
+                lines += _figure_markdown(results, name, alt)
+            sections.append(lines)
     other = _other_warnings(results)
     if other:
-        out += ["", "## Warnings", "", "Raised while the stages ran (stage: message):", ""]
-        out += [f"- {line}" for line in other]
+        sections.append(["## Warnings", "", "Raised while the stages ran (stage: message):",
+                         "", *[f"- {line}" for line in other]])
     if run.get("sections_not_run"):
         listed = ", ".join(f"[{s}]" for s in run["sections_not_run"])
-        out += ["", "## Not run", "", f"The run file has {listed}; this version of countscale "
-                "has no stage that fits or reports them yet (the tally used `[counts].bins` "
-                "and `[variance].regions` where given)."]
+        sections.append(["## Not run", "", f"The run file has {listed}; this version of "
+                         "countscale has no stage that fits or reports them yet (the tally "
+                         "used `[counts].bins` and `[variance].regions` where given)."])
+    if results.get("provenance"):
+        sections.append(_provenance_markdown(results["provenance"]))
+    headings = [lines[0][3:] for lines in sections]
+    out += ["", "Contents: " + " · ".join(f"[{h}](#{anchor(h)})" for h in headings) + "."]
+    for lines in sections:
+        out += ["", *lines]
     return "\n".join(out) + "\n"
+
+
+def _provenance_markdown(prov: Mapping[str, Any]) -> list[str]:
+    packages = ", ".join(f"{k} {v}" for k, v in prov.get("packages", {}).items() if v)
+    out = [
+        "## Provenance",
+        "",
+        f"countscale {prov['countscale_version']}, Python {prov['python']} on "
+        f"{prov['platform']}; {packages}. Seed {prov['seed']}, engine `{prov['engine']}`"
+        + (f" (scheduler `{prov['scheduler']}`)" if prov.get("scheduler") else "")
+        + f"; started {prov['started_utc']}, finished {prov['finished_utc']} (UTC). The same "
+        "seed and inputs give the same `results.json` apart from these two times.",
+        "",
+        "| input | key | bytes | SHA-256 |",
+        "|---|---|---:|---|",
+    ]
+    for item in prov.get("inputs", []):
+        digest = item["sha256"] + (" (size + ends)" if item["hashed"] != "whole file" else "")
+        out.append(f"| `{item['path']}` | {item['key']} | {item['bytes']:,d} | `{digest}` |")
+    runfile = prov.get("runfile") or {}
+    out += ["", f"SHA-256 digests are of whole files, except that {prov['large_file_rule']}."]
+    if runfile.get("text") is not None:
+        out += ["", "<details>", f"<summary>The run file, `{Path(runfile['path']).name}` "
+                f"(SHA-256 {runfile['sha256'][:16]}…)</summary>", "", "```toml",
+                runfile["text"].rstrip("\n"), "```", "", "</details>"]
+    return out
+
+
+def render_html(markdown: str, title: str, figures_dir: str | os.PathLike) -> str:
+    """``report.html``: the Markdown report as one page, figures embedded (no network)."""
+    from countscale._markdown_html import markdown_to_html
+
+    folder = Path(figures_dir)
+
+    def image(src: str) -> bytes | None:
+        path = folder / src
+        return path.read_bytes() if path.is_file() and path.parent == folder else None
+
+    return markdown_to_html(markdown, title, image)
 
 
 def _other_warnings(results: Mapping[str, Any]) -> list[str]:
@@ -274,6 +666,16 @@ def _contamination_markdown(cont: Mapping[str, Any]) -> list[str]:
         "",
         f"From {method}. The star fraction is stars / all sources in the bin, with its 68 % "
         "interval" + (" (Clopper-Pearson)." if cont["method"] == "classifier" else "."),
+    ]
+    fractions = [f for f in cont["fraction"] if f is not None]
+    if fractions:
+        out[-1] += (f" It runs from {min(fractions):.3f} to {max(fractions):.3f} over the "
+                    "magnitude bins.")
+    out += [
+        "",
+        "<details>",
+        f"<summary>Stars and galaxies in each of the {sum(1 for n in cont['n_sources'] if n)} "
+        "magnitude bins</summary>",
         "",
         "| magnitude | sources | stars | galaxies | star fraction |",
         "|---|---:|---:|---:|---:|",
@@ -289,6 +691,7 @@ def _contamination_markdown(cont: Mapping[str, Any]) -> list[str]:
         out.append(f"| {edges[i]:.4g}–{edges[i + 1]:.4g} | {n:,.0f} | {star_text} | "
                    f"{gal:,.0f} ± {cont['n_galaxies_err'][i]:,.0f} | "
                    + ("–" if frac is None else f"{frac:.3f} ({lo:.3f}–{hi:.3f})") + " |")
+    out += ["", "</details>"]
     for note in cont.get("notes", []):
         out += ["", f"Note: {note.rstrip('.')}."]
     return out
@@ -726,6 +1129,25 @@ def _totals_text(totals: Mapping[str, Any]) -> list[str]:
     return lines
 
 
+#: The report's sections after the summary and the footprint, in order. A stage adds its
+#: entry here: its results key, a function of its block returning Markdown lines (from its
+#: ``## `` heading on), and its figures (names in :data:`FIGURE_NAMES`, with their words).
+STAGE_SECTIONS: list[StageSection] = [
+    StageSection("completeness", _completeness_markdown, (("completeness", "completeness"),)),
+    StageSection("counts", _counts_markdown, (("counts", "number counts"),)),
+    StageSection("luminosity_function", _luminosity_function_markdown,
+                 (("luminosity_function", "luminosity function"),)),
+    StageSection("variance", _variance_markdown,
+                 (("variance", "cosmic variance against area"),)),
+    StageSection("contamination", _contamination_markdown,
+                 (("contamination", "stars among the sources"),)),
+    StageSection("sky_model", _sky_model_markdown, (("sky_model", "sky model"),)),
+    StageSection("totals", _totals_markdown,
+                 (("totals", "totals with their intervals"),
+                  ("totals_budget", "error budgets of the totals"))),
+]
+
+
 def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] = ()) -> str:
     """The plain-text summary ``countscale run`` prints."""
     run, ledger, fp, tally = (results["run"], results["ledger"], results["footprint"],
@@ -744,13 +1166,11 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
         f"footprint       {fp['area_deg2']:.6g} ± {fp['area_uncertainty_deg2']:.2g} deg² "
         f"(order {fp['max_order']})",
         f"regions         {_regions_line(tally['regions'])}",
-        "",
-        f"counts per magnitude bin ({tally['mag_bins']['grid']} grid)",
-        f"  {'magnitude':<15} {'sources':>12} {'per deg² mag':>14}",
+        f"magnitudes      {sum(tally['counts']):,d} sources in {len(tally['counts'])} bins "
+        f"from {tally['mag_bins']['edges'][0]:g} to {tally['mag_bins']['edges'][-1]:g} "
+        f"(brighter {tally['n_brighter']:,d}; fainter {tally['n_fainter']:,d}; every bin in "
+        "report.md and results.json)",
     ]
-    lines += [f"  {lo:>6.4g} – {hi:<6.4g} {n:>12,d} {d:>14.4g}"
-              for lo, hi, n, d in _bin_rows(results)]
-    lines.append(f"  brighter {tally['n_brighter']:,d}; fainter {tally['n_fainter']:,d}")
     if "completeness" in results:
         comp = results["completeness"]
         lines += ["", f"completeness    {comp['model']}: m50 {_estimate(comp['m50'])}, "
@@ -831,7 +1251,35 @@ def render_text(results: Mapping[str, Any], files: Iterable[os.PathLike | str] =
     files = [str(f) for f in files]
     if files:
         lines += ["", "written         " + "\n                ".join(files)]
+    lines += ["", *summary_text(results.get("summary") or summarise(results))]
     return "\n".join(lines)
+
+
+def summary_text(summary: Mapping[str, Any]) -> list[str]:
+    """The summary table ``countscale run`` ends with (the terminal's form of the report's
+    opening section)."""
+    area = summary["area"]
+    lines = [
+        "summary",
+        f"  area                {area['area_deg2']:.4g} deg² ({100 * area['sky_fraction']:.2g} % "
+        "of the sky)",
+        f"  sources             {summary['sources']['in_footprint']:,d} in the footprint",
+    ]
+    if summary.get("m50"):
+        lines.append(f"  half detected at    m = {summary['m50']:.2f}")
+    for item in summary["headlines"]:
+        dominant = item["dominant_error"]
+        source = (f"{dominant['name'].replace('_', ' ')} {100 * dominant['share']:.0f} %"
+                  if dominant else "not broken down")
+        lines += [
+            f"  {item['label']}",
+            f"      {_words(item['median'])} {_unit_words(item['unit'])}   68 %: "
+            f"{_range_words(item['interval_68'])}   95 %: {_range_words(item['interval_95'])}"
+            f"   largest error: {source}",
+        ]
+        lines += [f"      ! {caution}" for caution in item["cautions"]]
+    lines += [f"  ! {caution}" for caution in summary["cautions"]]
+    return lines
 
 
 # --------------------------------------------------------------------------------------------
@@ -878,7 +1326,7 @@ class WrittenReport(NamedTuple):
 
 def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
                  formats: Iterable[str] = ("json", "markdown"),
-                 footprint: Any = None) -> WrittenReport:
+                 footprint: Any = None, depth: Any = None) -> WrittenReport:
     """Write the report folder; ``results.json`` last (see the module docstring).
 
     Parameters
@@ -888,12 +1336,14 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
     out_dir : path
         The folder (created if needed).
     formats : iterable of str
-        ``"markdown"`` adds ``report.md``; ``"png"`` adds the figures (footprint, when
-        `footprint` is given; completeness and number counts when the results have them),
-        which the Markdown report shows. ``results.json`` is always written: it marks a
-        complete report. ``"html"`` is accepted and not produced yet.
+        ``"markdown"`` adds ``report.md``; ``"html"`` adds ``report.html`` (the same text as
+        one self-contained page, figures embedded); ``"png"`` adds the figures (footprint,
+        when `footprint` is given; one per stage that has one), which both reports show.
+        ``results.json`` is always written: it marks a complete report.
     footprint : countscale.footprint.Footprint, optional
         For the footprint figure.
+    depth : countscale.completeness.DepthMap, optional
+        The depth map, drawn in the footprint figure's zoom.
 
     Returns
     -------
@@ -913,7 +1363,8 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
 
         title = _title(results)
         drawers = {
-            "footprint": lambda p: plots.footprint_figure(footprint, p, title=title),
+            "footprint": lambda p: plots.footprint_figure(footprint, p, title=title,
+                                                          depth=depth),
             "completeness": lambda p: plots.completeness_figure(
                 results["completeness"], p, title=f"{title}: detection completeness"),
             "counts": lambda p: plots.counts_figure(
@@ -934,7 +1385,10 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
         }
         for name in figure_names(results, formats, footprint):
             figures[name] = drawers[name]
-    results = dict(results)
+    summary = summarise(results)
+    results = {**{k: results[k] for k in ("countscale_version", "survey") if k in results},
+               "summary": summary, **results}
+    results["summary"] = summary
     results_json(results)  # refuse a results dict that cannot be written before any file moves
 
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -961,8 +1415,12 @@ def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike,
     if figure_notes:
         results["figure_notes"] = figure_notes
     contents: list[tuple[str, str]] = []
-    if "markdown" in formats:
-        contents.append((REPORT_NAME, render_markdown(results)))
+    if "markdown" in formats or "html" in formats:
+        markdown = render_markdown(results)
+        if "markdown" in formats:
+            contents.append((REPORT_NAME, markdown))
+        if "html" in formats:
+            contents.append((HTML_NAME, render_html(markdown, _title(results), out_dir)))
     contents.append((RESULTS_NAME, results_json(results)))
     for name, text in contents:
         path = out_dir / name

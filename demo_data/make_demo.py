@@ -337,7 +337,7 @@ depth_map = "depth.fits"
 
 [counts]
 bins = {{start = {counts_range[0]}, stop = {counts_range[1]}, width = 0.2}}
-model = "power_law"
+model = "double_power_law"
 fit_range = [{counts_range[2]}, {counts_range[3]}]
 {lf}
 [variance]
@@ -572,7 +572,7 @@ depth_map = "star_depth.fits"
 
 [counts]
 bins = {{start = 12.0, stop = 21.0, width = 0.25}}
-model = "power_law"
+model = "double_power_law"
 fit_range = [14.0, {STAR_SKY_MAG}]
 
 [sky_model]

@@ -12,6 +12,7 @@ Outside references used here:
 from __future__ import annotations
 
 import json
+import re
 import textwrap
 
 import astropy.units as u
@@ -100,7 +101,8 @@ def test_run_writes_results_with_ledger_footprint_and_counts(tmp_path):
     assert isinstance(result, RunResult)
     # Default formats: figures (only the footprint: no completeness or counts section here),
     # then the Markdown report, then results.json last.
-    assert [p.name for p in result.files] == ["footprint.png", "report.md", "results.json"]
+    assert [p.name for p in result.files] == ["footprint.png", "report.md", "report.html",
+                                              "results.json"]
     data = json.loads((out / "results.json").read_text())
     assert data == json.loads(json.dumps(result.results))
 
@@ -122,10 +124,12 @@ def test_run_writes_results_with_ledger_footprint_and_counts(tmp_path):
     assert sum(regions["area_deg2"]) == pytest.approx(data["footprint"]["area_deg2"], rel=1e-12)
     assert data["footprint"]["area_deg2"] == pytest.approx(result.tally.area_deg2)
     assert data["run"] == {"runfile": str(runfile.resolve()), "engine": "local", "seed": 5,
-                           "stages": ["tally"], "sections_not_run": [], "warnings": []}
+                           "population": "galaxies", "stages": ["tally"],
+                           "sections_not_run": [], "warnings": []}
     assert data["survey"] == {"name": "Fictional test field"}
     markdown = (out / "report.md").read_text()
-    assert "## Row ledger" in markdown and f"| in footprint | {inside.sum():,d} |" in markdown
+    assert "## Footprint and catalogue" in markdown
+    assert f"| in footprint | {inside.sum():,d} |" in markdown
     assert result.tally.columns == {}  # no stage needs per-source columns yet
 
 
@@ -161,8 +165,10 @@ def test_same_seed_same_results_json(tmp_path):
     runfile, _ = make_survey(tmp_path)
     run_survey(runfile, out_dir=tmp_path / "one", seed=42, progress=False)
     run_survey(runfile, out_dir=tmp_path / "two", seed=42, progress=False)
-    assert ((tmp_path / "one" / "results.json").read_bytes()
-            == (tmp_path / "two" / "results.json").read_bytes())
+    # Byte for byte, apart from the run's start and end times (its provenance).
+    one, two = (re.sub(rb'"(started|finished)_utc": "[^"]*"', b"",
+                       (tmp_path / name / "results.json").read_bytes()) for name in ("one", "two"))
+    assert one == two
 
 
 def test_seed_is_drawn_and_recorded_when_not_given(tmp_path):
@@ -351,6 +357,11 @@ def test_dask_run_gives_the_same_results_json_apart_from_the_engine(tmp_path):
     a = json.loads((tmp_path / "local" / "results.json").read_text())
     b = json.loads((tmp_path / "dask" / "results.json").read_text())
     assert a["run"].pop("engine") == "local" and b["run"].pop("engine") == "dask"
+    assert a["provenance"].pop("engine") == "local" and b["provenance"].pop("engine") == "dask"
+    assert b["provenance"].pop("scheduler") == cluster.scheduler_address
+    assert a["provenance"].pop("scheduler") is None
+    for block in (a["provenance"], b["provenance"]):
+        del block["started_utc"], block["finished_utc"]
     assert a == b
     assert remote.tally.ledger.rows_rejected["duplicate_id"] == 5
 
