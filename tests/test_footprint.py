@@ -249,6 +249,44 @@ def test_separable_lattice_is_the_pointwise_one_bit_for_bit():
                     assert (px[k], py[k], pz[k]) == (sthk * ck, sthk * sk, zk)
     assert n_equatorial > 100  # the separable path was taken
 
+
+@pytest.mark.parametrize("order", [0, 1, 2, 5, 8, 13, 16, 21, 29])
+def test_pixel_functions_are_healpy_s_to_the_bit(order):
+    # The footprint builds shapes without importing healpy (which imports matplotlib); its
+    # own NEST pix2vec, vec2pix and max_pixrad must agree with healpy's exactly (computed
+    # with healpy).
+    from countscale import _discs
+
+    nside = 2**order
+    rng = np.random.default_rng(order)
+    npix = 12 * nside**2
+    cells = np.unique(np.concatenate([rng.integers(0, npix, 20000),
+                                      np.arange(min(npix, 500)), npix - 1 - np.arange(
+                                          min(npix, 500))]))
+    expected = np.stack(hp.pix2vec(nside, cells, nest=True), axis=-1)
+    assert np.array_equal(_discs.pix2vec_nest(order, cells), expected)
+    assert np.array_equal(_discs.vec2pix_nest(order, expected), cells)
+    v = rng.normal(size=(20000, 3))
+    v /= np.linalg.norm(v, axis=1)[:, None]
+    assert np.array_equal(_discs.vec2pix_nest(order, v),
+                          hp.vec2pix(nside, v[:, 0], v[:, 1], v[:, 2], nest=True))
+    assert _discs.max_pixrad(order) == hp.max_pixrad(nside)
+
+
+def test_shapes_are_built_without_importing_healpy():
+    # Start-up time of `countscale area` on a run file: healpy imports matplotlib and
+    # astropy (about 0.7 s of CPU); a box minus holes must not need it.
+    import subprocess
+    import sys
+
+    code = ("import sys; from countscale.footprint import Footprint; "
+            "f = Footprint.box((10, 12), (0, 2), 12) - Footprint.circles([11], [1], 300, 12); "
+            "f.summary(); print(sorted(m for m in ('healpy', 'matplotlib', 'astropy') "
+            "if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True)
+    assert out.stdout.strip() == "[]"
+
 def test_equatorial_cell_radius_bound_against_healpy():
     # The walk bounds the centre-to-edge distance of equatorial-zone cells by the
     # half-diagonals of a rhombus (pi / 4 nside in phi, 2 / 3 nside in z); check it against
