@@ -540,7 +540,7 @@ model = "logistic"
 depth_map = "star_depth.fits"
 
 [counts]
-bins = {{start = 12.0, stop = 21.0, width = 0.2}}
+bins = {{start = 12.0, stop = 21.0, width = 0.25}}
 model = "power_law"
 fit_range = [14.0, {STAR_SKY_MAG}]
 
