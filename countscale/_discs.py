@@ -34,7 +34,8 @@ The walk
 
 from __future__ import annotations
 
-import healpy as hp
+import math
+
 import numpy as np
 from numba import njit
 
@@ -55,6 +56,11 @@ EDGE_ERROR = 0.2
 #: `_geometry._PIXRAD_SAFETY` (the curved edges bulge a little beyond the corners).
 PIXRAD_SAFETY = 1.05
 
+#: Below this |z| + dz an equatorial cell's half-diagonal in phi, pi / (4 nside), is larger
+#: than the one in z, dz / sqrt(1 - (|z| + dz)^2) with dz = 2 / (3 nside): they are equal at
+#: sqrt(1 - (8 / (3 pi))^2) = 0.5287 (Gorski et al. 2005, eq. 4-5 for the cell shape).
+PHI_BOUND_Z = 0.52
+
 #: Covered fractions closer than this to 0 or 1 are 0 or 1 (as `_geometry._refine` does).
 SNAP = 1e-6
 
@@ -73,10 +79,11 @@ SAMPLE_SIGMA = float(np.sqrt(2 * 1.3 * SAMPLE_SIDE / 6.0) / SAMPLE_SIDE**2)
 #: Compiler options: division by zero gives inf rather than raising (no check per
 #: division), and a / b may become a * (1 / b) and a * b + c a fused multiply-add (each
 #: exact to an ulp; results stay deterministic for a given build).
-_jit = njit(cache=True, error_model="numpy", fastmath={"arcp", "contract", "nsz"})
-#: The same, inlined where called (the output helpers: measured 2x faster emission).
-_jit_inline = njit(cache=True, error_model="numpy", fastmath={"arcp", "contract", "nsz"},
-                   inline="always")
+_OPTIONS = dict(cache=True, error_model="numpy", fastmath={"arcp", "contract", "nsz"})
+#: Kernels that allocate nothing are compiled without numba's reference counting
+#: (``_nrt=False``): with it, every call that passes arrays counted each one up and down
+#: again with atomic operations, which cost the walk a third of its time (measured).
+_jit = njit(_nrt=False, **_OPTIONS)
 
 _JRLL = np.array([2, 2, 2, 2, 3, 3, 3, 3, 4, 4, 4, 4], dtype=np.int64)
 _JPLL = np.array([1, 3, 5, 7, 0, 2, 4, 6, 1, 3, 5, 7], dtype=np.int64)
@@ -139,13 +146,19 @@ def _cos_sin_near(phi, phi_ref, cos_ref, sin_ref):
 
 
 @_jit
-def _lattice(face, x0, y0, step, n, cos_ref, sin_ref, phi_ref, px, py, pz):
+def _lattice(face, x0, y0, step, n, cos_ref, sin_ref, phi_ref, px, py, pz, work):
     """Unit vectors of the n x n face points (x0 + a step, y0 + b step), row a, column b.
 
     cos and sin of phi come from those of `phi_ref` (the cell's centre) rotated by the
     small difference, by series, which is exact to rounding and avoids a cos and a sin
     per point; far from `phi_ref` (near a pole) they are computed directly.
     """
+    jr_top = _JRLL[face] - x0 - y0
+    jr_bottom = _JRLL[face] - (x0 + (n - 1) * step) - (y0 + (n - 1) * step)
+    if jr_top <= 3.0 and jr_bottom >= 1.0:
+        _lattice_equatorial(face, x0, y0, step, n, cos_ref, sin_ref, phi_ref, px, py, pz,
+                            work)
+        return
     for a in range(n):
         x = x0 + a * step
         for b in range(n):
@@ -156,6 +169,207 @@ def _lattice(face, x0, y0, step, n, cos_ref, sin_ref, phi_ref, px, py, pz):
             px[k] = sth * c
             py[k] = sth * s
             pz[k] = z
+
+
+@_jit
+def _lattice_equatorial(face, x0, y0, step, n, cos_ref, sin_ref, phi_ref, px, py, pz, work):
+    """`_lattice` of a lattice wholly in the equatorial zone (2/3 >= z >= -2/3).
+
+    There z depends on x + y only and phi on x - y only (Gorski et al. 2005, eq. 5-6), so
+    2n - 1 values of each make the n^2 points. The face coordinates are dyadic fractions
+    with far fewer than 53 bits, so every sum and difference is exact and the points are
+    the same to the last bit as `_xyf_loc` point by point.
+    """
+    # work rows: z, sin(theta) by a + b; cos(phi), sin(phi) by a - b + n - 1.
+    for i in range(2 * n - 1):
+        # A representative pair (a, b) of each sum and each difference.
+        a = min(i, n - 1)
+        z, _, sth = _xyf_loc(face, x0 + a * step, y0 + (i - a) * step)
+        work[0, i] = z
+        work[1, i] = sth
+        a = max(i - (n - 1), 0)
+        b = a - (i - (n - 1))
+        # phi as `_xyf_loc` has it where nr = 1.
+        tmp = _JPLL[face] * 1.0 + (x0 + a * step) - (y0 + b * step)
+        if tmp < 0.0:
+            tmp += 8.0
+        if tmp >= 8.0:
+            tmp -= 8.0
+        work[2, i], work[3, i] = _cos_sin_near((0.25 * np.pi) * tmp, phi_ref, cos_ref,
+                                               sin_ref)
+    for a in range(n):
+        for b in range(n):
+            k = a * n + b
+            sth = work[1, a + b]
+            d = a - b + n - 1
+            px[k] = sth * work[2, d]
+            py[k] = sth * work[3, d]
+            pz[k] = work[0, a + b]
+
+
+# ----------------------------------------------------------------------------------------
+# HEALPix pixel functions (NEST), so that building a footprint from shapes needs no healpy
+# import (healpy imports matplotlib and astropy: about 0.7 s of CPU per process)
+# ----------------------------------------------------------------------------------------
+#: Options of the pixel functions below: no fast-math, so that every operation rounds as in
+#: the HEALPix C++ library that healpy wraps and the results are the same to the bit.
+_exact = njit(cache=True, _nrt=False)
+
+
+def max_pixrad(order):
+    """Largest angle (radians) between a cell's centre and its corners at `order`.
+
+    healpy's `max_pixrad`, with the HEALPix C++ library's construction (the corner at
+    z = 2/3 of the equatorial cell against the nearest polar-cap centre); tested equal to
+    healpy's value at every order.
+    """
+    nside = 1 << order
+    st = math.sqrt((1.0 - 2.0 / 3.0) * (1.0 + 2.0 / 3.0))
+    phi = math.pi / (4 * nside)
+    va = (st * math.cos(phi), st * math.sin(phi), 2.0 / 3.0)
+    t1 = 1.0 - 1.0 / nside
+    t1 *= t1
+    zb = 1 - t1 / 3
+    vb = (math.sqrt((1.0 - zb) * (1.0 + zb)), 0.0, zb)
+    cx = va[1] * vb[2] - va[2] * vb[1]
+    cy = va[2] * vb[0] - va[0] * vb[2]
+    cz = va[0] * vb[1] - va[1] * vb[0]
+    return math.atan2(math.sqrt(cx * cx + cy * cy + cz * cz),
+                      va[0] * vb[0] + va[1] * vb[1] + va[2] * vb[2])
+
+
+@_exact
+def _compress_bits(v):
+    """The even bits of `v`, packed (de-interleaving a NEST index into x or y)."""
+    v &= 0x5555555555555555
+    v = (v | (v >> 1)) & 0x3333333333333333
+    v = (v | (v >> 2)) & 0x0F0F0F0F0F0F0F0F
+    v = (v | (v >> 4)) & 0x00FF00FF00FF00FF
+    v = (v | (v >> 8)) & 0x0000FFFF0000FFFF
+    return (v | (v >> 16)) & 0x00000000FFFFFFFF
+
+
+@_exact
+def _spread_bits(v):
+    """The bits of `v` moved to the even positions (the inverse of `_compress_bits`)."""
+    v &= 0x00000000FFFFFFFF
+    v = (v | (v << 16)) & 0x0000FFFF0000FFFF
+    v = (v | (v << 8)) & 0x00FF00FF00FF00FF
+    v = (v | (v << 4)) & 0x0F0F0F0F0F0F0F0F
+    v = (v | (v << 2)) & 0x3333333333333333
+    return (v | (v << 1)) & 0x5555555555555555
+
+
+@_exact
+def _pix2vec_kernel(order, cells, out):
+    """Unit vectors of the centres of NEST `cells` at `order`, into `out` (n, 3).
+
+    Gorski et al. (2005, ApJ 622, 759, eq. 4-9), in the HEALPix C++ library's arithmetic
+    (``pix2loc`` then ``pix2vec``), operation for operation, so that the vectors equal
+    healpy's `pix2vec` to the bit.
+    """
+    nside = np.int64(1) << order
+    fact2 = 4.0 / (12 * nside * nside)
+    fact1 = (nside << 1) * fact2
+    halfpi = 0.5 * np.pi
+    for i in range(len(cells)):
+        pix = cells[i]
+        face = pix >> (2 * order)
+        local = pix & ((np.int64(1) << (2 * order)) - 1)
+        ix = _compress_bits(local)
+        iy = _compress_bits(local >> 1)
+        jr = (_JRLL[face] << order) - ix - iy - 1
+        have_sth = False
+        sth = 0.0
+        if jr < nside:
+            nr = jr
+            tmp = (nr * nr) * fact2
+            z = 1 - tmp
+            if z > 0.99:
+                sth = np.sqrt(tmp * (2.0 - tmp))
+                have_sth = True
+        elif jr > 3 * nside:
+            nr = nside * 4 - jr
+            tmp = (nr * nr) * fact2
+            z = tmp - 1
+            if z < -0.99:
+                sth = np.sqrt(tmp * (2.0 - tmp))
+                have_sth = True
+        else:
+            nr = nside
+            z = (2 * nside - jr) * fact1
+        t = _JPLL[face] * nr + ix - iy
+        if t < 0:
+            t += 8 * nr
+        if nr == nside:
+            phi = 0.75 * halfpi * t * fact1
+        else:
+            phi = (0.5 * halfpi * t) / nr
+        if not have_sth:
+            sth = np.sqrt((1.0 - z) * (1.0 + z))
+        out[i, 0] = sth * np.cos(phi)
+        out[i, 1] = sth * np.sin(phi)
+        out[i, 2] = z
+
+
+def pix2vec_nest(order, cells):
+    """Unit vectors (n, 3) of the centres of NEST `cells` at `order` (healpy's `pix2vec`)."""
+    cells = np.ascontiguousarray(cells, dtype=np.int64).reshape(-1)
+    out = np.empty((len(cells), 3))
+    _pix2vec_kernel(order, cells, out)
+    return out
+
+
+@_exact
+def _vec2pix_kernel(order, xyz, out):
+    """NEST cells at `order` holding unit vectors `xyz` (Gorski et al. 2005, eq. 4-9)."""
+    nside = np.int64(1) << order
+    for i in range(len(xyz)):
+        x, y, z = xyz[i, 0], xyz[i, 1], xyz[i, 2]
+        za = abs(z)
+        tt = np.arctan2(y, x) * (2.0 / np.pi)  # in [-2, 2]
+        if tt < 0.0:
+            tt += 4.0
+        if tt >= 4.0:
+            tt -= 4.0
+        if za <= 2.0 / 3.0:  # equatorial region
+            temp1 = nside * (0.5 + tt)
+            temp2 = nside * (z * 0.75)
+            jp = np.int64(temp1 - temp2)  # index of ascending edge line
+            jm = np.int64(temp1 + temp2)  # index of descending edge line
+            ifp = jp >> order
+            ifm = jm >> order
+            if ifp == ifm:
+                face = ifp + 4 if ifp < 4 else 4
+            elif ifp < ifm:
+                face = ifp
+            else:
+                face = ifm + 8
+            ix = jm & (nside - 1)
+            iy = nside - (jp & (nside - 1)) - 1
+        else:  # polar caps
+            ntt = min(np.int64(tt), 3)
+            tp = tt - ntt
+            tmp = nside * np.sqrt(3.0 * (1.0 - za))
+            jp = min(np.int64(tp * tmp), nside - 1)
+            jm = min(np.int64((1.0 - tp) * tmp), nside - 1)
+            if z >= 0:
+                face = ntt
+                ix = nside - jm - 1
+                iy = nside - jp - 1
+            else:
+                face = ntt + 8
+                ix = jp
+                iy = jm
+        out[i] = (face << (2 * order)) + _spread_bits(ix) + (_spread_bits(iy) << 1)
+
+
+def vec2pix_nest(order, xyz):
+    """NEST cells (int64) at `order` holding unit vectors `xyz` (n, 3)."""
+    xyz = np.ascontiguousarray(xyz, dtype=float).reshape(-1, 3)
+    out = np.empty(len(xyz), dtype=np.int64)
+    _vec2pix_kernel(order, xyz, out)
+    return out
 
 
 # ----------------------------------------------------------------------------------------
@@ -193,15 +407,21 @@ def _disc_polygon_fraction(u, v, k, radius):
     r2 = radius * radius
     area2 = 0.0
     n_in = 0
+    u_lo = v_lo = np.inf
+    u_hi = v_hi = -np.inf
     for i in range(k):
         j = i + 1 if i + 1 < k else 0
         area2 += u[i] * v[j] - v[i] * u[j]
         if u[i] * u[i] + v[i] * v[i] <= r2:
             n_in += 1
+        u_lo, u_hi = min(u_lo, u[i]), max(u_hi, u[i])
+        v_lo, v_hi = min(v_lo, v[i]), max(v_hi, v[i])
     if area2 == 0.0:
         return 0.0
     if n_in == k:
         return 1.0  # a convex polygon with every vertex in the (convex) disc
+    if u_lo > radius or u_hi < -radius or v_lo > radius or v_hi < -radius:
+        return 0.0  # apart: the polygon's bounding box misses the disc's
     # Work counter-clockwise: mirror v when the polygon turns the other way.
     sign = 1.0 if area2 > 0.0 else -1.0
     area2 = abs(area2)
@@ -439,7 +659,7 @@ _NPAIR = 8  # (flagged segment, disc) pairs written
 _BSCAN = 9  # base: segment holding the start of the cell the walk is at
 
 
-@_jit_inline
+@_jit
 def _put(lo, hi, w, s, flag, state, edges, weight, sig_idx, sig_val, both_idx):
     """Append the segment [lo, hi) with weight `w` and sigma `s` (gaps get weight 0)."""
     if hi <= lo or state[_STATUS] != _OK:
@@ -476,7 +696,7 @@ def _put(lo, hi, w, s, flag, state, edges, weight, sig_idx, sig_val, both_idx):
     state[_PLAIN] = 1 if plain else 0
 
 
-@_jit_inline
+@_jit
 def _copy_base(to, state, b_edges, b_weight, b_sigma, edges, weight, sig_idx, sig_val,
                both_idx):
     """Emit the base unchanged from the current position up to `to`."""
@@ -501,7 +721,7 @@ def _copy_base(to, state, b_edges, b_weight, b_sigma, edges, weight, sig_idx, si
         state[_POS] = to
 
 
-@_jit_inline
+@_jit
 def _emit(lo, hi, cov, cov_sig, subtract, state, b_edges, b_weight, b_sigma, edges, weight,
           sig_idx, sig_val, both_idx):
     """Disc coverage `cov` over [lo, hi): itself, or base * (1 - cov) when subtracting.
@@ -534,7 +754,15 @@ def _emit(lo, hi, cov, cov_sig, subtract, state, b_edges, b_weight, b_sigma, edg
         # both ways of taking the difference give the same numbers.
         keep = np.float32(1.0) - np.float32(cov)
         w = bw * keep
-        s = np.hypot(bs * keep, bw * np.float32(cov_sig))
+        s_base = bs * keep
+        s_disc = bw * np.float32(cov_sig)
+        # hypot(a, 0) is a: skip the (slow) call in the usual case of one exact term.
+        if s_disc == 0.0:
+            s = s_base
+        elif s_base == 0.0:
+            s = s_disc
+        else:
+            s = np.hypot(s_base, s_disc)
         flag = disc_edge and ((0.0 < bw < 1.0) or bs > 0.0)
         _put(pos, seg_hi, w, s, flag, state, edges, weight, sig_idx, sig_val, both_idx)
         flagged = flagged or flag
@@ -573,6 +801,20 @@ def _base_is_empty(lo, hi, b_edges, b_weight, b_sigma, state):
 # the walk
 # ----------------------------------------------------------------------------------------
 @_jit
+def _half_angle_cos_sin(p):
+    """cos and sin of p / 2 (series below 0.1 rad: no call, exact to rounding)."""
+    h = 0.5 * p
+    if h < 0.1:
+        h2 = h * h
+        ch = 1.0 - h2 * 0.5 * (1.0 - h2 * (1.0 / 12.0) * (1.0 - h2 * (1.0 / 30.0) * (
+            1.0 - h2 * (1.0 / 56.0))))
+        sh = h * (1.0 - h2 * (1.0 / 6.0) * (1.0 - h2 * (1.0 / 20.0) * (
+            1.0 - h2 * (1.0 / 42.0) * (1.0 - h2 * (1.0 / 72.0)))))
+        return ch, sh
+    return np.cos(h), np.sin(h)
+
+
+@_jit
 def _points_per_edge(max_order, z_abs, pixrad):
     """Points per cell edge (a power of two) for the chord error to stay below tolerance.
 
@@ -588,7 +830,7 @@ def _points_per_edge(max_order, z_abs, pixrad):
     return m, m * m < need
 
 
-@njit(cache=True, error_model="numpy", fastmath={"arcp", "contract", "nsz"}, nogil=True)
+@njit(nogil=True, **_OPTIONS)
 def _walk(centres, half_sin, half_cos, proj_centres, proj_e1, proj_e2, proj_radius,
           complement, max_order, pixrad, z_simple, subtract, b_edges, b_weight, b_sigma,
           range_lo, range_hi, edges, weight, sig_idx, sig_val, both_idx, pair_seg, pair_disc,
@@ -631,12 +873,24 @@ def _walk(centres, half_sin, half_cos, proj_centres, proj_e1, proj_e2, proj_radi
     pu = np.empty(8 * MAX_POINTS_PER_EDGE)
     pv = np.empty(8 * MAX_POINTS_PER_EDGE)
     inside = np.empty(size * size, dtype=np.bool_)
+    work = np.empty((4, 2 * size - 1))
     partial = np.empty((4, n), dtype=np.int32)
     partial_frac = np.empty((4, n))
     partial_sig = np.empty((4, n))
     n_partial = np.zeros(4, dtype=np.int64)
     covered = np.zeros(4, dtype=np.bool_)
     nside_max = 1 << max_order
+    # cos and sin of half the bound on a cell's radius: `pixrad`, and in the equatorial
+    # zone up to |z| + dz = PHI_BOUND_Z, the rhombus's half-diagonal in phi.
+    ch_pix = np.empty(levels)
+    sh_pix = np.empty(levels)
+    p_phi = np.empty(levels)
+    ch_phi = np.empty(levels)
+    sh_phi = np.empty(levels)
+    for lev in range(levels):
+        ch_pix[lev], sh_pix[lev] = _half_angle_cos_sin(pixrad[lev])
+        p_phi[lev] = PIXRAD_SAFETY * (0.25 * np.pi * (1.0 / (1 << lev)))
+        ch_phi[lev], sh_phi[lev] = _half_angle_cos_sin(p_phi[lev])
 
     level = 0
     child[0] = 0
@@ -676,23 +930,20 @@ def _walk(centres, half_sin, half_cos, proj_centres, proj_e1, proj_e2, proj_radi
                                              sin_phis[level - 1])
         phis[level], cos_phis[level], sin_phis[level] = phi, cos_phi, sin_phi
         vx, vy = sth * cos_phi, sth * sin_phi
-        p = pixrad[level]
         dz = (2.0 / 3.0) / (1 << level)
         if level >= 3 and abs(z) + dz <= 2.0 / 3.0:
             # Equatorial zone: the cell is a near-rhombus with corners dz away in z and
             # pi / (4 nside) in phi, a tighter bound than `max_pixrad` (checked against
             # healpy's boundaries in the tests), with the same safety factor.
-            p = PIXRAD_SAFETY * max(0.25 * np.pi * inv, dz / np.sqrt(
-                1.0 - (abs(z) + dz) ** 2))
-        h = 0.5 * p
-        if h < 0.1:
-            h2 = h * h
-            ch = 1.0 - h2 * 0.5 * (1.0 - h2 * (1.0 / 12.0) * (1.0 - h2 * (1.0 / 30.0) * (
-                1.0 - h2 * (1.0 / 56.0))))
-            sh = h * (1.0 - h2 * (1.0 / 6.0) * (1.0 - h2 * (1.0 / 20.0) * (
-                1.0 - h2 * (1.0 / 42.0) * (1.0 - h2 * (1.0 / 72.0)))))
+            if abs(z) + dz <= PHI_BOUND_Z:
+                # The phi half-diagonal is the larger: the bound of every such cell.
+                p, ch, sh = p_phi[level], ch_phi[level], sh_phi[level]
+            else:
+                p = PIXRAD_SAFETY * max(0.25 * np.pi * inv, dz / np.sqrt(
+                    1.0 - (abs(z) + dz) ** 2))
+                ch, sh = _half_angle_cos_sin(p)
         else:
-            ch, sh = np.cos(h), np.sin(h)
+            p, ch, sh = pixrad[level], ch_pix[level], sh_pix[level]
         n_src = n if level == 0 else counts[level - 1]
         stats[1] += n_src
         n_new = 0
@@ -741,12 +992,13 @@ def _walk(centres, half_sin, half_cos, proj_centres, proj_e1, proj_e2, proj_radi
         m_half, nh = 1, 3
         x0 = (2.0 * x) / nside_max
         y0 = (2.0 * y) / nside_max
-        _lattice(f, x0, y0, 1.0 / (m * nside_max), nl, cos_phi, sin_phi, phi, lx, ly, lz)
+        _lattice(f, x0, y0, 1.0 / (m * nside_max), nl, cos_phi, sin_phi, phi, lx, ly, lz,
+                 work)
         if extrapolate:
             m_half = m // 2
             nh = m + 1
             _lattice(f, x0, y0, 1.0 / (m_half * nside_max), nh, cos_phi, sin_phi, phi, hx,
-                     hy, hz)
+                     hy, hz, work)
         for c in range(4):
             n_partial[c] = 0
             covered[c] = False
@@ -941,7 +1193,7 @@ def rasterise(centres, radius_rad, max_order, base=None, threads=None):
     proj_centres = np.where(comp[:, None], -centres, centres)
     e1, e2 = _basis(proj_centres)
     proj_radius = 2.0 * np.sin(0.5 * np.where(comp, np.pi - radius, radius))
-    pixrad = np.array([hp.max_pixrad(2**order) for order in range(max_order + 1)])
+    pixrad = np.array([max_pixrad(order) for order in range(max_order + 1)])
     pixrad *= PIXRAD_SAFETY
     # Where one point per edge is enough (see `_points_per_edge`): |z| up to z_simple.
     cell = np.sqrt(np.pi / 3.0) / 2**max_order
@@ -1033,7 +1285,7 @@ def rasterise(centres, radius_rad, max_order, base=None, threads=None):
 
 def _nest_at(centres, order):
     """NEST cell of `order` holding each unit vector."""
-    return hp.vec2pix(2**order, centres[:, 0], centres[:, 1], centres[:, 2], nest=True)
+    return vec2pix_nest(order, centres)
 
 
 def _split(centres, max_order, threads):

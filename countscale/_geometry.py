@@ -29,7 +29,6 @@ import math
 from dataclasses import dataclass, field
 from functools import lru_cache
 
-import healpy as hp
 import numpy as np
 
 from countscale.errors import InputError
@@ -101,7 +100,17 @@ def _angle_between(u, v):
 
 
 def _pixrad(order):
-    return hp.max_pixrad(2**order) * _PIXRAD_SAFETY
+    from countscale._discs import max_pixrad
+
+    return max_pixrad(order) * _PIXRAD_SAFETY
+
+
+def _pix2vec(order, cells):
+    """Unit vectors (N, 3) of the centres of NEST `cells` at `order` (healpy's `pix2vec`,
+    to the bit, without importing healpy)."""
+    from countscale._discs import pix2vec_nest
+
+    return pix2vec_nest(order, cells)
 
 
 def _orthonormal_basis(centre):
@@ -133,7 +142,7 @@ class Shape:
 
     def classify_cells(self, part, cells, order):
         """State of NEST `cells` of `order`: +1 all inside, -1 all outside, 0 crossing."""
-        xyz = np.stack(hp.pix2vec(2**order, cells, nest=True), axis=-1)
+        xyz = _pix2vec(order, cells)
         return self.classify(part, xyz, _pixrad(order))
 
     def classify(self, part, xyz, radius_rad):
@@ -165,7 +174,7 @@ class Shape:
 
     def _fraction(self, part, cells, order):
         """Covered fraction and its standard error for boundary cells at `order`."""
-        xyz = np.stack(hp.pix2vec(2**order, cells, nest=True), axis=-1)
+        xyz = _pix2vec(order, cells)
         local = self._local_boundary(part, xyz, _pixrad(order))
         if local is None:
             return _subsampled_fraction(self, part, cells, order)
@@ -542,11 +551,8 @@ def _cell_vertices(cells, order):
     At the orders where boundaries are measured the cell is a parallelogram to high accuracy:
     c(u, v) = P + u A + v B with the children at u, v in {1/4, 3/4}.
     """
-    nside = 2 ** (order + 1)
     base = 4 * cells
-    c00, c10, c01, c11 = (
-        np.stack(hp.pix2vec(nside, base + k, nest=True), axis=-1) for k in range(4)
-    )
+    c00, c10, c01, c11 = (_pix2vec(order + 1, base + k) for k in range(4))
     mid = 0.25 * (c00 + c10 + c01 + c11)
     half_a = 0.5 * ((c10 - c00) + (c11 - c01))
     half_b = 0.5 * ((c01 - c00) + (c11 - c10))
@@ -615,7 +621,7 @@ def _subsampled_fraction(shape, part, cells, order):
         sub_cells = (sub_cells[:, None] * 4 + np.arange(4)).reshape(-1)
         sub_idx = np.repeat(sub_idx, 4)
         if level < depth:
-            xyz = np.stack(hp.pix2vec(2 ** (order + level), sub_cells, nest=True), axis=-1)
+            xyz = _pix2vec(order + level, sub_cells)
             state = shape.classify(part[sub_idx], xyz, _pixrad(order + level))
             full = state == 1
             np.add.at(units, sub_idx[full], 4 ** (depth - level))
@@ -624,12 +630,12 @@ def _subsampled_fraction(shape, part, cells, order):
         else:
             jitter = HEALPIX_MAX_ORDER - order - depth
             fine = (sub_cells << (2 * jitter)) + rng.integers(0, 4**jitter, len(sub_cells))
-            xyz = np.stack(hp.pix2vec(2**HEALPIX_MAX_ORDER, fine, nest=True), axis=-1)
+            xyz = _pix2vec(HEALPIX_MAX_ORDER, fine)
             inside = shape._part_contains(part[sub_idx], xyz)
             np.add.at(units, sub_idx[inside], 1.0)
             np.add.at(crossing, sub_idx, 1.0)
     if depth == 0:
-        xyz = np.stack(hp.pix2vec(2**order, cells, nest=True), axis=-1)
+        xyz = _pix2vec(order, cells)
         return shape._part_contains(part, xyz).astype(float), np.full(len(cells), 0.5)
     scale = 4.0**depth
     return units / scale, np.sqrt(crossing / 12.0) / scale
@@ -674,7 +680,7 @@ def point_test_fraction(test, cells, order, depth=SUB_ORDERS, pairs=None, minus=
         block = cells[lo : lo + step]
         sub = ((block[:, None] << (2 * depth)) + offsets).reshape(-1)
         fine = (sub << (2 * jitter_levels)) + rng.integers(0, 4**jitter_levels, size=len(sub))
-        xyz = np.stack(hp.pix2vec(2**HEALPIX_MAX_ORDER, fine, nest=True), axis=-1)
+        xyz = _pix2vec(HEALPIX_MAX_ORDER, fine)
         if pairs is None:
             inside = test.contains_vec(xyz).reshape(len(block), per_cell)
         if listed is not None:

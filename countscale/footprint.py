@@ -48,7 +48,6 @@ from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
 
-import healpy as hp
 import numpy as np
 
 from countscale import _geometry as geo
@@ -750,6 +749,8 @@ class Footprint:
         pixels : array_like of int, optional
             Explicit pixel indices (a partial-sky map); then `nside` is required.
         """
+        import healpy as hp
+
         values = np.asarray(values)
         if values.dtype == bool:
             values = values.astype(np.float32)
@@ -871,6 +872,8 @@ class Footprint:
     @classmethod
     def from_positions(cls, ra, dec, order, min_count=1):
         """Occupancy footprint: cells of `order` holding at least `min_count` positions."""
+        import healpy as hp
+
         order = _check_order("order", order)
         if isinstance(min_count, bool) or not isinstance(min_count, int | np.integer) or (
             min_count < 1
@@ -1066,6 +1069,8 @@ class Footprint:
 
     def weight_at(self, ra, dec):
         """Coverage fraction of the finest cell at each position (float ndarray)."""
+        import healpy as hp
+
         ra, dec = _check_positions(ra, dec)
         cells = hp.ang2pix(2**self.max_order, ra, dec, nest=True, lonlat=True)
         return self._weight_of_cells(cells).astype(float)
@@ -1078,6 +1083,8 @@ class Footprint:
         Map-, MOC- and occupancy-based parts are known only to their pixels: there a point
         is inside when its finest cell is at least half covered.
         """
+        import healpy as hp
+
         ra, dec = _check_positions(ra, dec)
         cells = hp.ang2pix(2**self.max_order, ra, dec, nest=True, lonlat=True)
         weight = self._weight_of_cells(cells)
@@ -1099,6 +1106,8 @@ class Footprint:
         ra, dec : ndarray, shape (n,)
             Degrees.
         """
+        import healpy as hp
+
         if isinstance(n, bool) or not isinstance(n, int | np.integer) or n < 0:
             raise InputError(f"`n` must be a non-negative integer; got {n!r}")
         if self.area_sr <= 0:
@@ -1168,6 +1177,8 @@ class Footprint:
 
     def to_healpix(self, nside, nest=False):
         """Dense coverage-fraction map (float64, length 12 nside**2), RING unless `nest`."""
+        import healpy as hp
+
         order = _nside_to_order("nside", nside)
         cells, fraction = self.coverage_cells(order)
         dense = np.zeros(12 * 4**order)
@@ -1184,6 +1195,8 @@ class Footprint:
             Pseudo-C_l of the coverage-fraction map, for cosmic-variance integrals
             sigma^2 = sum_l (2l+1) C_l W_l / Omega^2.
         """
+        import healpy as hp
+
         dense = self.to_healpix(nside, nest=False)
         w_ell = hp.anafast(dense, lmax=lmax)
         return np.arange(len(w_ell)), w_ell
@@ -1195,6 +1208,8 @@ class Footprint:
         holds at least ~50 of them) by recursive bisection along the longer axis of the
         cells' spread, cutting at the area-weighted quantile.
         """
+        import healpy as hp
+
         if isinstance(n_regions, bool) or not isinstance(n_regions, int | np.integer):
             raise InputError(f"`n_regions` must be an integer >= 1; got {n_regions!r}")
         if n_regions < 1:
@@ -1238,6 +1253,7 @@ class Footprint:
         Regions
             ``n_regions`` is the number of fields; ``area_deg2`` each field's covered area.
         """
+        import healpy as hp
         from scipy.sparse import coo_matrix
         from scipy.sparse.csgraph import connected_components
 
@@ -1293,6 +1309,7 @@ class Footprint:
         With `partial`, only covered pixels are written with their indices (explicit
         indexing), which keeps high-resolution maps of small footprints small.
         """
+        import healpy as hp
         from astropy.io import fits
 
         order = _nside_to_order("nside", nside)
@@ -1352,6 +1369,8 @@ class Regions:
 
     def label(self, ra, dec):
         """Region of each position, -1 where the position is in no region's cell."""
+        import healpy as hp
+
         ra, dec = _check_positions(ra, dec)
         cells = hp.ang2pix(2**self.order, ra, dec, nest=True, lonlat=True)
         pos = np.searchsorted(self.cells, cells)
@@ -1397,6 +1416,8 @@ def _bisect(xyz, weight, idx, k, label0, labels):
 
 def _edge_cells(cells, order):
     """Which of the sorted unique `cells` have a neighbour (of 8) outside the set."""
+    import healpy as hp
+
     if len(cells) == 0:
         return np.zeros(0, dtype=bool)
     if order == 0:
