@@ -86,3 +86,15 @@ def test_no_tracked_file_points_outside_the_repository():
 ])
 def test_the_patterns_catch_what_they_should(line, flagged):
     assert any(p.search(line) for p, _ in OUTSIDE) is flagged
+
+
+def test_every_subpackage_is_installed():
+    # A plain `pip install .` ships only the packages pyproject.toml lists: a subpackage left
+    # out imports in an editable checkout and fails for everyone else.
+    import tomllib
+
+    listed = set(tomllib.loads((REPO / "pyproject.toml").read_text())["tool"]["setuptools"][
+        "packages"])
+    found = {".".join(p.parent.relative_to(REPO).parts)
+             for p in (REPO / "countscale").rglob("__init__.py")}
+    assert found == listed
