@@ -211,9 +211,12 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
         integral = counts["integral_counts"]
         m = integral["m_limit"]
         what = "stars" if population == "stars" else "sources"
+        # Stars change across the sky: their mean is the observed fields', not the sky's.
+        meaning = ("the mean over the observed fields" if population == "stars"
+                   else "the population's mean density")
         headlines.append(_headline(
             "counts.integral_counts.per_deg2", f"{what.capitalize()} per deg² brighter than "
-            f"m = {m:g} (the population's mean density)", integral["per_deg2"],
+            f"m = {m:g} ({meaning})", integral["per_deg2"],
             definition=integral.get("note"), population=population))
     totals = results.get("totals") or {}
     definitions = totals.get("definitions") or {}

@@ -298,5 +298,6 @@ def test_demo_star_summary_lists_each_total_once_in_the_words_of_stars(stars_run
     keys = [h["key"] for h in summary["headlines"]]
     assert keys == ["counts.integral_counts.per_deg2", "totals.sky_total"]
     assert summary["headlines"][0]["dominant_error"]["label"] == "field-to-field scatter"
+    assert summary["headlines"][0]["label"].endswith("(the mean over the observed fields)")
     text = render_text(stars_run.results)
     assert "field-to-field scatter" in text and "Stars in the volume" not in text
