@@ -335,8 +335,9 @@ def _run_and_print(args, runfile, engine=None, scheduler=None, seed=None):
     result = run_survey(runfile, out_dir=args.out, engine=engine, scheduler=scheduler,
                         seed=seed, progress=False if args.quiet else None)
     if args.json:
+        # The summary object only (the whole record is results.json, listed under output).
         output = {"dir": str(result.out_dir), "files": [str(f) for f in result.files]}
-        print(json.dumps({**result.results, "output": output}))
+        print(json.dumps({**result.results["summary"], "output": output}))
     else:
         print(report.render_text(result.results, result.files))
     return EXIT_OK

@@ -211,17 +211,24 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
         integral = counts["integral_counts"]
         m = integral["m_limit"]
         what = "stars" if population == "stars" else "sources"
+        # Stars change across the sky: their mean is the observed fields', not the sky's.
+        meaning = ("the mean over the observed fields" if population == "stars"
+                   else "the population's mean density")
         headlines.append(_headline(
             "counts.integral_counts.per_deg2", f"{what.capitalize()} per deg² brighter than "
-            f"m = {m:g} (the population's mean density)", integral["per_deg2"],
+            f"m = {m:g} ({meaning})", integral["per_deg2"],
             definition=integral.get("note"), population=population))
     totals = results.get("totals") or {}
     definitions = totals.get("definitions") or {}
     cautions = totals.get("cautions") or {}
     details = totals.get("details") or {}
+    stars_are_sky_total = "(sky_total)" in str(
+        (details.get("stars") or {}).get("quantity_counted", ""))
     for key in _TOTAL_KEYS:
         if not isinstance(totals.get(key), Mapping):
             continue
+        if key == "stars_total" and stars_are_sky_total:
+            continue  # stars on the sky: the same number as sky_total, listed once
         extra = []
         if key == "sky_total" and not any("surveyed sky" in c for c in cautions.get(key, ())):
             sky_details = details.get("sky") or {}
@@ -235,7 +242,10 @@ def summarise(results: Mapping[str, Any]) -> dict[str, Any]:
                                    totals[key], [*extra, *cautions.get(key, ())],
                                    definitions.get(key), population))
     sky = results.get("sky_model")
-    if sky and "total" in sky:
+    sky_method = str((details.get("sky") or {}).get("method") or "")
+    if sky and "total" in sky and not (isinstance(totals.get("sky_total"), Mapping)
+                                       and sky_method.startswith("sky model")):
+        # (When the totals' sky_total is the sky model's, it is listed once, above.)
         outside = sky.get("fraction_outside_observed_range") or {}
         caution = [_sky_caution(area, sky.get("target_sky", {}).get("area_deg2"),
                                 modelled=True)]
@@ -1286,7 +1296,7 @@ def summary_text(summary: Mapping[str, Any]) -> list[str]:
         lines.append(f"  half detected at    m = {summary['m50']:.2f}")
     for item in summary["headlines"]:
         dominant = item["dominant_error"]
-        source = (f"{dominant['name'].replace('_', ' ')} {100 * dominant['share']:.0f} %"
+        source = (f"{dominant['label']} {100 * dominant['share']:.0f} %"
                   if dominant else "not broken down")
         lines += [
             f"  {item['label']}",

@@ -111,13 +111,13 @@ def test_run_json_is_exactly_one_object(tmp_path, capsys):
     code, out, err = run(["run", runfile, "--out", tmp_path / "o", "--json", "--seed", 1],
                          capsys)
     assert code == 0, err
-    data = json.loads(out)  # the whole of stdout is one JSON object
+    data = json.loads(out)  # the whole of stdout is one JSON object: the summary
     assert isinstance(data, dict)
-    assert data["ledger"]["rows_read"] == len(df)
-    assert data["run"]["seed"] == 1
     assert data["output"]["files"][-1].endswith("results.json")
     on_disk = json.loads((tmp_path / "o" / "results.json").read_text())
-    assert {k: v for k, v in data.items() if k != "output"} == on_disk
+    assert {k: v for k, v in data.items() if k != "output"} == on_disk["summary"]
+    assert on_disk["ledger"]["rows_read"] == len(df)
+    assert on_disk["run"]["seed"] == 1
 
 
 class _Terminal(io.StringIO):
@@ -275,18 +275,22 @@ def test_demo_runs_the_demo_run_file_into_the_default_folder(tmp_path, capsys, m
     assert "row ledger" in out
     code, out, _ = run(["demo", "--out", tmp_path / "elsewhere", "--json"], capsys)
     assert code == 0
-    assert json.loads(out)["ledger"]["rows_read"] == len(df)
+    assert json.loads(out)["sources"] == json.loads(
+        (tmp_path / "elsewhere" / "results.json").read_text())["summary"]["sources"]
+    assert json.loads((tmp_path / "elsewhere" / "results.json").read_text())["ledger"][
+        "rows_read"] == len(df)
     # --seed makes a demo run repeatable, byte for byte apart from the two times.
     for name in ("s1", "s2"):
         code, out, _ = run(["demo", "--out", tmp_path / name, "--seed", 11, "--json"], capsys)
-        assert code == 0 and json.loads(out)["run"]["seed"] == 11
+        assert code == 0 and json.loads(out)["output"]["dir"] == str(tmp_path / name)
     texts = [_without_times((tmp_path / name / "results.json").read_text())
              for name in ("s1", "s2")]
     assert texts[0] == texts[1]
     assert json.loads(texts[0])["provenance"]["seed"] == 11
     # Without --seed the demo uses its fixed seed, so its report is the same everywhere.
     code, out, _ = run(["demo", "--out", tmp_path / "d1", "--json"], capsys)
-    assert code == 0 and json.loads(out)["run"]["seed"] == cli.DEMO_SEED
+    assert code == 0 and json.loads((tmp_path / "d1" / "results.json").read_text())["run"][
+        "seed"] == cli.DEMO_SEED
     code, _, err = run(["demo", "--seed", -1], capsys)
     assert code == 2 and err.splitlines() == [
         "countscale: error: --seed must be a non-negative integer; got -1"]

@@ -441,3 +441,18 @@ def test_demo_star_totals_carry_the_sky_model_and_hold_the_truth(stars_run):
     explained = totals["details"]["sky"]["naive_explained"]
     assert explained["structure_factor"] < 0.8
     assert set(totals["not_computed"]) == {"present_day_volume_total", "light_cone_total"}
+
+
+def test_demo_star_summary_lists_each_total_once_in_the_words_of_stars(stars_run):
+    # sky_total, stars_total (stars on the sky) and the sky model's total are one number for
+    # a star run: the summary lists it once, and calls the fields' scatter what it is for
+    # stars (the Galaxy's structure), not cosmic variance.
+    from countscale.report import render_text, summarise
+
+    summary = summarise(stars_run.results)
+    keys = [h["key"] for h in summary["headlines"]]
+    assert keys == ["counts.integral_counts.per_deg2", "totals.sky_total"]
+    assert summary["headlines"][0]["dominant_error"]["label"] == "field-to-field scatter"
+    assert summary["headlines"][0]["label"].endswith("(the mean over the observed fields)")
+    text = render_text(stars_run.results)
+    assert "field-to-field scatter" in text and "Stars in the volume" not in text
