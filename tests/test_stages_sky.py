@@ -413,6 +413,18 @@ def test_a_star_catalogue_with_no_star_in_the_bins_changes_nothing(mixed_with_co
     assert zero.results["counts"]["stars"]["n_stars_binned"] == 0
 
 
+def test_a_sky_model_total_says_it_keeps_the_stars(mixed_with_completeness):
+    # The sky model fits the counts per field as they are: the caution says so beside the
+    # number (the subtraction is done in the count fit only).
+    folder, write_runfile, _ = mixed_with_completeness
+    path = write_runfile("sky_model", "stars.parquet")
+    path.write_text(path.read_text() + "\n[sky_model]\n")
+    result = run_survey(path, out_dir=folder / "out_sky_model", seed=6)
+    cautions = result.results["totals"]["cautions"]["sky_total"]
+    assert any("stars of the [contamination] star catalogue are not subtracted" in c
+               for c in cautions), cautions
+
+
 def test_more_stars_than_sources_is_one_line_naming_the_star_catalogue(mixed_with_completeness,
                                                                       capsys):
     folder, write_runfile, _ = mixed_with_completeness
