@@ -126,6 +126,8 @@ _CUMULATIVE_UNIT = "deg^-2"
 #: sample ("cosmic") variance of the counts between regions.
 _POISSON = "poisson"
 _CLUSTERING = "cosmic_variance"
+#: Budget name of the subtracted stars' Poisson noise (a star catalogue of the same survey).
+_STARS = "stars"
 
 
 class CountsWarning(UserWarning):
@@ -1477,10 +1479,15 @@ class _Likelihood:
     information as curvature far from the optimum, the observed information (then BFGS-
     updated) near it, and a backtracking line search. Location parameters (m_break) are kept
     inside ``location_range``; ``fit_range`` holds the outer edges of the fitted bins.
+
+    ``background`` (per fitted bin, optional) is a known count added to mu: the stars of a
+    star catalogue of the same survey among the sources, ``mu = response @ n + background``.
+    Then the normalisation has no closed form and Newton's method moves it with the rest.
+    An all-zero background is no background (the likelihood is the plain one, bit for bit).
     """
 
     def __init__(self, template, cell_lo, cell_hi, response, counts, fit_range,
-                 location_range):
+                 location_range, background=None):
         # Cells that cannot reach a fitted bin do not change mu: drop them once.
         reach = np.any(response > 0.0, axis=0)
         self.template = template
@@ -1495,6 +1502,11 @@ class _Likelihood:
                                 for n in self.names])
         self._upper = np.array([location_range[1] if n in template._location_params else np.inf
                                 for n in self.names])
+        if background is not None:
+            background = np.asarray(background, dtype=float)
+            if not np.any(background > 0.0):
+                background = None
+        self.background = background
         self._set_counts(counts)
 
     def _set_counts(self, counts):
@@ -1545,6 +1557,8 @@ class _Likelihood:
             else:
                 scale = 10.0**shift
             mu = shape * scale
+            if self.background is not None:
+                mu = mu + self.background
             if not math.isfinite(float(mu.sum())):
                 return failed
             if self._all_positive:
@@ -1564,7 +1578,10 @@ class _Likelihood:
             # profiled case the multinomial one, with a centred by d ln sum(shape)).
             d_shape = (log10_gradient[free] * density) @ self.response.T
             d_shape = d_shape.T * _LN10
-            if shape.min() > 0.0:
+            if self.background is not None:
+                # Not profiled (see maximise): d mu / d theta = scale d_shape.
+                a = d_shape * (scale / mu[:, None])
+            elif shape.min() > 0.0:
                 a = d_shape / shape[:, None]
             else:
                 live = shape > 0.0
@@ -1576,6 +1593,13 @@ class _Likelihood:
         if not math.isfinite(float(fisher.sum()) + float(g.sum())):
             return failed
         return f, g, fisher, work
+
+    def expected(self, theta):
+        """mu per fitted bin at a full parameter vector (background included)."""
+        log10_n, _ = self.template._log10_cell_density(np.asarray(theta, dtype=float),
+                                                       self.cell_lo, self.cell_hi, False)
+        mu = self.response @ 10.0**log10_n
+        return mu if self.background is None else mu + self.background
 
     def _observed_information(self, theta, free, profile, gradient, fisher):
         """Hessian of the half deviance over ``free``: forward differences of the gradient.
@@ -1715,7 +1739,9 @@ class _Likelihood:
         """
         fixed = dict(fixed or {})
         theta = np.array([fixed.get(n, start[n]) for n in self.names], dtype=float)
-        profile = self._norm is not None and "log10_norm" not in fixed
+        # With a background the normalisation has no closed form: it is not profiled.
+        profile = (self._norm is not None and "log10_norm" not in fixed
+                   and self.background is None)
         free = np.array([i for i, n in enumerate(self.names)
                          if n not in fixed and not (profile and i == self._norm)], dtype=int)
         theta, f, problem = self._newton(theta, free, profile)
@@ -1774,6 +1800,16 @@ class CountsFit:
         the jackknife by :func:`combine_covariances` when regions are given.
     cov_poisson_ : ndarray
         Inverse Hessian of -ln L (central differences).
+    cov_stars_ : ndarray, shape (n_params, n_params)
+        The subtracted stars' Poisson noise carried to the parameters,
+        ``J diag(S) J^T`` with J = ``star_jacobian_``; zeros without stars.
+    star_jacobian_ : ndarray, shape (n_params, n_bins)
+        d parameters / d (stars in each bin) at the fit; zeros outside the fit range and
+        without stars.
+    star_counts_, region_star_counts_ : ndarray or None
+        The star counts given to :meth:`fit` (None without).
+    n_stars_ : int
+        Stars in the fit range (0 without star counts).
     cov_jackknife_ : ndarray or None
         Delete-one jackknife covariance over regions.
     jackknife_params_ : ndarray, shape (K, n_params), or None
@@ -1833,6 +1869,24 @@ class CountsFit:
     K regions is itself uncertain, and normal quantiles would under-cover (about 66 % instead
     of 68 % for K = 16).
 
+    Stars among the sources (``star_counts``, from a star catalogue of the same survey over
+    the same footprint): the expected count per bin is ``mu_i = galaxies_i(theta) + S_i``,
+    the galaxy model through completeness and scatter plus the star catalogue's count S_i,
+    which is already an observed count (same survey, same selection), so it needs no
+    forward model. S_i enters the likelihood as a known additive component; its Poisson
+    noise is added by propagation: with ``J = d theta / d S`` at the fit (implicit-function
+    theorem on the likelihood's gradient, ``_star_jacobian``), ``cov_stars_ = J diag(S) J^T``
+    joins the Poisson floor (``C_P + C_S + PSD(C_J - C_P - C_S)`` with regions) and gets its
+    own budget share, ``"stars"``. We propagate rather than marginalise over the star
+    expectation per bin: the counts are large enough in the bins where stars matter for the
+    linear propagation to hold, it keeps the fit's speed and its closed-form parts, and
+    treats the star catalogue as a Poisson sample of the stars expected among the sources.
+    When the star catalogue lists the very stars of the catalogue (so sources - stars is
+    exactly the galaxies), both the likelihood's variance (galaxies + stars) and the added
+    term overstate the error: conservative. The fitted model, N(<m) and the corrected
+    differential counts are then of galaxies alone. An all-zero ``star_counts`` gives the same
+    fit as none.
+
     Goodness of fit: the deviance ``D = 2 sum[N ln(N / mu) - (N - mu)]`` and its
     parametric-bootstrap p-value ``(1 + #{D* >= D}) / (1 + B)`` from B Poisson redraws of the
     fitted mu, each refitted (Davison & Hinkley 1997, Bootstrap Methods, sec. 4.2; from memory).
@@ -1848,7 +1902,8 @@ class CountsFit:
         self.n_bootstrap = n_bootstrap
 
     # -------------------------------------------------------------- validation
-    def _fit_iv(self, observed_counts, region_counts, region_effective_area_deg2):
+    def _fit_iv(self, observed_counts, region_counts, region_effective_area_deg2,
+                star_counts=None, region_star_counts=None):
         forward = self.forward
         if not isinstance(forward, ForwardModel):
             raise InputTypeError(
@@ -1912,11 +1967,38 @@ class CountsFit:
                 )
         elif region_effective_area_deg2 is not None:
             raise InputError("`region_effective_area_deg2` was given without `region_counts`")
-        return counts, used, n_bootstrap, regions, region_grids
+        stars, region_stars = self._stars_iv(star_counts, region_star_counts, counts, regions)
+        return counts, used, n_bootstrap, regions, region_grids, stars, region_stars
+
+    def _stars_iv(self, star_counts, region_star_counts, counts, regions):
+        """Star counts per bin (and per region) of a star catalogue of the same footprint."""
+        if star_counts is None:
+            if region_star_counts is not None:
+                raise InputError("`region_star_counts` was given without `star_counts`")
+            return None, None
+        stars = _as_counts(star_counts, "star_counts", counts.shape)
+        if regions is None:
+            if region_star_counts is not None:
+                raise InputError("`region_star_counts` was given without `region_counts`")
+            return stars, None
+        if region_star_counts is None:
+            if stars.any():
+                raise InputError(
+                    "`region_star_counts` is needed with `region_counts` and `star_counts` (the "
+                    "jackknife leaves each region's stars out with its sources)"
+                )
+            return stars, np.zeros_like(regions)
+        region_stars = _as_counts(region_star_counts, "region_star_counts", regions.shape)
+        if not np.array_equal(region_stars.sum(axis=0), stars):
+            raise InputError(
+                "`region_star_counts` must add up to `star_counts` in every bin; they differ in "
+                f"{int(np.count_nonzero(region_stars.sum(axis=0) != stars))} bins"
+            )
+        return stars, region_stars
 
     # -------------------------------------------------------------- fit
     def fit(self, observed_counts, rng=None, region_counts=None, region_effective_area_deg2=None,
-            progress=None):
+            progress=None, star_counts=None, region_star_counts=None):
         """Fit the model.
 
         Parameters
@@ -1934,6 +2016,13 @@ class CountsFit:
         progress : callable, optional
             Called with 1 after each refit (one per jackknife region and per bootstrap
             redraw: K + ``n_bootstrap`` calls), e.g. a progress bar's ``update``.
+        star_counts : array_like of int, shape (n_bins,), optional
+            Stars per observed-magnitude bin from a star catalogue of the same survey over the
+            same footprint: the observed counts are then modelled as galaxies + stars, and the
+            fitted model is of the galaxies (see the class Notes).
+        region_star_counts : array_like of int, shape (K, n_bins), optional
+            The star counts split over the same K regions (adding up to ``star_counts``);
+            required with ``region_counts`` when there are stars.
 
         Returns
         -------
@@ -1944,17 +2033,20 @@ class CountsFit:
         ------
         InputError
             Bad bins, counts or ranges; too few sources or bins for the model's parameters;
-            sources in a bin with zero effective area.
-        CountsFitError
-            When the likelihood does not converge or its curvature is not positive definite.
+            sources in a bin with zero effective area; star counts that leave no galaxies in
+            the fit range (as many stars as sources or more).
 
         Warns
         -----
         CountsWarning
-            Fewer than :data:`MIN_SOURCES` sources; bins with completeness < 0.5 in the fit.
+            Fewer than :data:`MIN_SOURCES` sources (galaxies, with star counts); bins with
+            completeness < 0.5 in the fit; fitted bins with more stars than sources (possible
+            by chance when the star catalogue is a separate sample, but a sign that the two
+            catalogues differ in footprint, band or depth when it lists the very stars).
         """
-        counts, used, n_bootstrap, regions, region_grids = self._fit_iv(
-            observed_counts, region_counts, region_effective_area_deg2
+        counts, used, n_bootstrap, regions, region_grids, stars, region_stars = self._fit_iv(
+            observed_counts, region_counts, region_effective_area_deg2, star_counts,
+            region_star_counts
         )
         if progress is not None and not callable(progress):
             raise InputTypeError(f"`progress` must be callable or None; got {progress!r}")
@@ -1969,6 +2061,9 @@ class CountsFit:
         used_counts = counts[used]
         n_sources = int(used_counts.sum())
         n_bins = int(used.sum())
+        n_stars = 0 if stars is None else int(stars[used].sum())
+        if stars is not None:
+            self._check_stars(counts, stars, used, edges, fit_lo, fit_hi, n_params)
         if n_sources <= n_params:
             raise InputError(
                 f"`observed_counts` has {n_sources} sources in the fit range [{fit_lo:g}, "
@@ -1988,9 +2083,12 @@ class CountsFit:
                 f"`observed_counts` has {counts[i]} sources in bin [{edges[i]:g}, "
                 f"{edges[i + 1]:g}] mag where the expected count is 0 (zero effective area)"
             )
-        if n_sources < MIN_SOURCES:
+        if n_sources - n_stars < MIN_SOURCES:
             warnings.warn(
-                f"only {n_sources} sources in the fit range [{fit_lo:g}, {fit_hi:g}] mag "
+                f"only {n_sources - n_stars} "
+                + ("sources" if stars is None else f"galaxies ({n_sources} sources - {n_stars} "
+                   "stars)")
+                + f" in the fit range [{fit_lo:g}, {fit_hi:g}] mag "
                 f"(fewer than {MIN_SOURCES}); the fit and its errors are unreliable",
                 CountsWarning,
                 stacklevel=2,
@@ -2013,24 +2111,35 @@ class CountsFit:
         # ridge instead of a maximum (the model is not identifiable there).
         break_range = (float(used_edges[min(2, n_bins // 2)]),
                        float(used_edges[max(-3, -1 - n_bins // 2)]))
+        background = None if stars is None else stars[used].astype(float)
         likelihood = _Likelihood(template, forward._cell_lo, forward._cell_hi, response,
-                                 used_counts, (fit_lo, fit_hi), break_range)
-        theta, loglike, maxima = self._maximise_from_data(likelihood, counts, bin_area)
+                                 used_counts, (fit_lo, fit_hi), break_range, background)
+        # The data start reads galaxies: sources less stars (clipped at 0).
+        start_counts = counts if stars is None else np.clip(counts - stars, 0, None)
+        theta, loglike, maxima = self._maximise_from_data(likelihood, start_counts, bin_area)
         self._warn_at_range_edge(template, theta, (fit_lo, fit_hi), break_range)
         cov_poisson = self._poisson_covariance(likelihood, theta, template)
+        star_jacobian = np.zeros((n_params, forward.n_bins))
+        if likelihood.background is not None:
+            star_jacobian[:, used] = self._star_jacobian(likelihood, theta, cov_poisson)
+        cov_stars = (star_jacobian * (0.0 if stars is None else stars)) @ star_jacobian.T
+        cov_stars = 0.5 * (cov_stars + cov_stars.T)
+        floor = cov_poisson + cov_stars
 
         cov_jackknife = None
         jackknife_params = None
         if regions is not None:
             jackknife_params = self._jackknife(likelihood, regions, region_grids, used, maxima,
-                                               tick)
+                                               tick, region_stars)
             cov_jackknife = jackknife_covariance(jackknife_params)
-            cov = combine_covariances(cov_poisson, cov_jackknife)
+            cov = combine_covariances(floor, cov_jackknife)
         else:
-            cov = cov_poisson
+            cov = floor
 
         model = template.with_params(theta)
         expected_all = forward.expected_counts(model)
+        if stars is not None:
+            expected_all = expected_all + stars
         mu = expected_all[used]
         deviance = _deviance(mu, used_counts.astype(float))
         p_value = None
@@ -2049,6 +2158,12 @@ class CountsFit:
         self.params_ = model.params_dict()
         self.cov_ = cov
         self.cov_poisson_ = cov_poisson
+        self.cov_stars_ = cov_stars
+        self.star_jacobian_ = _read_only(star_jacobian)
+        self.star_counts_ = None if stars is None else _read_only(stars, dtype=np.int64)
+        self.region_star_counts_ = (None if region_stars is None
+                                    else _read_only(region_stars, dtype=np.int64))
+        self.n_stars_ = n_stars
         self.cov_jackknife_ = cov_jackknife
         self.jackknife_params_ = jackknife_params
         self.loglike_ = float(loglike)
@@ -2068,11 +2183,56 @@ class CountsFit:
         self.observed_counts_ = _read_only(counts, dtype=np.int64)
         self.region_counts_ = None if regions is None else _read_only(regions, dtype=np.int64)
         self.region_area_grids_ = None if region_grids is None else _read_only(region_grids)
-        self.estimates_ = self._estimates(model, cov_poisson, cov, cov_jackknife)
+        self.estimates_ = self._estimates(model, cov_poisson, cov, cov_jackknife,
+                                          None if stars is None else cov_stars)
         self._likelihood = likelihood
         self._maxima = maxima
         self._profiles = {}
         return self
+
+    @staticmethod
+    def _check_stars(counts, stars, used, edges, fit_lo, fit_hi, n_params):
+        """Star counts must leave galaxies to fit; a bin with more stars than sources warns."""
+        n_sources, n_stars = int(counts[used].sum()), int(stars[used].sum())
+        if n_sources - n_stars <= n_params:
+            raise InputError(
+                f"`star_counts` must leave more galaxies than the {n_params} parameters in the "
+                f"fit range [{fit_lo:g}, {fit_hi:g}] mag (stars are subtracted from the "
+                f"sources); got {n_stars} stars against {n_sources} sources"
+            )
+        over = np.flatnonzero(used & (stars > counts))
+        if over.size:
+            i = int(over[np.argmax((stars - counts)[over])])
+            warnings.warn(
+                f"`star_counts` exceed the sources in {over.size} fitted bin(s), most in "
+                f"[{edges[i]:g}, {edges[i + 1]:g}] mag ({int(stars[i])} stars, {int(counts[i])} "
+                "sources): the galaxy model is pushed towards 0 there; by chance if the star "
+                "catalogue is a separate sample, otherwise it does not match the catalogue's "
+                "footprint, band or depth",
+                CountsWarning,
+                stacklevel=3,
+            )
+
+    @staticmethod
+    def _star_jacobian(likelihood, theta, cov_poisson):
+        """d theta / d (stars per fitted bin) at the fit, shape (n_params, n_fitted_bins).
+
+        The fit solves g(theta, b) = 0, g the gradient of the half deviance
+        sum [mu - N ln mu] with mu = galaxies(theta) + b; by the implicit-function theorem
+        d theta / d b_i = -H^-1 d g / d b_i with d g / d b_i = (N_i / mu_i^2) d mu_i / d theta
+        and H^-1 the Poisson covariance. d mu / d theta by central differences (steps of a
+        tenth of each Poisson sigma).
+        """
+        theta = np.asarray(theta, dtype=float)
+        steps = np.maximum(0.1 * np.sqrt(np.diag(cov_poisson)), 1e-7)
+        d_mu = np.empty((theta.size, likelihood.counts.size))
+        for k, h in enumerate(steps):
+            up, down = theta.copy(), theta.copy()
+            up[k] += h
+            down[k] -= h
+            d_mu[k] = (likelihood.expected(up) - likelihood.expected(down)) / (2.0 * h)
+        mu = likelihood.expected(theta)
+        return -cov_poisson @ (d_mu * (likelihood.counts / mu**2))
 
     def refit(self, forward):
         """Maximum-likelihood parameters of the same counts through another forward model.
@@ -2102,7 +2262,9 @@ class CountsFit:
         old = self._likelihood
         likelihood = _Likelihood(old.template, forward._cell_lo, forward._cell_hi,
                                  forward._response[used], counts[used], old.fit_range,
-                                 old.location_range)
+                                 old.location_range, old.background)
+        if self.star_counts_ is not None:
+            counts = np.clip(counts - self.star_counts_, 0, None)
         theta, _, _ = self._maximise_from_data(likelihood, counts,
                                                forward.bin_effective_area_deg2(),
                                                starts=self._maxima)
@@ -2242,8 +2404,12 @@ class CountsFit:
             steps = np.maximum(0.1 * np.sqrt(np.diag(cov)), minimum_steps)
         return cov
 
-    def _jackknife(self, likelihood, regions, region_grids, used, maxima, tick=None):
-        """Parameters refitted with each region left out, shape (K, n_params)."""
+    def _jackknife(self, likelihood, regions, region_grids, used, maxima, tick=None,
+                   region_stars=None):
+        """Parameters refitted with each region left out, shape (K, n_params).
+
+        With star counts each refit leaves the region's stars out with its sources.
+        """
         forward = self.forward
         kernel = forward.kernel[used]
         total_grid = forward.effective_area_grid_deg2
@@ -2258,12 +2424,17 @@ class CountsFit:
                     "few for a jackknife refit (use fewer, larger regions)"
                 )
             grid_k = total_grid - region_grids[k]
+            stars_k = None
+            if region_stars is not None and likelihood.background is not None:
+                stars_k = region_stars.sum(axis=0) - region_stars[k]
             likelihood_k = _Likelihood(likelihood.template, forward._cell_lo, forward._cell_hi,
                                        kernel * grid_k[None, :], counts_k[used],
-                                       likelihood.fit_range, likelihood.location_range)
+                                       likelihood.fit_range, likelihood.location_range,
+                                       None if stars_k is None else stars_k[used])
+            start_k = counts_k if stars_k is None else np.clip(counts_k - stars_k, 0, None)
             try:
                 theta_k, _, _ = self._maximise_from_data(
-                    likelihood_k, counts_k, _correction_areas(forward, None, grid_k),
+                    likelihood_k, start_k, _correction_areas(forward, None, grid_k),
                     starts=maxima,
                 )
             except CountsFitError as error:
@@ -2302,13 +2473,14 @@ class CountsFit:
             exceed += redraw.deviance(theta_b) >= deviance
         return int(exceed)
 
-    def _estimates(self, model, cov_poisson, cov, cov_jackknife):
+    def _estimates(self, model, cov_poisson, cov, cov_jackknife, cov_stars=None):
         estimates = {}
         for i, name in enumerate(model.param_names):
             var_total = float(cov[i, i])
             var_poisson = float(cov_poisson[i, i])
             var_jackknife = None if cov_jackknife is None else float(cov_jackknife[i, i])
-            budget = _budget(var_poisson, var_total, self.n_regions_ > 0)
+            budget = _budget(var_poisson, var_total, self.n_regions_ > 0,
+                             None if cov_stars is None else float(cov_stars[i, i]))
             dof = _satterthwaite_dof(var_total, var_jackknife, self.n_regions_)
             estimates[name] = _student_estimate(
                 getattr(model, name), math.sqrt(max(var_total, 0.0)), dof,
@@ -2321,6 +2493,7 @@ class CountsFit:
     _FITTED_ATTRIBUTES = frozenset(
         {
             "model_", "params_", "cov_", "cov_poisson_", "cov_jackknife_", "jackknife_params_",
+            "cov_stars_", "star_jacobian_", "star_counts_", "region_star_counts_", "n_stars_",
             "loglike_", "deviance_", "dof_", "p_value_", "p_value_error_",
             "p_value_is_bound_", "aic_", "bic_",
             "n_sources_", "n_bins_",
@@ -2425,7 +2598,7 @@ class CountsFit:
         self._fitted("model_")
         return _differential_counts(
             self.observed_counts_, self.forward, self, self.region_counts_,
-            self.region_area_grids_, level,
+            self.region_area_grids_, level, self.star_counts_, self.region_star_counts_,
         )
 
     def to_json(self):
@@ -2518,11 +2691,26 @@ def _student_estimate(value, sigma, dof, unit, budget):
     )
 
 
-def _budget(var_poisson, var_total, with_regions):
+def _budget(var_poisson, var_total, with_regions, var_stars=None):
+    """Shares of a variance: Poisson, the stars subtracted (when given), clustering (the rest).
+
+    Without regions the Poisson and star shares are scaled to sum to 1.
+    """
+    if var_stars is None:
+        if not with_regions or not var_total > 0.0:
+            return {_POISSON: 1.0}
+        poisson = min(max(var_poisson / var_total, 0.0), 1.0)
+        return {_POISSON: poisson, _CLUSTERING: 1.0 - poisson}
+    var_stars = max(var_stars, 0.0)
+    floor = var_poisson + var_stars
+    if not floor > 0.0:
+        return {_POISSON: 1.0, _STARS: 0.0, **({_CLUSTERING: 0.0} if with_regions else {})}
     if not with_regions or not var_total > 0.0:
-        return {_POISSON: 1.0}
-    poisson = min(max(var_poisson / var_total, 0.0), 1.0)
-    return {_POISSON: poisson, _CLUSTERING: 1.0 - poisson}
+        return {_POISSON: var_poisson / floor, _STARS: var_stars / floor}
+    scale = min(1.0, var_total / floor)  # the floor is part of the total (never above it)
+    poisson = scale * var_poisson / var_total
+    stars = scale * var_stars / var_total
+    return {_POISSON: poisson, _STARS: stars, _CLUSTERING: max(1.0 - poisson - stars, 0.0)}
 
 
 def fit_counts(observed_counts, forward, model="power_law", fit_range_mag=None, n_bootstrap=200,
@@ -2605,9 +2793,10 @@ def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None,
     covariance : {"reported", "poisson"}
         Draw the parameters from the fit's reported covariance ``cov_`` (Poisson, plus the
         jackknife's clustering excess with regions), or from the Poisson part
-        ``cov_poisson_`` alone: the density this footprint holds, whose only uncertainty is
-        Poisson noise (an analytic cosmic variance can then be added for the population's
-        mean, see :mod:`countscale.variance`).
+        ``cov_poisson_`` alone (plus ``cov_stars_`` when stars were subtracted): the density
+        this footprint holds, whose only uncertainty is Poisson noise (an analytic cosmic
+        variance can then be added for the population's mean, see
+        :mod:`countscale.variance`).
 
     Returns
     -------
@@ -2634,7 +2823,8 @@ def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None,
     uncertainty of a variance estimated from K regions. The "truth" this estimates is the mean
     density of the population (what extrapolation to other areas needs), not the realised
     number in this footprint. The budget splits the variance of log10 N by the delta method:
-    ``g^T C_P g / g^T C g`` is the Poisson share, the rest is clustering
+    ``g^T C_P g / g^T C g`` is the Poisson share, ``g^T C_S g / g^T C g`` the subtracted
+    stars' share (``"stars"``, when star counts were given), the rest is clustering
     (``"cosmic_variance"``).
     """
     if not isinstance(fit, CountsFit):
@@ -2669,17 +2859,20 @@ def integral_counts(fit, m_limit, area_deg2=None, n_draws=4000, rng=None,
     def log10_n(t):
         return math.log10(float(model.with_params(t).cumulative(m_limit)))
 
-    cov = fit.cov_ if covariance == "reported" else fit.cov_poisson_
+    # The subtracted stars' Poisson noise is measurement noise: part of "poisson" too.
+    cov = fit.cov_ if covariance == "reported" else fit.cov_poisson_ + fit.cov_stars_
     with_regions = fit.n_regions_ > 0 and covariance == "reported"
     steps = np.maximum(1e-3 * np.sqrt(np.diag(cov)), 1e-9)
     gradient = _numerical_gradient(log10_n, theta, steps)
     var_total = float(gradient @ cov @ gradient)
     var_poisson = float(gradient @ fit.cov_poisson_ @ gradient)
+    var_stars = (None if fit.star_counts_ is None
+                 else float(gradient @ fit.cov_stars_ @ gradient))
     var_jackknife = (
         None if fit.cov_jackknife_ is None or not with_regions
         else float(gradient @ fit.cov_jackknife_ @ gradient)
     )
-    budget = _budget(var_poisson, var_total, with_regions)
+    budget = _budget(var_poisson, var_total, with_regions, var_stars)
     dof = _satterthwaite_dof(var_total, var_jackknife, fit.n_regions_)
     offsets = generator.multivariate_normal(
         np.zeros(theta.size), cov, size=n_draws, method="eigh"
@@ -2733,9 +2926,11 @@ class DifferentialCounts:
     raw_interval_68 : ndarray, shape (n_bins, 2)
         Garwood 68 % Poisson interval of ``raw_density``.
     corrected_density : ndarray
-        ``N / (A_corr * width)`` with A_corr the correction area (see ``correction``).
+        ``N / (A_corr * width)`` with A_corr the correction area (see ``correction``); with
+        ``n_stars``, ``(N - S) / (A_corr * width)``: galaxies only.
     corrected_interval_68 : ndarray, shape (n_bins, 2)
-        Poisson-only 68 % interval of ``corrected_density``.
+        Poisson-only 68 % interval of ``corrected_density`` (with stars, the Garwood
+        half-widths of N and sqrt(S) added in quadrature, clipped at 0).
     corrected_interval_68_full : ndarray, shape (n_bins, 2), or None
         Poisson + clustering interval (jackknife over regions); None without regions.
     completeness : ndarray
@@ -2750,6 +2945,9 @@ class DifferentialCounts:
         Bins inside the fit range.
     area_deg2 : float
         Footprint area used for ``raw_density``.
+    n_stars : ndarray of int or None
+        Stars per bin subtracted from the corrected counts (a star catalogue of the same
+        survey); None when none were. ``n_observed`` and the raw densities keep them.
     """
 
     mag_lo: np.ndarray
@@ -2766,6 +2964,7 @@ class DifferentialCounts:
     used_in_fit: np.ndarray | None
     area_deg2: float
     unit: str = _DENSITY_UNIT
+    n_stars: np.ndarray | None = None
 
     @property
     def mag_centre(self):
@@ -2802,6 +3001,7 @@ class DifferentialCounts:
             "used_in_fit": (
                 None if self.used_in_fit is None else [bool(v) for v in self.used_in_fit]
             ),
+            "n_stars": None if self.n_stars is None else [int(v) for v in self.n_stars],
         }
 
 
@@ -2884,7 +3084,8 @@ def _correction_areas(forward, fit, area_grid):
         return np.where(intrinsic > 0.0, mu / intrinsic, 0.0)
 
 
-def _differential_counts(counts, forward, fit, regions, grids, level):
+def _differential_counts(counts, forward, fit, regions, grids, level, stars=None,
+                         region_stars=None):
     level = _check_real(level, "level", 0.0, 1.0)
     edges = forward.bin_edges_mag
     widths = np.diff(edges)
@@ -2894,8 +3095,18 @@ def _differential_counts(counts, forward, fit, regions, grids, level):
     correction_area = _correction_areas(forward, fit, forward.effective_area_grid_deg2)
     with np.errstate(divide="ignore", invalid="ignore"):
         corrected_scale = np.where(correction_area > 0.0, 1.0 / (correction_area * widths), np.nan)
-    corrected = counts_f * corrected_scale
-    corrected_interval = np.column_stack([lo * corrected_scale, hi * corrected_scale])
+    stars_f = np.zeros_like(counts_f) if stars is None else np.asarray(stars, dtype=float)
+    galaxies = counts_f - stars_f
+    corrected = galaxies * corrected_scale
+    if stars is None:
+        corrected_interval = np.column_stack([lo * corrected_scale, hi * corrected_scale])
+    else:
+        # Sources less stars: the Garwood half-widths of N and sqrt(S) in quadrature.
+        low_half = np.sqrt((counts_f - lo) ** 2 + stars_f)
+        high_half = np.sqrt((hi - counts_f) ** 2 + stars_f)
+        corrected_interval = np.column_stack(
+            [np.clip(galaxies - low_half, 0.0, None) * corrected_scale,
+             (galaxies + high_half) * corrected_scale])
     full = None
     if regions is not None:
         total_grid = forward.effective_area_grid_deg2
@@ -2903,15 +3114,17 @@ def _differential_counts(counts, forward, fit, regions, grids, level):
         for k in range(regions.shape[0]):
             area_k = _correction_areas(forward, fit, total_grid - grids[k])
             with np.errstate(divide="ignore", invalid="ignore"):
-                delete_one.append(
-                    np.where(area_k > 0.0, (counts_f - regions[k]) / (area_k * widths), np.nan)
-                )
+                left = counts_f - regions[k]
+                if stars is not None and region_stars is not None:
+                    left = left - (stars_f - region_stars[k])
+                delete_one.append(np.where(area_k > 0.0, left / (area_k * widths), np.nan))
         delete_one = np.array(delete_one)
         k_regions = delete_one.shape[0]
         centred = delete_one - np.nanmean(delete_one, axis=0)
         var_jack = (k_regions - 1.0) / k_regions * np.nansum(centred**2, axis=0)
         with np.errstate(divide="ignore", invalid="ignore"):
-            var_poisson = np.where(counts > 0, corrected**2 / counts_f, 0.0)
+            # Poisson variance of (N - S) A^-1 w^-1: (N + S) times the scale squared.
+            var_poisson = np.where(counts > 0, (counts_f + stars_f) * corrected_scale**2, 0.0)
         excess = np.clip(var_jack - var_poisson, 0.0, None)
         low_half = corrected - corrected_interval[:, 0]
         high_half = corrected_interval[:, 1] - corrected
@@ -2940,6 +3153,7 @@ def _differential_counts(counts, forward, fit, regions, grids, level):
         model_density=None if model_density is None else _read_only(model_density),
         used_in_fit=None if used is None else _read_only(used, dtype=bool),
         area_deg2=float(forward.area_deg2),
+        n_stars=None if stars is None else _read_only(stars, dtype=np.int64),
     )
 
 

@@ -5,9 +5,13 @@ list of stages (:data:`STAGES`); each declares the run-file sections it needs an
 when all of them are present (and its optional ``when`` condition holds: the contamination
 stage runs with a classifier or ``[contamination]``, the sky model for stars or with
 ``[sky_model]``). The stages: tally, completeness, luminosity function, cosmic variance,
-number counts, contamination, sky model, totals (the last turns the fits into totals over the
-sky, a volume, the light cone and in stars, with their budgets). A section the file has but no
-stage reads is listed in the results under ``run.sections_not_run``, not ignored silently.
+contamination, number counts, sky model, totals (the last turns the fits into totals over the
+sky, a volume, the light cone and in stars, with their budgets). Contamination runs before
+the counts: with a star catalogue (``[contamination]``) the count fit models the sources as
+galaxies + the catalogue's stars per bin, so the counts, N(<m) and ``sky_total`` are of
+galaxies (a classifier needs no such order: the tally already left its stars out). A section
+the file has but no stage reads is listed in the results under ``run.sections_not_run``, not
+ignored silently.
 
 Topics
 ------
@@ -715,11 +719,15 @@ def _stage_variance(ctx: RunContext) -> StageResult:
 
 
 def _integral_with_bright_part(fit: Any, m_limit: float, n_bright: int, area_deg2: float,
-                               rng: np.random.Generator, sigma_cv: float | None = None) -> dict:
+                               rng: np.random.Generator, sigma_cv: float | None = None,
+                               n_bright_stars: int | None = None) -> dict:
     """N(<m): sources observed brighter than the fit range + the model over the fit range.
 
     The survey is taken as complete brighter than the fit range, so those sources are counted
     as observed, with Poisson draws for their error; the model part keeps its own draws.
+    With a star catalogue (``n_bright_stars``, the stars brighter than the fit range) the
+    bright part is of galaxies: Poisson draws of the sources less Poisson draws of the stars
+    (clipped at 0), the second a ``stars`` share of the budget, as in the fit.
     Two quantities, each an Estimate, labelled in the result:
 
     * this field's realised density (``per_deg2_this_field``): Poisson noise only (the fit's
@@ -736,26 +744,36 @@ def _integral_with_bright_part(fit: Any, m_limit: float, n_bright: int, area_deg
     from countscale.estimate import Estimate
     from countscale.variance import lognormal_factor_draws
 
+    stars = n_bright_stars is not None
+
     def with_bright(integral: Any) -> tuple[np.ndarray, dict]:
         draws = np.asarray(integral.total.draws, dtype=float)
         bright = rng.poisson(max(n_bright, 0), size=draws.size).astype(float)
+        if stars:
+            bright = np.clip(bright - rng.poisson(max(n_bright_stars, 0), size=draws.size),
+                             0.0, None)
         total = draws + bright
         var_model, var_bright = float(np.var(draws)), float(n_bright)
         shares = {k: v * var_model for k, v in integral.total.budget.items()}
         shares["poisson"] = shares.get("poisson", 0.0) + var_bright
+        if stars:
+            shares["stars"] = shares.get("stars", 0.0) + float(n_bright_stars)
         norm = sum(shares.values()) or 1.0
         return total, {k: v / norm for k, v in shares.items()}
 
-    field_total, _ = with_bright(fit.integral_counts(m_limit, area_deg2=area_deg2, rng=rng,
-                                                     covariance="poisson"))
-    field_budget = {"poisson": 1.0}
+    field_total, field_budget = with_bright(fit.integral_counts(
+        m_limit, area_deg2=area_deg2, rng=rng, covariance="poisson"))
+    if not stars:
+        field_budget = {"poisson": 1.0}
     if sigma_cv is not None:
         factors = lognormal_factor_draws(sigma_cv, field_total.size, rng)
         population_total = field_total * factors
         var_poisson = float(np.var(np.log10(field_total)))
         var_cv = math.log1p(sigma_cv**2) / math.log(10.0) ** 2
         norm = (var_poisson + var_cv) or 1.0
-        population_budget = {"poisson": var_poisson / norm, "cosmic_variance": var_cv / norm}
+        # This field's noise (Poisson, and the subtracted stars') by its own shares.
+        population_budget = {k: v * var_poisson / norm for k, v in field_budget.items()}
+        population_budget["cosmic_variance"] = var_cv / norm
         clustering = {
             "method": "analytic",
             "sigma_cv": float(sigma_cv),
@@ -798,6 +816,7 @@ def _integral_with_bright_part(fit: Any, m_limit: float, n_bright: int, area_deg
         },
         "cosmic_variance": clustering,
         "n_observed_brighter": int(n_bright),
+        **({"n_stars_brighter": int(n_bright_stars)} if stars else {}),
     }
 
 
@@ -811,17 +830,24 @@ def _normalisation(fit: Any, sigma_cv: float | None) -> dict | None:
     i = names.index("log10_norm")
     value = float(fit.params_["log10_norm"])
     var_poisson = float(fit.cov_poisson_[i, i])
+    # The subtracted stars' Poisson noise (zero without a star catalogue).
+    var_stars = float(fit.cov_stars_[i, i])
     var_cv = math.log1p(sigma_cv**2) / math.log(10.0) ** 2
-    total = var_poisson + var_cv
+    total = var_poisson + var_stars + var_cv
+    field_total = var_poisson + var_stars
     unit = fit.estimates_["log10_norm"].unit
+    with_stars = fit.star_counts_ is not None
+    budget = {"poisson": var_poisson / total, "cosmic_variance": var_cv / total}
+    field_budget = {"poisson": 1.0}
+    if with_stars:
+        budget["stars"] = var_stars / total
+        field_budget = {"poisson": var_poisson / field_total, "stars": var_stars / field_total}
     return {
         "reference_mag": float(fit.model_.reference_mag),
         "log10_norm": Estimate.from_normal(
-            value, math.sqrt(total), unit,
-            budget={"poisson": var_poisson / total, "cosmic_variance": var_cv / total},
-        ).to_json(),
+            value, math.sqrt(total), unit, budget=budget).to_json(),
         "log10_norm_this_field": Estimate.from_normal(
-            value, math.sqrt(var_poisson), unit, budget={"poisson": 1.0}).to_json(),
+            value, math.sqrt(field_total), unit, budget=field_budget).to_json(),
         "definitions": {
             "log10_norm": "the population's mean normalisation: Poisson noise and the "
                           "analytic cosmic variance",
@@ -933,8 +959,41 @@ def _check_count_inputs(ctx: RunContext, fit_range: tuple[float, float], model_n
             )
 
 
+def _star_counts_for_fit(ctx: RunContext, region_counts: Any, notes: list) -> tuple:
+    """The star catalogue's counts per bin (and per region) when ``[contamination]`` gave one.
+
+    Returns ``(star_counts, region_star_counts, star_tally)``, all None without a star
+    catalogue (and with a classifier, whose stars the tally already left out). The region
+    counts are None when the fit has no jackknife; a star in no region (the star catalogue
+    reaching cells the galaxy regions do not) leaves them None too, and the caller drops the
+    jackknife, as it does for galaxies.
+    """
+    stage = ctx.results.get("contamination")
+    star_tally = None if stage is None else stage.objects.get("star_tally")
+    if star_tally is None:
+        return None, None, None
+    stars = np.asarray(star_tally.counts)
+    if region_counts is None:
+        return stars, None, star_tally
+    region_stars = np.asarray(star_tally.region_counts)
+    if star_tally.n_unassigned or not np.array_equal(region_stars.sum(axis=0), stars):
+        notes.append("some stars of the star catalogue fall in no jackknife region: errors are "
+                     "Poisson only")
+        return stars, False, star_tally
+    return stars, region_stars, star_tally
+
+
 def _stage_counts(ctx: RunContext) -> StageResult:
-    """Fit the number counts through the forward model; integral and differential counts."""
+    """Fit the number counts through the forward model; integral and differential counts.
+
+    With ``[contamination]`` (a star catalogue of the same survey, tallied by the
+    contamination stage, which runs first) the observed counts are modelled as galaxies +
+    stars: the expected count per bin is the galaxy model through completeness and scatter
+    plus the star catalogue's count in that bin, whose Poisson noise is propagated into the
+    fit's covariance (a ``stars`` budget share; see :class:`countscale.counts.CountsFit`).
+    The fitted model, the corrected differential counts and N(<m) (population and this
+    field) are then of galaxies; ``data["stars"]`` says how many stars were subtracted.
+    """
     from countscale import counts as ct
 
     runfile, section = ctx.runfile, ctx.runfile.counts
@@ -1012,8 +1071,13 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     elif tally_result.n_regions < 3:
         region_counts, per_region = None, None
         notes.append("fewer than 3 regions: errors are Poisson only (no jackknife)")
+    star_counts, region_star_counts, star_tally = _star_counts_for_fit(ctx, region_counts,
+                                                                       notes)
+    if region_star_counts is False:
+        region_counts, per_region, region_star_counts = None, None, None
     _check_count_inputs(ctx, fit_range, section.model, region_counts,
                         forward.bin_completeness(), default_range)
+    star_where = runfile.location("contamination", "star_catalog")
 
     fits = {}
     fit_lo = float(fit_range[0])
@@ -1040,10 +1104,13 @@ def _stage_counts(ctx: RunContext) -> StageResult:
                 fits[name] = fitter.fit(
                     observed, rng=ctx.rng, region_counts=region_counts,
                     region_effective_area_deg2=per_region, progress=bar.update,
+                    star_counts=star_counts, region_star_counts=region_star_counts,
                 )
             except InputError as exc:
                 if name == section.model:
-                    raise InputError(f"{runfile.location('counts')}: {exc}") from exc
+                    where = (star_where if star_counts is not None and "star_counts" in str(exc)
+                             else runfile.location("counts"))
+                    raise InputError(f"{where}: {exc}") from exc
                 notes.append(f"comparison model {name} not fitted: {exc}")
             except ct.CountsFitError as exc:
                 if name == section.model:
@@ -1055,10 +1122,14 @@ def _stage_counts(ctx: RunContext) -> StageResult:
     m_limit = float(main.fit_range_[1])
     edges = tally_result.mag_edges
     n_bright = int(tally_result.n_brighter + observed[edges[1:] <= fit_lo].sum())
+    n_bright_stars = None
+    if star_tally is not None:
+        n_bright_stars = int(star_tally.n_brighter + star_counts[edges[1:] <= fit_lo].sum())
     variance = ctx.results.get("variance")
     cosmic = None if variance is None else getattr(variance, "objects", {}).get("sigma_cv")
     sigma_cv = None if cosmic is None else float(cosmic(m_limit))
-    integral = _integral_with_bright_part(main, m_limit, n_bright, area, ctx.rng, sigma_cv)
+    integral = _integral_with_bright_part(main, m_limit, n_bright, area, ctx.rng, sigma_cv,
+                                          n_bright_stars)
     differential = main.differential_counts()
     preferred = None
     if comparison is not None:
@@ -1068,10 +1139,28 @@ def _stage_counts(ctx: RunContext) -> StageResult:
                 "model": best,
                 "criterion": "BIC",
                 "integral_counts": _integral_with_bright_part(
-                    fits[best], m_limit, n_bright, area, ctx.rng, sigma_cv),
+                    fits[best], m_limit, n_bright, area, ctx.rng, sigma_cv, n_bright_stars),
             }
     grid = np.arange(tally_result.mag_edges[0], tally_result.mag_edges[-1] + 1e-9,
                      _CURVE_STEP_MAG)
+    bright_text = f"the {n_bright:,d} observed brighter than {fit_lo:g} (taken as complete)"
+    stars_block = None
+    if star_tally is not None:
+        bright_text = (f"the {n_bright - n_bright_stars:,d} galaxies observed brighter than "
+                       f"{fit_lo:g} ({n_bright:,d} sources less {n_bright_stars:,d} stars of "
+                       "the star catalogue; taken as complete)")
+        stars_block = {
+            "subtracted": True,
+            "source": "[contamination] star_catalog",
+            "n_stars_fit_range": int(main.n_stars_),
+            "n_sources_fit_range": int(main.n_sources_),
+            "n_stars_binned": int(star_counts.sum()),
+            "n_stars_brighter": int(n_bright_stars),
+            "method": ("the expected count per bin is the galaxy model through completeness "
+                       "and scatter plus the star catalogue's count in that bin (a known "
+                       "additive term of the Poisson likelihood); the stars' Poisson noise is "
+                       "propagated into the fit's covariance (budget share 'stars')"),
+        }
     data = {
         "model": section.model,
         "fit": main.to_json(),
@@ -1080,8 +1169,8 @@ def _stage_counts(ctx: RunContext) -> StageResult:
         "comparison": None if comparison is None else comparison.to_json(),
         "integral_counts": {
             **integral,
-            "note": (f"sources brighter than m = {m_limit:g}, the faint end of the fit range: "
-                     f"the {n_bright:,d} observed brighter than {fit_lo:g} (taken as complete) "
+            "note": (f"{'galaxies' if star_tally is not None else 'sources'} brighter than "
+                     f"m = {m_limit:g}, the faint end of the fit range: {bright_text} "
                      "plus the fitted model, corrected for completeness and scatter, over "
                      "the fit range"),
         },
@@ -1090,6 +1179,7 @@ def _stage_counts(ctx: RunContext) -> StageResult:
         "differential": differential.to_json(),
         "expected_counts": np.asarray(main.expected_counts_, dtype=float).tolist(),
         "scatter": None if scatter is None else scatter.to_json(),
+        "stars": stars_block,
         "model_curves": {
             "mag": grid.tolist(),
             **{name: np.asarray(fit.model_.density(grid), dtype=float).tolist()
@@ -1406,8 +1496,10 @@ def _stage_contamination(ctx: RunContext) -> StageResult:
 
     With ``[catalog] classifier`` the tally already left the stars out of every count (and of
     the fits); this reports how many it left out per bin. With ``[contamination]`` a star
-    catalogue of the same survey is tallied over the same footprint, bins and extinction and
-    subtracted bin by bin; the earlier count fit saw the uncorrected counts.
+    catalogue of the same survey is tallied over the same footprint, regions, bins and
+    extinction and subtracted bin by bin. The stage runs before ``counts``, which reads the
+    star tally (live object ``star_tally``, with the stars' magnitudes for the totals) and
+    fits galaxies + stars, so the fitted counts, N(<m) and ``sky_total`` are of galaxies.
     """
     from countscale import contamination as cn
 
@@ -1429,7 +1521,7 @@ def _stage_contamination(ctx: RunContext) -> StageResult:
     try:
         source = CatalogSource(list(section.star_catalog), population="stars", **columns)
         stars = tally(source, ctx.footprint, regions=tally_result.regions, mag_bins=edges,
-                      columns=(), engine=ctx.engine, scheduler=ctx.scheduler,
+                      columns=("mag",), engine=ctx.engine, scheduler=ctx.scheduler,
                       chunk_rows=runfile.engine.chunk_rows, progress=ctx.progress,
                       extinction=ctx.extinction)
     except InputError as exc:
@@ -1439,8 +1531,9 @@ def _stage_contamination(ctx: RunContext) -> StageResult:
         "stars from the star catalogue in each bin were subtracted from the catalogue's sources; "
         "their Poisson error is added to the galaxies' (conservative when the star catalogue "
         "lists the very stars of the galaxy catalogue)",
-        "the number-count fit above used the uncorrected counts (stars included); use the "
-        "corrected counts here, or a classifier column, where stars matter",
+        ("the number-count fit models the sources as galaxies + these stars, so its counts, "
+         "N(<m) and the totals' sky_total are of galaxies" if "counts" in runfile.present else
+         "no [counts] section: these are the only galaxy counts corrected for stars"),
     ]
     data = {**result.to_json(), "star_catalog_ledger": stars.ledger.to_dict(), "notes": notes}
     return StageResult(data, {"contamination": result, "star_tally": stars})
@@ -1759,15 +1852,36 @@ def _totals_sky(ctx: RunContext, out: _Totals, n_draws: int) -> Any:
     naive = sk.naive_total(n_observed, area, target_area, n_draws=n_draws, rng=ctx.rng,
                            unit=unit)
     out.estimates["sky_total_naive"] = naive
+    star_tally = _subtracted_star_tally(ctx)
+    stars_text = ""
+    if star_tally is not None and sky_stage is None:
+        n_stars = int(np.count_nonzero(np.asarray(star_tally.columns["mag"]) < m_limit))
+        stars_text = (f"; stars included: {n_stars:,d} of these sources are stars of the "
+                      "star catalogue ([contamination]), which sky_total subtracts")
     out.definitions["sky_total_naive"] = (
         f"plain area scaling: the {n_observed:,d} sources observed brighter than "
         f"{m_limit:g} in the {area:.4g} deg² footprint × {target_text.split(', ')[-1]} / "
-        f"{area:.4g} deg² (the raw count divided by the footprint's share of the target)")
+        f"{area:.4g} deg² (the raw count divided by the footprint's share of the target"
+        f"{stars_text})")
     if sky_stage is not None:
         _sky_total_from_model(ctx, out, sky_stage, m_limit, n_draws, target_text, unit)
+        contamination = ctx.results.get("contamination")
+        if contamination is not None and "star_tally" in contamination.objects:
+            # Not done (yet): the sky model fits the counts per field as they are.
+            out.caution("sky_total", "the sky model counts every source: the stars of the "
+                        "[contamination] star catalogue are not subtracted from this total")
         return None
     return _sky_total_isotropic(ctx, out, m_limit, target_area, n_observed, n_draws,
                                 target_text, unit)
+
+
+def _subtracted_star_tally(ctx: RunContext) -> Any:
+    """The star catalogue's tally when the count fit subtracted its stars, else None."""
+    counts = ctx.results.get("counts")
+    stage = ctx.results.get("contamination")
+    if counts is None or stage is None or counts["fit"].star_counts_ is None:
+        return None
+    return stage.objects.get("star_tally")
 
 
 def _sky_total_isotropic(ctx: RunContext, out: _Totals, m_limit: float, target_area: float,
@@ -1793,6 +1907,16 @@ def _sky_total_isotropic(ctx: RunContext, out: _Totals, m_limit: float, target_a
                        + main.observed_counts_[edges[1:] <= fit_lo + 1e-9].sum())
     else:
         n_bright = n_observed
+    # Stars of the star catalogue among the sources: subtracted (the fits did the same).
+    star_tally = _subtracted_star_tally(ctx)
+    n_bright_stars = 0
+    if star_tally is not None:
+        if m_limit > fit_lo:
+            n_bright_stars = int(star_tally.n_brighter
+                                 + main.star_counts_[edges[1:] <= fit_lo + 1e-9].sum())
+        else:
+            n_bright_stars = int(np.count_nonzero(np.asarray(star_tally.columns["mag"])
+                                                  < m_limit))
     weights, choice = tt.count_model_weights(fits)
     completeness = ctx.results.get("completeness")
     jacobians = cov = p_hat = refit = None
@@ -1811,22 +1935,31 @@ def _sky_total_isotropic(ctx: RunContext, out: _Totals, m_limit: float, target_a
 
         jacobians = tt.completeness_jacobians(refit, p_hat, cov)
     models = [tt.CountModelDraws(name, fit.model_, fit.cov_poisson_,
-                                 None if jacobians is None else jacobians[name])
+                                 None if jacobians is None else jacobians[name],
+                                 None if star_tally is None else fit.star_jacobian_)
               for name, fit in fits.items()]
-    sigma_cv, cv_note = _sky_cosmic_variance(ctx, models, fits, weights, n_bright, area,
-                                             fit_lo, m_limit)
+    sigma_cv, cv_note = _sky_cosmic_variance(ctx, models, fits, weights,
+                                             n_bright - n_bright_stars, area, fit_lo, m_limit)
     if sigma_cv is None:
         out.caution("sky_total", cv_note)
     sky = tt.SkyTotal(m_limit, target_area, area, float(ctx.footprint.area_uncertainty_deg2),
                       n_bright, fit_lo, models, weights, cov, sigma_cv, unit=unit,
-                      m_fitted=fit_hi)
+                      m_fitted=fit_hi,
+                      star_counts=None if star_tally is None else main.star_counts_,
+                      n_bright_stars=n_bright_stars)
     estimate = _with_budget_check(out, "sky_total", lambda: sky.estimate(n_draws, ctx.rng))
     out.estimates["sky_total"] = estimate
     central = max(weights, key=lambda k: weights[k])
+    observed_text = f"the {n_bright:,d} observed"
+    if star_tally is not None:
+        observed_text = (f"the {n_bright - n_bright_stars:,d} galaxies observed ({n_bright:,d} "
+                         f"sources less {n_bright_stars:,d} stars of the star catalogue)")
     out.definitions["sky_total"] = (
         f"{unit} brighter than {m_limit:g} over {target_text}: the population's mean surface "
-        f"density (the {n_bright:,d} observed brighter than {min(fit_lo, m_limit):g}, taken as "
+        f"density ({observed_text} brighter than {min(fit_lo, m_limit):g}, taken as "
         "complete, plus the fitted counts corrected for completeness and photometric scatter"
+        + (", of galaxies: the star catalogue's stars subtracted bin by bin, their Poisson "
+           "noise in the budget (stars)" if star_tally is not None else "")
         + (f", a mixture of the count models weighted by evidence, mostly {central}"
            if len(models) > 1 and m_limit > fit_lo else "")
         + ") times the target's area: the expected number for a population the same "
@@ -1865,6 +1998,16 @@ def _sky_total_isotropic(ctx: RunContext, out: _Totals, m_limit: float, target_a
         "area_uncertainty_deg2": float(ctx.footprint.area_uncertainty_deg2),
         "completeness": None,
     })
+    if star_tally is not None:
+        details["stars_subtracted"] = {
+            "n_stars_fit_bins": int(np.asarray(main.star_counts_).sum()),
+            "n_stars_brighter": n_bright_stars,
+            "n_galaxies_brighter": n_bright - n_bright_stars,
+            "budget_name": "stars",
+            "note": "stars of the [contamination] star catalogue, drawn Poisson per bin and "
+                    "propagated through the count fits (d parameters / d stars per bin); "
+                    "sky_total_naive keeps them",
+        }
     if jacobians is not None:
         check = tt.check_linearisation(sky, refit, p_hat, cov)
         details["completeness"] = {
@@ -1911,7 +2054,9 @@ def _sky_cosmic_variance(ctx: RunContext, models: list, fits: Mapping, weights: 
     fit = fits[central]
     if fit.cov_jackknife_ is not None and m_limit > fit_lo:
         model = next(m for m in models if m.name == central)
-        sigma = tt.jackknife_sigma(model, fit.cov_, n_bright, area, fit_lo, m_limit)
+        # The jackknife's excess over the Poisson floor, the subtracted stars' noise removed.
+        sigma = tt.jackknife_sigma(model, fit.cov_ - fit.cov_stars_, n_bright, area, fit_lo,
+                                   m_limit)
         return sigma, (fallback + f"jackknife over {fit.n_regions_} regions: {sigma:.3g}; it "
                        "misses modes larger than the footprint, so the interval is too narrow "
                        "(add [variance] methods = [\"analytic\"])")
@@ -1925,7 +2070,7 @@ def _naive_explained(ctx: RunContext, sky: Any, counts: Any, completeness: Any,
     from scipy import stats
 
     area = sky.area_deg2
-    bright = sky.n_bright / area
+    bright = sky.n_bright_galaxies / area
     ratio = naive.median / estimate.median
     out: dict[str, Any] = {"naive_over_sky_total": float(ratio)}
     if sky.models:
@@ -1946,7 +2091,15 @@ def _naive_explained(ctx: RunContext, sky: Any, counts: Any, completeness: Any,
             sigma = np.maximum(np.asarray(scatter(grid), dtype=float), 1e-9)
             observed = bright + float(np.sum(n * c * stats.norm.cdf((m_limit - grid) / sigma))
                                       ) * step
-        field_ratio = ratio / (observed / intrinsic)
+        stars_factor = 1.0
+        star_tally = _subtracted_star_tally(ctx)
+        if star_tally is not None:
+            # The raw count holds the star catalogue's stars; sky_total does not.
+            mags = np.asarray(ctx.results["tally"].columns["mag"], dtype=float)
+            n_sources = int(np.count_nonzero(mags < m_limit))
+            n_stars = int(np.count_nonzero(np.asarray(star_tally.columns["mag"]) < m_limit))
+            stars_factor = n_sources / max(n_sources - n_stars, 1)
+        field_ratio = ratio / (observed / intrinsic) / stars_factor
         out.update({
             "completeness_factor": detected / intrinsic,
             "scatter_factor": observed / detected,
@@ -1954,6 +2107,8 @@ def _naive_explained(ctx: RunContext, sky: Any, counts: Any, completeness: Any,
             "this_field_over_model": float(field_ratio),
             "cosmic_variance_sigma": sigma_cv,
         })
+        if star_tally is not None:
+            out["stars_factor"] = float(stars_factor)
     outer = _include_only_area(ctx.runfile)
     if outer is not None and outer > 0:
         out["holes"] = {"area_without_holes_deg2": outer,
@@ -2314,9 +2469,10 @@ STAGES: list[Stage] = [
           columns=_lf_columns, reads=("cosmology",)),
     Stage("variance", ("variance",), _stage_variance, columns=("mag", "redshift"),
           reads=("cosmology",)),
-    Stage("counts", ("counts",), _stage_counts, columns=("mag", "mag_error")),
+    # Before counts: with a star catalogue the count fit models galaxies + its stars.
     Stage("contamination", ("catalog",), _stage_contamination, when=_wants_contamination,
           reads=("contamination",)),
+    Stage("counts", ("counts",), _stage_counts, columns=("mag", "mag_error")),
     Stage("sky_model", ("catalog", "footprint"), _stage_sky_model, columns=("mag", "cell"),
           when=_wants_sky_model, reads=("sky_model",)),
     Stage("totals", ("totals",), _stage_totals, columns=_totals_columns, reads=("cosmology",)),

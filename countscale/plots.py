@@ -216,8 +216,9 @@ def counts_figure(counts, path, title=None):
                                   gridspec_kw={"height_ratios": [3, 1]})
     shown = n_obs > 0
     raw = np.asarray(diff["raw_density"])
+    stars = diff.get("n_stars") is not None  # a star catalogue's stars subtracted
     ax.plot(mid[shown], raw[shown], "o", mfc="none", mec="grey", ms=4,
-            label="raw (no correction)")
+            label="raw (no correction" + ("; stars included)" if stars else ")"))
     corr = np.array([np.nan if v is None else v for v in diff["corrected_density"]])
     full = diff["corrected_interval_68_full"] or diff["corrected_interval_68"]
     band = np.array([[np.nan, np.nan] if v is None else v for v in full], dtype=float)
@@ -234,7 +235,9 @@ def counts_figure(counts, path, title=None):
         yerr = np.abs(np.stack([corr - band[:, 0], band[:, 1] - corr]))[:, ok]
         error_kind = "Poisson + clustering" if diff["corrected_interval_68_full"] else "Poisson"
         ax.errorbar(mid[ok], corr[ok], yerr=yerr, fmt="o", ms=3.5, color="k", lw=0.9,
-                    label=f"corrected for completeness and scatter (68 %, {error_kind}; "
+                    label=("galaxies (stars subtracted), " if stars else "")
+                    + "corrected for completeness and scatter" + ("\n" if stars else " ")
+                    + f"(68 %, {error_kind}; "
                           "shown where completeness ≥ 0.5)")
     if notes:
         import textwrap

@@ -780,9 +780,20 @@ def _counts_markdown(counts: Mapping[str, Any]) -> list[str]:
         + (f"errors include the jackknife over {fit['n_regions']} regions (clustering)."
            if fit.get("n_regions", 0) >= 3 else "errors are Poisson only."),
         "",
-        "| parameter | value | budget |",
-        "|---|---|---|",
     ]
+    stars = counts.get("stars")
+    if stars:
+        out += [
+            f"**Stars subtracted:** {stars['n_stars_fit_range']:,d} of these sources are stars "
+            f"of the star catalogue ([contamination]; {stars['n_stars_binned']:,d} in all bins, "
+            f"{stars['n_stars_brighter']:,d} brighter than the bins fitted). The fit models "
+            "each bin as galaxies + the catalogue's stars, so the model, the corrected counts "
+            "and N(<m) below are of galaxies; the stars' Poisson noise is in their errors "
+            "(budget share `stars`; conservative when the star catalogue lists the very stars "
+            "of the catalogue).",
+            "",
+        ]
+    out += ["| parameter | value | budget |", "|---|---|---|"]
     for name, value in fit.items():
         if isinstance(value, Mapping) and "median" in value:
             budget = ", ".join(f"{k} {v:.0%}" for k, v in value.get("budget", {}).items())
@@ -911,7 +922,9 @@ def _integral_markdown(integral: Mapping[str, Any]) -> list[str]:
                          "footprint: too narrow)",
             "none": "Poisson only"}.get(clustering.get("method"), "")
     return [
-        f"Integral counts N(<{m:g}), sources per deg² ({integral['note']}):",
+        f"Integral counts N(<{m:g}), "
+        f"{'galaxies' if 'n_stars_brighter' in integral else 'sources'} per deg² "
+        f"({integral['note']}):",
         "",
         "| quantity | per deg² (68 %; 95 %) | over the footprint | errors |",
         "|---|---|---|---|",
@@ -1059,7 +1072,11 @@ def _totals_markdown(totals: Mapping[str, Any]) -> list[str]:
                 f"{explained['completeness_factor']:.4g}) and holds sources scattered across "
                 f"the limit by photometric errors, more of them in than out on rising counts "
                 f"(scatter, the Eddington bias: × {explained['scatter_factor']:.4g}); together "
-                f"× {explained['expected_naive_over_sky_total']:.4g}. The rest, × "
+                f"× {explained['expected_naive_over_sky_total']:.4g}."
+                + (f" It also holds the stars of the star catalogue, which `sky_total` "
+                   f"subtracts (× {explained['stars_factor']:.4g})."
+                   if "stars_factor" in explained else "")
+                + " The rest, × "
                 f"{explained['this_field_over_model']:.4g}, is this field against the "
                 "population's mean: large-scale structure made this footprint what it is"
                 + (f" (cosmic variance σ = {cv:.3g}), and plain scaling carries it to the "

@@ -201,12 +201,15 @@ class CountModelDraws:
         Covariance of the parameters drawn under "poisson" (the fit's Poisson covariance).
     jacobian : ndarray, shape (k, p), optional
         d parameters / d completeness parameters (:func:`completeness_jacobians`).
+    star_jacobian : ndarray, shape (k, n_bins), optional
+        d parameters / d (stars subtracted per magnitude bin) (the fit's ``star_jacobian_``).
     """
 
     name: str
     model: Any
     covariance: Any
     jacobian: Any = None
+    star_jacobian: Any = None
 
     def __post_init__(self) -> None:
         k = len(self.model.param_names)
@@ -222,6 +225,12 @@ class CountModelDraws:
                 raise InputError(f"`jacobian` must be a finite array of {k} rows; got shape "
                                  f"{jac.shape}")
             object.__setattr__(self, "jacobian", jac)
+        if self.star_jacobian is not None:
+            jac = np.array(self.star_jacobian, dtype=float)
+            if jac.ndim != 2 or jac.shape[0] != k or not np.all(np.isfinite(jac)):
+                raise InputError(f"`star_jacobian` must be a finite array of {k} rows; got "
+                                 f"shape {jac.shape}")
+            object.__setattr__(self, "star_jacobian", jac)
 
     @property
     def n_params(self) -> int:
@@ -286,6 +295,12 @@ class SkyTotal:
     m_fitted : float, optional
         The faint end of the count fits' range; beyond it the models are extrapolated
         (default: ``m_limit``, no extrapolation).
+    star_counts : array_like, shape (n_bins,), optional
+        Stars per magnitude bin of the count fits that were subtracted from the sources (a
+        star catalogue of the same survey): the total is then of galaxies.
+    n_bright_stars : float
+        Stars of that catalogue among the ``n_bright`` sources (brighter than
+        ``min(m_bright, m_limit)``); subtracted from them.
 
     Notes
     -----
@@ -293,7 +308,11 @@ class SkyTotal:
     and the Poisson count of the bright sources), ``completeness`` (its parameters through the
     Jacobians), ``count_model`` (a mixture of the models by weight), ``cosmic_variance`` (a
     lognormal factor of median 1 and rms ``sigma_cv``), ``area`` (the footprint's area: the
-    densities scale as 1 / area). Absent or zero-width inputs get no share.
+    densities scale as 1 / area), ``stars`` (with ``star_counts``: the star counts per bin
+    and the bright stars drawn Poisson about their observed values; a bin's draw moves each
+    model's parameters by its ``star_jacobian`` and the bright stars are subtracted from the
+    bright sources, clipped at 0). Absent or zero-width inputs get no share (a star
+    catalogue with no star in any bin: a zero share).
 
     Over the fitted range a model's part of the density is carried to its draws by the delta
     method in log10: with g the gradient of log10 of its integral there at the fit,
@@ -320,6 +339,8 @@ class SkyTotal:
     sigma_cv: float | None = None
     unit: str = "sources"
     m_fitted: float | None = None
+    star_counts: Any = None
+    n_bright_stars: float = 0.0
 
     def __post_init__(self) -> None:
         for name in ("m_limit", "m_bright"):
@@ -335,11 +356,29 @@ class SkyTotal:
         object.__setattr__(self, "area_sigma_deg2", sigma)
         if int(self.n_bright) < 0:
             raise InputError(f"`n_bright` must be >= 0; got {self.n_bright!r}")
+        bright_stars = _finite_scalar("n_bright_stars", self.n_bright_stars)
+        if bright_stars < 0:
+            raise InputError(f"`n_bright_stars` must be >= 0; got {bright_stars!r}")
+        object.__setattr__(self, "n_bright_stars", bright_stars)
+        if self.star_counts is not None:
+            stars = np.array(self.star_counts, dtype=float)
+            if stars.ndim != 1 or not np.all(np.isfinite(stars)) or np.any(stars < 0):
+                raise InputError(f"`star_counts` must be finite counts >= 0 per bin; got "
+                                 f"{stars.tolist()[:5]}")
+            stars.flags.writeable = False
+            object.__setattr__(self, "star_counts", stars)
+            for model in self.models:
+                if model.star_jacobian is not None and model.star_jacobian.shape[1] != stars.size:
+                    raise InputError(f"`star_jacobian` of {model.name} must have one column "
+                                     f"per bin of `star_counts` ({stars.size}); got "
+                                     f"{model.star_jacobian.shape[1]}")
+        elif bright_stars:
+            raise InputError("`n_bright_stars` needs `star_counts` (the stars per bin)")
         models = tuple(self.models) if self.m_limit > self.m_bright else ()
         if not models and self.m_limit > self.m_bright:
             raise InputError("`models` must hold at least one count model when `m_limit` is "
                              f"fainter than `m_bright` ({self.m_bright:g}); got none")
-        if not models and int(self.n_bright) == 0:
+        if not models and int(self.n_bright) - self.n_bright_stars <= 0:
             raise InputError(f"no source is brighter than the magnitude limit {self.m_limit:g}"
                              ": there is nothing to scale to the sky")
         object.__setattr__(self, "models", models)
@@ -366,7 +405,9 @@ class SkyTotal:
                                  f"{self.m_bright:g} and {self.m_limit:g}; got {value!r}")
             on_completeness = (None if model.jacobian is None
                                else model.jacobian.T @ gradient)
-            linear.append((value, model._factor.T @ gradient, on_completeness))
+            on_stars = (None if model.star_jacobian is None or self.star_counts is None
+                        else model.star_jacobian.T @ gradient)
+            linear.append((value, model._factor.T @ gradient, on_completeness, on_stars))
         object.__setattr__(self, "_linear", tuple(linear))
         if self.sigma_cv is not None:
             value = _finite_scalar("sigma_cv", self.sigma_cv)
@@ -383,6 +424,11 @@ class SkyTotal:
     def _central_index(self) -> int:
         names = [m.name for m in self.models]
         return names.index(max(names, key=lambda k: (self.weights[k], -names.index(k))))
+
+    @property
+    def n_bright_galaxies(self) -> float:
+        """The bright sources less the bright stars of the star catalogue (>= 0)."""
+        return max(float(self.n_bright) - self.n_bright_stars, 0.0)
 
     @property
     def _draws_completeness(self) -> bool:
@@ -409,12 +455,25 @@ class SkyTotal:
             s = math.sqrt(math.log1p(self.sigma_cv**2))
             inputs["cosmic_variance"] = LogNormal(1.0, s / _LN10)
         inputs["area"] = Normal(self.area_deg2, self.area_sigma_deg2)
+        if self.star_counts is not None:
+            # Last, so the other inputs' draws are those of a run without stars.
+            inputs["stars"] = Joint((*(Poisson(float(v)) for v in self.star_counts),
+                                     Poisson(self.n_bright_stars)))
         return inputs
 
     def _density(self, values: Mapping[str, Any]) -> np.ndarray:
         """Population mean surface density brighter than m_limit per draw [deg^-2]."""
         block = np.asarray(values["poisson"], dtype=float)
         n_bright = block[:, -1]
+        delta_stars = None
+        if self.star_counts is not None:
+            if "stars" in values:
+                stars = np.asarray(values["stars"], dtype=float)
+            else:
+                stars = np.broadcast_to(np.r_[self.star_counts, self.n_bright_stars],
+                                        (n_bright.size, self.star_counts.size + 1))
+            delta_stars = stars[:, :-1] - self.star_counts
+            n_bright = np.clip(n_bright - stars[:, -1], 0.0, None)
         density = n_bright / self.area_deg2
         if self.models:
             z = block[:, :-1]
@@ -424,7 +483,7 @@ class SkyTotal:
                 index = np.full(z.shape[0], self._central_index)
             delta = values.get("completeness") if self._draws_completeness else None
             beyond = self.m_limit > self.m_fitted
-            for k, (value, on_fit, on_completeness) in enumerate(self._linear):
+            for k, (value, on_fit, on_completeness, on_stars) in enumerate(self._linear):
                 chosen = index == k
                 if not chosen.any():
                     continue
@@ -434,11 +493,17 @@ class SkyTotal:
                 shift = z_k @ on_fit
                 if d_k is not None and on_completeness is not None:
                     shift = shift + d_k @ on_completeness
+                s_k = None
+                if delta_stars is not None and on_stars is not None:
+                    s_k = delta_stars[chosen]
+                    shift = shift + s_k @ on_stars
                 density[chosen] += value * 10.0**shift
                 if beyond:
                     theta = model.model.params[None, :] + z_k @ model._factor.T
                     if d_k is not None and model.jacobian is not None:
                         theta = theta + d_k @ model.jacobian.T
+                    if s_k is not None:
+                        theta = theta + s_k @ model.star_jacobian.T
                     density[chosen] += model.integral(theta, self.m_fitted, self.m_limit)
         return density
 
@@ -544,7 +609,7 @@ def check_linearisation(sky: SkyTotal, refit: Callable[[np.ndarray], Mapping[str
     delta = n_sigma * math.sqrt(max(values[widest], 0.0)) * vectors[:, widest]
     refitted = refit(p_hat + delta)
     per_model = {}
-    base = sky.n_bright / sky.area_deg2
+    base = sky.n_bright_galaxies / sky.area_deg2
     for model in sky.models:
         centre = model.model.params[None, :]
         linear = centre + delta[None, :] @ model.jacobian.T

@@ -158,6 +158,15 @@ def damaged_parquet_with_checksums(folder):
     path.write_bytes(bytes(data))
 
 
+def star_catalogue_of_every_source_twice(folder):
+    """A [contamination] star catalogue listing each source of the catalogue twice."""
+    frame = pq.read_table(folder / "catalog.parquet").to_pandas()
+    pd.concat([frame, frame], ignore_index=True).to_parquet(folder / "stars.parquet")
+    path = folder / "survey.toml"
+    path.write_text(path.read_text(encoding="utf-8")
+                    + '\n[contamination]\nstar_catalog = ["stars.parquet"]\n', encoding="utf-8")
+
+
 def out_under_a_file(folder):
     (folder / "afile").write_text("x")
     return ["--out", str(folder / "afile" / "report")]
@@ -317,6 +326,10 @@ CASES = [
      edit_runfile("fit_range = [18.0, 21.8]", "fit_range = [18.05, 18.15]"),
      F + r"\[counts\] 'fit_range' must contain at least one whole bin of 0\.2 mag from 14; "
          r"got \[18\.05, 18\.15\]$"),
+    ("star-catalogue-outnumbers-sources", star_catalogue_of_every_source_twice,
+     F + r"\[contamination\] 'star_catalog': `star_counts` must leave more galaxies than the 2 "
+         r"parameters in the fit range \[18, 21\.8\] mag \(stars are subtracted from the "
+         r"sources\); got \d+ stars against \d+ sources$"),
     ("fit-range-off-grid",
      edit_runfile("fit_range = [18.0, 21.8]", "fit_range = [18.05, 23.05]"),
      fit_range_snapped_and_warnings_reported),

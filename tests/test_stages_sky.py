@@ -10,6 +10,7 @@ mock's own populations for the contamination counts.
 from __future__ import annotations
 
 import json
+import re
 import textwrap
 import warnings
 from pathlib import Path
@@ -268,6 +269,172 @@ def test_a_missing_star_catalogue_names_the_key(tmp_path):
     with pytest.raises(InputError, match=r"\[contamination\] 'star_catalog': `paths`: file "
                                          r"'.*nowhere.parquet' does not exist"):
         run_survey(path, out_dir=tmp_path / "out", seed=2)
+
+
+FULL_SKY_DEG2 = 41252.96124941928  # 4 pi sr in deg^2 (definition)
+MIXED_CAP = (40.0, -30.0, 1.2)  # ra, dec, radius [deg]; galactic latitude about -63
+
+
+@pytest.fixture(scope="module")
+def mixed_with_completeness(tmp_path_factory):
+    """Galaxies + disk stars (flatter counts) over a cap, with injections; the star catalogue
+    lists the very stars of the mixed one. Returns (folder, write_runfile, spec)."""
+    from countscale.footprint import Footprint
+    from countscale.mock import Injections, SchechterGalaxies
+
+    folder = tmp_path_factory.mktemp("mixed_completeness")
+    footprint = Footprint.cap(*MIXED_CAP, max_order=12)
+    galaxies = SchechterGalaxies(m_star=-21.3, alpha=-1.05, phi_star=4.6e-3)
+    spec = MockSpec(galaxies=galaxies, stars=DiskStars(),
+                    measurement=Measurement(m50=21.0, width=0.15),
+                    injections=Injections(n=2000), mag_limits=(20.5,))
+    mock = make_mock(spec, rng=3, footprint=footprint)
+    cat = mock.catalogue
+    star = (cat.population == "star").to_numpy()
+    cat[["ra", "dec", "mag", "mag_err"]].to_parquet(folder / "cat.parquet")
+    cat.loc[star, ["ra", "dec", "mag"]].to_parquet(folder / "stars.parquet")
+    # A star catalogue with one star, inside the footprint but fainter than every bin.
+    pd.DataFrame({"ra": [MIXED_CAP[0]], "dec": [MIXED_CAP[1]], "mag": [23.5]}).to_parquet(
+        folder / "no_stars_in_bins.parquet")
+    # Twice the catalogue's own rows: more "stars" than sources in every bin.
+    pd.concat([cat[["ra", "dec", "mag"]]] * 2).to_parquet(folder / "too_many.parquet")
+    mock.injections[["mag", "recovered", "ra", "dec"]].astype({"recovered": int}).to_csv(
+        folder / "inj.csv", index=False)
+
+    def write_runfile(name, star_catalog=None):
+        ra, dec, radius = MIXED_CAP
+        text = textwrap.dedent(f"""\
+            [survey]
+            name = "Fictional mixed field"
+
+            [catalog]
+            paths = ["cat.parquet"]
+            ra = "ra"
+            dec = "dec"
+            mag = "mag"
+            mag_error = "mag_err"
+
+            [footprint]
+            max_order = 12
+            include = [{{cap = {{ra = {ra}, dec = {dec}, radius = {radius}}}}}]
+
+            [completeness]
+            injections = "inj.csv"
+
+            [counts]
+            bins = {{start = 15.0, stop = 22.4, width = 0.2}}
+            fit_range = [16.0, 20.8]
+            n_bootstrap = 0
+
+            [variance]
+            methods = ["jackknife"]
+            regions = 8
+
+            [output]
+            formats = ["json", "markdown"]
+
+            [totals]
+            draws = 2000
+            whole_sky_mag_limit = 20.5
+            """)
+        if star_catalog is not None:
+            text += f'\n[contamination]\nstar_catalog = ["{star_catalog}"]\n'
+        path = folder / f"{name}.toml"
+        path.write_text(text)
+        return path
+
+    return folder, write_runfile, spec
+
+
+def _galaxy_sky_truth(spec, limit):
+    """Galaxies brighter than ``limit`` over the whole sky, from the mock's model alone."""
+    galaxies_only = MockSpec(galaxies=spec.galaxies, measurement=spec.measurement,
+                             mag_limits=(limit,))
+    from countscale.mock import expected_counts
+
+    return expected_counts(galaxies_only)["sky"]["galaxies"][0]
+
+
+def test_stars_subtracted_before_the_count_fit_give_galaxy_totals(mixed_with_completeness):
+    # Outside reference: the galaxy-only whole-sky count of the mock's model
+    # (countscale.mock.expected_counts: the Schechter 1976 function over astropy's Planck18
+    # volumes). Measured here: sky_total 7.3e7 (95 %: 7.1-7.5e7) against the truth 7.46e7;
+    # without the subtraction 9.4e7 (+27 %), plain area scaling 9.6e7.
+    folder, write_runfile, spec = mixed_with_completeness
+    truth = _galaxy_sky_truth(spec, 20.5)
+    result = run_survey(write_runfile("stars", "stars.parquet"), out_dir=folder / "out_stars",
+                        seed=4)
+    plain = run_survey(write_runfile("plain"), out_dir=folder / "out_plain", seed=4)
+    stages = result.results["run"]["stages"]
+    assert stages.index("contamination") < stages.index("counts")
+    sky = result.results["totals"]["sky_total"]
+    assert sky["unit"] == "galaxies"
+    assert sky["interval_95"][0] <= truth <= sky["interval_95"][1], (sky, truth)
+    biased = plain.results["totals"]["sky_total"]
+    assert biased["interval_95"][0] > truth  # the stars, counted as galaxies
+    # The budget names the stars, and the shares sum to 1.
+    assert sky["budget"]["stars"] > 0.01
+    assert sum(sky["budget"].values()) == pytest.approx(1.0, abs=0.01)
+    # Plain area scaling keeps the stars, and says so.
+    definitions = result.results["totals"]["definitions"]
+    assert "stars included" in definitions["sky_total_naive"]
+    assert "stars of the star catalogue" in definitions["sky_total"]
+    # The counts section: how many stars, and N(<m) of galaxies (population: the model's
+    # galaxies per deg^2 brighter than 20.8, the faint end of the fit range).
+    counts = result.results["counts"]
+    stars = pd.read_parquet(folder / "stars.parquet")
+    assert counts["stars"]["n_stars_binned"] == int(((stars.mag >= 15.0)
+                                                     & (stars.mag < 22.4)).sum())
+    assert counts["stars"]["n_stars_brighter"] == int((stars.mag < 16.0).sum())
+    per_deg2 = counts["integral_counts"]["per_deg2"]
+    truth_deg2 = _galaxy_sky_truth(spec, 20.8) / FULL_SKY_DEG2
+    assert per_deg2["interval_95"][0] <= truth_deg2 <= per_deg2["interval_95"][1]
+    assert plain.results["counts"]["integral_counts"]["per_deg2"]["interval_95"][0] > truth_deg2
+    assert counts["differential"]["n_stars"] is not None
+    report = (folder / "out_stars" / "report.md").read_text()
+    assert "**Stars subtracted:**" in report
+    assert "It also holds the stars of the star catalogue" in report
+
+
+def test_a_star_catalogue_with_no_star_in_the_bins_changes_nothing(mixed_with_completeness):
+    # Self-consistency: the same fit as no subtraction, and a zero 'stars' share.
+    folder, write_runfile, _ = mixed_with_completeness
+    none = run_survey(write_runfile("plain0"), out_dir=folder / "out_plain0", seed=5)
+    zero = run_survey(write_runfile("zero", "no_stars_in_bins.parquet"),
+                      out_dir=folder / "out_zero", seed=5)
+    fit_none, fit_zero = none.results["counts"]["fit"], zero.results["counts"]["fit"]
+    for name in ("log10_norm", "slope"):
+        assert fit_zero[name]["median"] == fit_none[name]["median"]
+        assert fit_zero[name]["interval_95"] == fit_none[name]["interval_95"]
+    sky_none = none.results["totals"]["sky_total"]
+    sky_zero = zero.results["totals"]["sky_total"]
+    assert sky_zero["median"] == sky_none["median"]
+    assert sky_zero["budget"]["stars"] == 0.0
+    assert zero.results["counts"]["stars"]["n_stars_binned"] == 0
+
+
+def test_a_sky_model_total_says_it_keeps_the_stars(mixed_with_completeness):
+    # The sky model fits the counts per field as they are: the caution says so beside the
+    # number (the subtraction is done in the count fit only).
+    folder, write_runfile, _ = mixed_with_completeness
+    path = write_runfile("sky_model", "stars.parquet")
+    path.write_text(path.read_text() + "\n[sky_model]\n")
+    result = run_survey(path, out_dir=folder / "out_sky_model", seed=6)
+    cautions = result.results["totals"]["cautions"]["sky_total"]
+    assert any("stars of the [contamination] star catalogue are not subtracted" in c
+               for c in cautions), cautions
+
+
+def test_more_stars_than_sources_is_one_line_naming_the_star_catalogue(mixed_with_completeness,
+                                                                      capsys):
+    folder, write_runfile, _ = mixed_with_completeness
+    path = write_runfile("too_many", "too_many.parquet")
+    assert main(["run", str(path), "--out", str(folder / "out_too_many"), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1
+    assert re.search(r"too_many\.toml: \[contamination\] 'star_catalog': `star_counts` must "
+                     r"leave more galaxies than the 2 parameters in the fit range \[16, 20\.8\] "
+                     r"mag .*; got \d+ stars against \d+ sources", err[0]), err[0]
 
 
 def test_demo_star_totals_carry_the_sky_model_and_hold_the_truth(stars_run):

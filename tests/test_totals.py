@@ -197,6 +197,59 @@ def test_jackknife_sigma_is_the_delta_method_on_the_excess_covariance():
     assert sigma == pytest.approx(math.sqrt(math.expm1((math.log(10) * 0.01) ** 2)), rel=1e-4)
 
 
+def test_stars_subtracted_from_the_bright_count_have_their_poisson_share():
+    # No model part (the limit is brighter than the fits): total = (N - S) x target / area
+    # with N ~ Poisson(400) sources and S ~ Poisson(100) stars. By the delta method the
+    # variance of log10 of N - S is (N + S) / ((N - S) ln 10)^2, shared N : S (closed form).
+    sky = tt.SkyTotal(17.5, 1000.0, 10.0, 0.0, 400, 18.0, star_counts=np.zeros(5),
+                      n_bright_stars=100)
+    assert sky.n_bright_galaxies == 300
+    assert sky.density_per_deg2() == pytest.approx(30.0)
+    estimate = sky.estimate(20_000, rng=3)
+    assert estimate.median == pytest.approx(300 * 100, rel=0.01)
+    sigma_log10 = math.sqrt(500) / (300 * math.log(10))
+    assert np.std(np.log10(estimate.draws)) == pytest.approx(sigma_log10, rel=0.05)
+    assert estimate.budget["poisson"] == pytest.approx(0.8, abs=0.03)
+    assert estimate.budget["stars"] == pytest.approx(0.2, abs=0.03)
+    assert sum(estimate.budget.values()) == pytest.approx(1.0, abs=0.01)
+
+
+def test_a_star_catalogue_with_no_star_gives_a_zero_share_and_the_same_total():
+    # Self-consistency: zero stars everywhere change nothing but add a zero 'stars' share
+    # (the stars are drawn last, so the other inputs' draws are the same).
+    model = ct.PowerLaw(log10_norm=3.0, slope=0.4, reference_mag=20.0, m_bright=18.0)
+    cov = np.diag([0.01**2, 0.005**2])
+    plain = tt.SkyTotal(21.0, 100.0, 10.0, 0.0, 50, 18.0,
+                        [tt.CountModelDraws("power_law", model, cov)])
+    draws = tt.CountModelDraws("power_law", model, cov, star_jacobian=np.ones((2, 4)))
+    zero = tt.SkyTotal(21.0, 100.0, 10.0, 0.0, 50, 18.0, [draws], star_counts=np.zeros(4))
+    a, b = plain.estimate(4000, rng=5), zero.estimate(4000, rng=5)
+    assert (a.median, a.interval_95) == (b.median, b.interval_95)
+    assert b.budget["stars"] == 0.0
+    assert "stars" not in a.budget
+
+
+def test_star_counts_move_the_model_part_through_the_star_jacobian():
+    # d log10 N / d log10_norm = 1 for a power law, so with d log10_norm / d S_i = -c for
+    # each of k bins of S_i stars the stars' variance of log10 of the model part is
+    # c^2 sum S_i (delta method, closed form); no other input varies (zero covariance).
+    model = ct.PowerLaw(log10_norm=3.0, slope=0.4, reference_mag=20.0, m_bright=18.0)
+    jacobian = np.zeros((2, 3))
+    jacobian[0] = -1e-3
+    stars = np.array([400.0, 900.0, 200.0])
+    draws = tt.CountModelDraws("power_law", model, np.zeros((2, 2)), star_jacobian=jacobian)
+    sky = tt.SkyTotal(21.0, 100.0, 10.0, 0.0, 0, 18.0, [draws], star_counts=stars)
+    estimate = sky.estimate(20_000, rng=6)
+    assert np.std(np.log10(estimate.draws)) == pytest.approx(1e-3 * math.sqrt(stars.sum()),
+                                                             rel=0.03)
+    assert estimate.budget["stars"] == pytest.approx(1.0, abs=0.01)
+    with pytest.raises(InputError, match=r"`star_jacobian` of power_law must have one column "
+                                         r"per bin of `star_counts` \(2\); got 3"):
+        tt.SkyTotal(21.0, 100.0, 10.0, 0.0, 0, 18.0, [draws], star_counts=[1.0, 2.0])
+    with pytest.raises(InputError, match=r"`n_bright_stars` needs `star_counts`"):
+        tt.SkyTotal(17.0, 100.0, 10.0, 0.0, 10, 18.0, n_bright_stars=3)
+
+
 # --------------------------------------------------------------------------------------------
 # Completeness: the checked linearisation
 # --------------------------------------------------------------------------------------------
