@@ -219,18 +219,14 @@ class CountModelDraws:
                              f"{cov.shape}")
         object.__setattr__(self, "covariance", cov)
         object.__setattr__(self, "_factor", _factor(cov))
-        if self.jacobian is not None:
-            jac = np.array(self.jacobian, dtype=float)
+        for name in ("jacobian", "star_jacobian"):
+            if getattr(self, name) is None:
+                continue
+            jac = np.array(getattr(self, name), dtype=float)
             if jac.ndim != 2 or jac.shape[0] != k or not np.all(np.isfinite(jac)):
-                raise InputError(f"`jacobian` must be a finite array of {k} rows; got shape "
+                raise InputError(f"`{name}` must be a finite array of {k} rows; got shape "
                                  f"{jac.shape}")
-            object.__setattr__(self, "jacobian", jac)
-        if self.star_jacobian is not None:
-            jac = np.array(self.star_jacobian, dtype=float)
-            if jac.ndim != 2 or jac.shape[0] != k or not np.all(np.isfinite(jac)):
-                raise InputError(f"`star_jacobian` must be a finite array of {k} rows; got "
-                                 f"shape {jac.shape}")
-            object.__setattr__(self, "star_jacobian", jac)
+            object.__setattr__(self, name, jac)
 
     @property
     def n_params(self) -> int:
